@@ -1,0 +1,152 @@
+"""A loaded, verified model version: the object behind ``load_model``.
+
+Prediction in raw units is f(x) = k(s(x), X_s)·α + mean, where s is the stored
+standardization (see the design notes). Arrays are memory-mapped read-only, so processes that
+load the same version share one copy in the page cache.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from service import envelope
+from service.engine import Engine
+from service.kernels import KernelSpec, row_sq_norms
+from service.store import Store, StoreError
+
+
+class Model:
+    """One version of one model, verified and ready to predict.
+
+    Attributes
+    ----------
+    name, version, manifest : identity and the full manifest.
+    features : feature names in the order ``predict`` expects.
+    targets : target names; ``predict`` returns one column per target when there are several.
+    """
+
+    def __init__(self, manifest: dict, arrays: dict[str, np.ndarray]):
+        self.manifest = manifest
+        self.name: str = manifest["model"]
+        self.version: int = int(manifest["version"])
+        self.features: list[str] = list(manifest["features"])
+        self.targets: list[str] = list(manifest["targets"])
+        std = manifest["standardization"]
+        self.mean = np.asarray(std["mean"], dtype=np.float64)
+        self.scale = np.asarray(std["scale"], dtype=np.float64)
+        self.intercept = np.asarray(manifest["intercept"], dtype=np.float64)
+        kern = manifest["kernel"]
+        self.spec = KernelSpec.from_params(kern["name"], kern.get("params", {}))
+        self.engine = Engine(self.spec, arrays["x_train"], arrays["dual"])
+        env = manifest["envelope"]
+        self.lo = np.array([env["ranges"][f]["min"] for f in self.features])
+        self.hi = np.array([env["ranges"][f]["max"] for f in self.features])
+        nov = env["novelty"]
+        self.novelty_k = int(nov["k"])
+        self.novelty_tau = float(nov["threshold_distance"])
+        self.novelty_ref = arrays["novelty_reference"]
+        self.novelty_ref_sq = row_sq_norms(self.novelty_ref)
+        self.residuals = arrays.get("abs_residuals")  # sorted, (c, t); None: no intervals
+
+    # -- numbers -------------------------------------------------------------------------
+    def standardize(self, x: np.ndarray) -> np.ndarray:
+        """s(x) = (x − mean) / scale with the training statistics."""
+        return (x - self.mean) / self.scale
+
+    def predict(self, x) -> np.ndarray:
+        """Raw-unit predictions for raw rows ``x`` (m, d) in ``features`` order.
+
+        Returns (m,) for one target, (m, t) for several.
+        """
+        x = self._check(x)
+        y = self.engine.predict(self.standardize(x)) + self.intercept
+        return y[:, 0] if len(self.targets) == 1 else y
+
+    def predict_standardized(self, xs: np.ndarray) -> np.ndarray:
+        """(m, t) predictions for rows already standardized (service path, no re-checks)."""
+        return self.engine.predict(xs) + self.intercept
+
+    def novelty(self, xs: np.ndarray) -> np.ndarray:
+        """Novelty score of standardized rows: k-th neighbour distance / τ (see envelope)."""
+        d = envelope.kth_neighbour_distance(
+            self.novelty_ref, self.novelty_ref_sq, xs, self.novelty_k
+        )
+        return d / self.novelty_tau
+
+    def envelope(self, x, xs: np.ndarray | None = None) -> list[dict]:
+        """Envelope report per row: inside, out_of_range, novelty, novel."""
+        x = np.asarray(x, dtype=np.float64)
+        xs = self.standardize(x) if xs is None else xs
+        outside = envelope.check_ranges(x, self.lo, self.hi)
+        return envelope.describe(x, outside, self.novelty(xs), self.features, self.lo, self.hi)
+
+    @property
+    def has_intervals(self) -> bool:
+        return self.residuals is not None
+
+    def half_width(self, coverage: float) -> np.ndarray:
+        """Interval half-width per target for a nominal ``coverage``.
+
+        The ⌈(c+1)·coverage⌉-th smallest of the c calibration residuals |r|, the finite-sample
+        split-conformal quantile (Lei, G'Sell, Rinaldo, Tibshirani & Wasserman, "Distribution-free
+        predictive inference for regression", JASA 2018). Infinite when c is too small.
+        """
+        if self.residuals is None:
+            raise StoreError(f"{self.name} v{self.version} stores no interval calibration")
+        c = self.residuals.shape[0]
+        rank = math.ceil((c + 1) * coverage)
+        if rank > c:
+            return np.full(self.residuals.shape[1], np.inf)
+        return np.asarray(self.residuals[rank - 1], dtype=np.float64)
+
+    def _check(self, x) -> np.ndarray:
+        x = np.asarray(x, dtype=np.float64)
+        if x.ndim == 1 and len(self.features) == 1:
+            x = x[:, None]
+        if x.ndim != 2 or x.shape[1] != len(self.features):
+            raise ValueError(
+                f"expected rows of {len(self.features)} features ({', '.join(self.features)}), "
+                f"got shape {x.shape}"
+            )
+        if not np.isfinite(x).all():
+            i, j = np.argwhere(~np.isfinite(x))[0]
+            raise ValueError(f"row {i}, feature {self.features[j]!r}: value is not finite")
+        return x
+
+
+def load_model(store=None, name: str | None = None, version: int | None = None) -> Model:
+    """Load and verify one model version (the live one when ``version`` is None).
+
+    ``store`` is a path (or a :class:`Store`); None means env ``KRIDGE_STORE`` or
+    ``./model-store``. Every array's sha256 is checked before use; object arrays are refused.
+    """
+    if name is None:
+        raise TypeError("load_model needs a model name")
+    st = store if isinstance(store, Store) else Store(store)
+    if version is None:
+        version = st.live_version(name)
+        if version is None:
+            st.versions(name)  # NotFound when the model does not exist at all
+            raise StoreError(f"model {name!r} has no live version; release one first")
+    manifest = st.read_manifest(name, version)
+    arrays = st.load_arrays(name, version, manifest)
+    if int(manifest.get("version", -1)) != int(version) or manifest.get("model") != name:
+        raise StoreError(f"{name} v{version}: manifest names another model or version")
+    try:
+        return Model(manifest, arrays)
+    except (KeyError, TypeError, ValueError) as exc:
+        raise StoreError(f"{name} v{version}: manifest is incomplete ({exc})") from exc
+
+
+def verify(store, name: str, version: int) -> Model:
+    """Raise :class:`StoreError` naming the fault unless the version loads and predicts."""
+    model = load_model(store, name, version)
+    probe = model.standardize(model.lo[None, :] + 0.0)
+    if not np.isfinite(model.predict_standardized(probe)).all():
+        raise StoreError(f"{name} v{version}: predictions are not finite")
+    return model
+
+
+__all__ = ["Model", "load_model", "verify"]

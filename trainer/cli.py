@@ -1,0 +1,277 @@
+"""The ``kridge`` command line.
+
+Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1.
+Heavy imports (scipy, matplotlib) happen inside the commands that need them, so ``kridge
+serve`` works in a serving image without the trainer's extras.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+
+from service.store import NotFound, Store, StoreError, check_version
+from trainer.errors import UserError
+
+EXIT_USER = 2
+EXIT_FAULT = 1
+
+
+def _csv_list(text: str) -> list[str]:
+    items = [t.strip() for t in text.split(",")]
+    if not all(items):
+        raise argparse.ArgumentTypeError(f"empty name in {text!r}")
+    return items
+
+
+def _store(args) -> Store:
+    return Store(args.store)
+
+
+def cmd_train(args) -> int:
+    from trainer.train import TrainOptions, train
+
+    opts = TrainOptions(
+        data=args.data, targets=args.target, name=args.name, features=args.features,
+        kernel=args.kernel, gamma=args.gamma, degree=args.degree, coef0=args.coef0,
+        ridge=args.ridge, holdout=args.holdout, seed=args.seed, release=args.release,
+        store=args.store, quiet=args.quiet, report=not args.no_report,
+    )
+    log = (lambda *a, **k: None) if args.quiet else (lambda *a, **k: print(*a, file=sys.stderr, **k))
+    summary = train(opts, log=log)
+    if args.json:
+        print(json.dumps(summary, indent=2))
+        return 0
+    from trainer.show import headline, print_pairs
+
+    print_pairs([
+        ("model", f"{summary['name']} v{summary['version']}"
+                  + ("  (live)" if summary["live"] else "  (not live: kridge release "
+                     f"{summary['name']} {summary['version']})")),
+        ("rows", str(summary["rows"])),
+        ("features", f"{len(summary['features'])}: {', '.join(summary['features'])}"),
+        ("targets", ", ".join(summary["targets"])),
+        ("kernel", summary["kernel"]),
+        ("ridge", f"{summary['ridge']:.6g}"),
+        ("LOO", headline(summary["metrics"], "loo")),
+        ("holdout", headline(summary["metrics"], "holdout")),
+        ("time", f"{summary['seconds']} s"),
+        ("store", summary["store"]),
+    ])
+    return 0
+
+
+def cmd_versions(args) -> int:
+    from trainer.show import fmt, table
+
+    st = _store(args)
+    live = st.live_version(args.model)
+    rows = []
+    for v in st.versions(args.model):
+        try:
+            m = st.read_manifest(args.model, v)
+        except StoreError as exc:
+            rows.append(["*" if v == live else "", v, "?", "broken", str(exc).split(": ", 1)[-1]])
+            continue
+        metrics = m.get("metrics", {})
+        first = next(iter((metrics.get("holdout") or metrics.get("loo") or {}).values()), {})
+        rows.append([
+            "*" if v == live else "", v, m.get("created", "?"),
+            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}",
+            f"rmse={fmt(first.get('rmse', float('nan')))}" if first else "",
+        ])
+    if args.json:
+        print(json.dumps({"model": args.model, "live": live, "versions": [r[1] for r in rows]}))
+    else:
+        table(["live", "version", "created", "kernel", "holdout/LOO"], rows)
+    return 0
+
+
+def _verifier(st: Store, name: str):
+    from service.bundle import verify
+
+    def check(version: int) -> None:
+        verify(st, name, version)
+
+    return check
+
+
+def cmd_release(args) -> int:
+    st = _store(args)
+    rec = st.release(args.model, check_version(args.version), check=_verifier(st, args.model))
+    prev = rec["previous"]
+    print(f"{args.model}: version {rec['version']} is live (was {prev if prev else 'none'})")
+    return 0
+
+
+def cmd_rollback(args) -> int:
+    st = _store(args)
+    rec = st.rollback(args.model, check=_verifier(st, args.model))
+    print(f"{args.model}: rolled back to version {rec['version']} (was {rec['previous']})")
+    return 0
+
+
+def _resolve_version(st: Store, name: str, version) -> int:
+    if version is not None:
+        return check_version(version)
+    live = st.live_version(name)
+    if live is None:
+        versions = st.versions(name)
+        if not versions:
+            raise NotFound(f"model {name!r} has no versions")
+        return versions[-1]
+    return live
+
+
+def cmd_inspect(args) -> int:
+    from trainer.show import manifest_summary, print_pairs
+
+    st = _store(args)
+    v = _resolve_version(st, args.model, args.version)
+    m = st.read_manifest(args.model, v)
+    if args.json:
+        print(json.dumps(m, indent=2))
+    else:
+        print_pairs(manifest_summary(m, st.live_version(args.model)))
+        report = st.version_dir(args.model, v) / "report.html"
+        if report.exists():
+            print(f"report  {report}")
+    return 0
+
+
+def cmd_verify(args) -> int:
+    from service.bundle import verify
+
+    st = _store(args)
+    versions = [check_version(args.version)] if args.version else st.versions(args.model)
+    faults = 0
+    for v in versions:
+        try:
+            verify(st, args.model, v)
+            print(f"{args.model} v{v}: ok")
+        except StoreError as exc:
+            faults += 1
+            print(f"{args.model} v{v}: FAULT: {exc}", file=sys.stderr)
+    return EXIT_FAULT if faults else 0
+
+
+def cmd_predict(args) -> int:
+    from service.bundle import load_model
+    from trainer.score_file import score_csv
+
+    model = load_model(_store(args), args.model, args.version and check_version(args.version))
+    if args.out:
+        tmp = f"{args.out}.partial"
+        try:
+            with open(tmp, "w", newline="") as fh:
+                n = score_csv(model, args.data, fh, args.coverage, args.quiet)
+            os.replace(tmp, args.out)
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+        print(f"{n} rows scored with {model.name} v{model.version} -> {args.out}",
+              file=sys.stderr)
+    else:
+        score_csv(model, args.data, sys.stdout, args.coverage, quiet=True)
+    return 0
+
+
+def cmd_serve(args) -> int:
+    from service.launch import serve
+
+    return serve(bind=args.bind, workers=args.workers, store=args.store)
+
+
+def cmd_demo(args) -> int:
+    from trainer.demo import run_demo
+
+    return run_demo(store=args.store, bind=args.bind, smoke=args.smoke)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="kridge",
+        description="Kernel ridge regression: train, freeze into a versioned bundle, serve.",
+    )
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def add(name, func, help_):
+        sp = sub.add_parser(name, help=help_, description=help_)
+        sp.add_argument("--store", help="store root (default: $KRIDGE_STORE or ./model-store)")
+        sp.set_defaults(func=func)
+        return sp
+
+    t = add("train", cmd_train, "fit a model from a CSV/Parquet file and publish a new version")
+    t.add_argument("data", help="CSV with a header row (or .parquet)")
+    t.add_argument("--target", required=True, type=_csv_list, help="target column(s), comma-separated")
+    t.add_argument("--name", required=True, help="model name")
+    t.add_argument("--features", type=_csv_list, help="feature columns (default: all but targets)")
+    t.add_argument("--kernel", default="rbf",
+                   help="linear, polynomial, rbf, laplacian, sigmoid, matern32, matern52, or auto")
+    t.add_argument("--gamma", type=float)
+    t.add_argument("--degree", type=float)
+    t.add_argument("--coef0", type=float)
+    t.add_argument("--ridge", type=float, help="ridge penalty λ (omit to tune)")
+    t.add_argument("--holdout", type=float, default=0.2, help="held-out fraction (default 0.2)")
+    t.add_argument("--seed", type=int, default=0)
+    t.add_argument("--release", action="store_true", help="make the new version live")
+    t.add_argument("--no-report", action="store_true", help="skip report.html")
+    t.add_argument("--quiet", action="store_true")
+    t.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+    v = add("versions", cmd_versions, "list versions; * marks the live one")
+    v.add_argument("model")
+    v.add_argument("--json", action="store_true")
+
+    r = add("release", cmd_release, "make a version live (after verifying it)")
+    r.add_argument("model")
+    r.add_argument("version")
+
+    rb = add("rollback", cmd_rollback, "make the previously live version live again")
+    rb.add_argument("model")
+
+    i = add("inspect", cmd_inspect, "summary of a version's manifest (default: live)")
+    i.add_argument("model")
+    i.add_argument("version", nargs="?")
+    i.add_argument("--json", action="store_true", help="the whole manifest as JSON")
+
+    ve = add("verify", cmd_verify, "check checksums and loadability (all versions by default)")
+    ve.add_argument("model")
+    ve.add_argument("version", nargs="?")
+
+    pr = add("predict", cmd_predict, "offline batch predictions of a CSV to a CSV")
+    pr.add_argument("model")
+    pr.add_argument("data")
+    pr.add_argument("--version")
+    pr.add_argument("--out", help="output CSV (default: standard output)")
+    pr.add_argument("--coverage", type=float, help="add interval bounds at this coverage")
+    pr.add_argument("--quiet", action="store_true")
+
+    s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
+    s.add_argument("--bind", default=None, help="HOST:PORT (default $KRIDGE_BIND or 127.0.0.1:8000)")
+    s.add_argument("--workers", type=int, default=None, help="worker processes (default 2)")
+
+    d = add("demo", cmd_demo, "demo data -> train -> release -> serve, with example calls")
+    d.add_argument("--bind", default=None)
+    d.add_argument("--smoke", action="store_true", help="make the example calls, then exit")
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except (UserError, StoreError) as exc:
+        print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_USER
+    except ValueError as exc:  # e.g. bad kernel parameters from KernelSpec
+        print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_USER
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,56 @@
+"""Training-envelope statistics computed at fit time and stored in the manifest.
+
+See :mod:`service.envelope` for how the service uses them. Calibration of the novelty
+threshold τ is honest about self-distance: when the training set is small enough to be the
+reference itself, each row's k-th neighbour distance is taken leaving that row out; when it
+is larger, a random reference subset is kept and τ is calibrated on the rows *not* in it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from service.envelope import NOVELTY_K, NOVELTY_QUANTILE, kth_neighbour_distance
+from service.kernels import row_sq_norms
+
+#: Largest reference set kept for the novelty score (bounds its per-request cost).
+REFERENCE_ROWS = 4000
+
+
+def envelope_stats(
+    x_raw: np.ndarray, x_s: np.ndarray, features: list[str], seed: int = 0
+) -> tuple[dict, np.ndarray]:
+    """Per-feature ranges and the novelty reference. Returns (manifest part, reference rows)."""
+    n = x_s.shape[0]
+    ranges = {
+        f: {"min": float(x_raw[:, j].min()), "max": float(x_raw[:, j].max())}
+        for j, f in enumerate(features)
+    }
+    k = min(NOVELTY_K, n - 1)
+    if n <= REFERENCE_ROWS:
+        reference = x_s
+        calib = kth_neighbour_distance(reference, row_sq_norms(reference), x_s, k, True)
+        how = "leave-one-out k-th neighbour distance of every training row"
+    else:
+        rng = np.random.default_rng(seed)
+        pick = np.zeros(n, dtype=bool)
+        pick[rng.choice(n, REFERENCE_ROWS, replace=False)] = True
+        reference = x_s[pick]
+        calib = kth_neighbour_distance(reference, row_sq_norms(reference), x_s[~pick], k)
+        how = (f"k-th neighbour distance to a random reference of {REFERENCE_ROWS} training "
+               f"rows, measured on the {n - REFERENCE_ROWS} training rows outside it")
+    tau = float(np.quantile(calib, NOVELTY_QUANTILE))
+    if tau <= 0:
+        tau = float(calib.max()) or 1.0
+    novelty = {
+        "method": "k-nearest-neighbour distance in standardized feature space "
+                  "(Ramaswamy, Rastogi & Shim, SIGMOD 2000)",
+        "k": int(k),
+        "score": "novelty = d_k(x) / threshold_distance; novel when novelty > 1",
+        "threshold_distance": tau,
+        "calibration": f"{NOVELTY_QUANTILE} quantile of the {how}",
+        "calibration_rows": int(calib.shape[0]),
+        "reference_rows": int(reference.shape[0]),
+        "training_rows_flagged": float(np.mean(calib > tau)),
+    }
+    return {"ranges": ranges, "novelty": novelty}, np.ascontiguousarray(reference)

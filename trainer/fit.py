@@ -1,0 +1,145 @@
+"""Exact kernel ridge regression fit.
+
+The model (design notes, "Numerics"): features standardized with the training mean and
+population standard deviation; target centered on its training mean; dual coefficients
+
+    α = (K + λI)⁻¹ (y − ȳ),
+
+solved with a Cholesky factorization (Golub & Van Loan, *Matrix Computations*, 4th ed., §4.2).
+The same α is what scikit-learn's ``KernelRidge`` computes (its ``alpha`` is our ridge λ).
+"""
+
+from __future__ import annotations
+
+import contextlib
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg as sla
+from scipy.linalg import lapack
+from threadpoolctl import threadpool_limits
+
+from service.kernels import KernelSpec, kernel_matrix
+from trainer.errors import UserError
+
+#: Reciprocal condition number below which the system is called numerically singular.
+RCOND_MIN = 1e-13
+#: From this size on, LAPACK factorizations run on one BLAS thread: the OpenBLAS bundled with
+#: the numpy/scipy wheels here crashes (SIGSEGV) in multi-threaded Cholesky at n ≥ 16,000 on
+#: AVX-512 CPUs (shared/platform-notes.md); 12,000 leaves a margin below the smallest size
+#: seen to crash. One thread costs about 25 % in time at n = 20,000.
+SINGLE_THREAD_FROM = 12_000
+
+
+def safe_lapack(n: int):
+    """Context for an n × n LAPACK factorization that must not crash the process."""
+    if n >= SINGLE_THREAD_FROM:
+        return threadpool_limits(1, user_api="blas")
+    return contextlib.nullcontext()
+
+
+@dataclass
+class Standardizer:
+    """s(x) = (x − mean) / scale with population statistics; constant features get scale 1."""
+
+    mean: np.ndarray
+    scale: np.ndarray
+
+    @classmethod
+    def fit(cls, x: np.ndarray) -> Standardizer:
+        mean = x.mean(axis=0)
+        scale = x.std(axis=0)  # ddof=0, as scikit-learn's StandardScaler
+        scale[scale == 0] = 1.0
+        return cls(mean, scale)
+
+    def __call__(self, x: np.ndarray) -> np.ndarray:
+        return (x - self.mean) / self.scale
+
+
+@dataclass
+class Fit:
+    """A fitted model in the form the bundle stores."""
+
+    spec: KernelSpec
+    ridge: float
+    scaler: Standardizer
+    intercept: np.ndarray  # (t,)
+    x_s: np.ndarray  # (n, d) standardized training rows
+    dual: np.ndarray  # (n, t)
+    loo_residuals: np.ndarray | None = None  # (n, t), exact, when asked for
+
+    def predict(self, x_raw: np.ndarray) -> np.ndarray:
+        """(m, t) raw-unit predictions (small batches; serving uses the tiled engine)."""
+        k = kernel_matrix(self.spec, self.scaler(x_raw), self.x_s)
+        return k @ self.dual + self.intercept
+
+
+def solve_dual(k: np.ndarray, y_c: np.ndarray, ridge: float, want_loo: bool = False):
+    """Solve (K + λI) α = y_c by Cholesky, overwriting ``k``.
+
+    Parameters
+    ----------
+    k : (n, n) kernel matrix; destroyed.
+    y_c : (n, t) centered targets.
+    ridge : λ > 0 (0 is allowed when K itself is positive definite).
+    want_loo : also return the exact leave-one-out residuals r_i = α_i / [(K + λI)⁻¹]_ii
+        (Allen, "The relationship between variable selection and data augmentation and a
+        method for prediction", Technometrics 1974; the standard PRESS identity for linear
+        smoothers), with the standardization and intercept held fixed.
+
+    Returns
+    -------
+    (α, loo residuals or None)
+
+    Raises
+    ------
+    UserError when K + λI is not numerically positive definite.
+    """
+    n = k.shape[0]
+    k.flat[:: n + 1] += ridge
+    anorm = np.abs(k).sum(axis=0).max()
+    hint = f"the kernel system (n = {n}, ridge = {ridge:g}) is numerically singular; " \
+        "raise --ridge (e.g. by a factor of 10) or remove duplicated/near-duplicate rows"
+    with safe_lapack(n):
+        try:
+            c, lower = sla.cho_factor(k, lower=True, overwrite_a=True, check_finite=False)
+        except np.linalg.LinAlgError:
+            raise UserError(hint) from None
+        # c.T is Fortran-ordered with Lᵀ in its upper triangle: LAPACK reads it without a copy
+        rcond, info = lapack.dpocon(c.T, anorm, uplo="U")
+        if info != 0 or rcond < RCOND_MIN:
+            raise UserError(f"{hint} (reciprocal condition number {rcond:.1e})")
+        dual = sla.cho_solve((c, lower), y_c, check_finite=False)
+        loo = None
+        if want_loo:
+            inv, info = lapack.dpotri(c.T, lower=0, overwrite_c=True)
+            if info != 0:
+                raise UserError(hint)
+            loo = dual / np.diag(inv)[:, None]
+    return dual, loo
+
+
+def fit_exact(
+    x: np.ndarray, y: np.ndarray, spec: KernelSpec, ridge: float, want_loo: bool = False
+) -> Fit:
+    """Standardize, center and solve the kernel ridge system exactly. ``y`` is (n, t)."""
+    if not ridge >= 0:
+        raise UserError(f"ridge must be a non-negative number, got {ridge}")
+    scaler = Standardizer.fit(x)
+    x_s = scaler(x)
+    intercept = y.mean(axis=0)
+    k = kernel_matrix(spec, x_s)
+    dual, loo = solve_dual(k, y - intercept, ridge, want_loo)
+    return Fit(spec, ridge, scaler, intercept, x_s, dual, loo)
+
+
+def scores(y_true: np.ndarray, y_pred: np.ndarray) -> dict[str, float]:
+    """RMSE, MAE and R² (1 − SS_res/SS_tot) of one target."""
+    err = y_true - y_pred
+    ss_tot = float(((y_true - y_true.mean()) ** 2).sum())
+    return {
+        "rmse": float(np.sqrt(np.mean(err**2))),
+        "mae": float(np.mean(np.abs(err))),
+        "r2": float(1.0 - (err**2).sum() / ss_tot) if ss_tot > 0 else float("nan"),
+        "rows": int(y_true.shape[0]),
+    }

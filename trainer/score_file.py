@@ -1,0 +1,72 @@
+"""Offline batch predictions: a CSV in, a CSV out, streamed in chunks.
+
+Output columns: the model's features as read, then ``<target>_predicted`` for each target,
+``<target>_lower``/``<target>_upper`` when a coverage is asked, then the envelope flags
+``inside``, ``novelty`` and ``out_of_range`` (feature names joined by ``;``).
+"""
+
+from __future__ import annotations
+
+import csv
+import sys
+
+import numpy as np
+
+from service.bundle import Model
+from trainer.data import iter_csv_chunks
+from trainer.errors import UserError
+
+CHUNK_ROWS = 50_000
+
+
+def _progress(quiet: bool):
+    """A rows-scored counter on a terminal (tqdm, when the trainer extras are installed)."""
+    if quiet or not sys.stderr.isatty():
+        return None
+    try:
+        from tqdm import tqdm
+    except ImportError:
+        return None
+    return tqdm(unit=" rows", unit_scale=True, desc="scoring", file=sys.stderr)
+
+
+def score_csv(model: Model, path, out, coverage: float | None = None, quiet: bool = False,
+              chunk_rows: int = CHUNK_ROWS) -> int:
+    """Write predictions for every row of ``path`` to the text stream ``out``; returns rows."""
+    half = None
+    if coverage is not None:
+        if not 0 < coverage < 1:
+            raise UserError(f"--coverage must be between 0 and 1 (exclusive), got {coverage}")
+        if not model.has_intervals:
+            raise UserError(f"{model.name} v{model.version} has no interval calibration")
+        half = model.half_width(coverage)
+    writer = csv.writer(out, lineterminator="\n")
+    header = list(model.features) + [f"{t}_predicted" for t in model.targets]
+    if half is not None:
+        for t in model.targets:
+            header += [f"{t}_lower", f"{t}_upper"]
+    writer.writerow(header + ["inside", "novelty", "out_of_range"])
+    bar = _progress(quiet)
+    total = 0
+    for _start, x in iter_csv_chunks(path, model.features, chunk_rows):
+        if not x.shape[0]:
+            continue
+        xs = model.standardize(x)
+        y = model.predict_standardized(xs)
+        env = model.envelope(x, xs)
+        cols = [x, y]
+        if half is not None:
+            bounds = np.empty((y.shape[0], 2 * y.shape[1]))
+            bounds[:, 0::2] = y - half
+            bounds[:, 1::2] = y + half
+            cols.append(bounds)
+        numbers = np.hstack(cols)
+        for row, e in zip(numbers, env, strict=True):
+            writer.writerow([repr(float(v)) for v in row] + [
+                "true" if e["inside"] else "false", e["novelty"], ";".join(e["out_of_range"])])
+        total += x.shape[0]
+        if bar is not None:
+            bar.update(x.shape[0])
+    if bar is not None:
+        bar.close()
+    return total

@@ -1,0 +1,69 @@
+"""Plain-text presentation for the command line: tables and manifest summaries."""
+
+from __future__ import annotations
+
+import sys
+
+
+def table(headers: list[str], rows: list[list], out=None) -> None:
+    """Print an aligned text table."""
+    out = out or sys.stdout
+    cells = [[str(c) for c in headers]] + [["" if c is None else str(c) for c in r] for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
+    for k, r in enumerate(cells):
+        print("  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip(), file=out)
+        if k == 0:
+            print("  ".join("-" * w for w in widths), file=out)
+
+
+def fmt(value, digits: int = 4) -> str:
+    if isinstance(value, float):
+        return f"{value:.{digits}g}"
+    return str(value)
+
+
+def headline(metrics: dict, kind: str) -> str:
+    """'hardness: RMSE 1.2, R² 0.95; gloss: …' for one metric family, or '–'."""
+    part = metrics.get(kind) or {}
+    bits = [
+        f"{t}: RMSE {fmt(m['rmse'])}, MAE {fmt(m['mae'])}, R² {fmt(m['r2'], 3)}"
+        for t, m in part.items()
+    ]
+    return "; ".join(bits) or "–"
+
+
+def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
+    """Key lines of a manifest for ``kridge inspect``."""
+    tr = m.get("training", {})
+    env = m.get("envelope", {})
+    nov = env.get("novelty", {})
+    kern = m["kernel"]
+    params = ", ".join(f"{k}={fmt(v, 6)}" for k, v in kern.get("params", {}).items())
+    lines = [
+        ("model", f"{m['model']} v{m['version']}" + ("  (live)" if live == m["version"] else "")),
+        ("created", m.get("created", "?")),
+        ("features", ", ".join(m["features"])),
+        ("targets", ", ".join(m["targets"])),
+        ("kernel", f"{kern['name']}({params})"),
+        ("ridge", fmt(m["ridge"], 6)),
+        ("training rows", f"{tr.get('rows')} (holdout {tr.get('holdout_rows', 0)} rows, "
+                          f"seed {tr.get('seed')}), data sha256 {str(tr.get('data_sha256'))[:16]}…"),
+        ("LOO", headline(m.get("metrics", {}), "loo")),
+        ("holdout", headline(m.get("metrics", {}), "holdout")),
+    ]
+    tuning = m.get("tuning")
+    if tuning:
+        lines.append(("tuning", tuning.get("summary", tuning.get("method", ""))))
+    if m.get("intervals"):
+        lines.append(("intervals", m["intervals"]["method"]))
+    lines.append(("novelty", f"k={nov.get('k')}, threshold distance "
+                             f"{fmt(nov.get('threshold_distance', float('nan')))} "
+                             f"({nov.get('calibration', '')})"))
+    lines.append(("precision", m.get("precision", "float64")))
+    return lines
+
+
+def print_pairs(pairs: list[tuple[str, str]], out=None) -> None:
+    width = max(len(k) for k, _ in pairs)
+    for k, v in pairs:
+        print(f"{k.ljust(width)}  {v}", file=out or sys.stdout)
