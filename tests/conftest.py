@@ -1,0 +1,25 @@
+"""Shared fixtures: a fresh store per test and the demo data file."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO_CSV = ROOT / "demo_data" / "coating_line.csv"
+sys.path.insert(0, str(ROOT / "demo_data"))
+
+
+@pytest.fixture
+def store_dir(tmp_path, monkeypatch) -> Path:
+    """An empty store root; KRIDGE_STORE points at it for the test's duration."""
+    root = tmp_path / "store"
+    monkeypatch.setenv("KRIDGE_STORE", str(root))
+    return root
+
+
+@pytest.fixture(scope="session")
+def demo_csv() -> Path:
+    return DEMO_CSV
