@@ -1,0 +1,241 @@
+"""The Flask application factory: every route of the service on one screen.
+
+Routes and fields are fixed by the design notes. Handlers stay thin: request validation and
+the answer's shape live in :mod:`service.predict`, models in :mod:`service.hub`, the store in
+:mod:`service.store`.
+"""
+
+from __future__ import annotations
+
+import hmac
+import logging
+import time
+
+import orjson
+from flask import Flask, Response, g, request
+from pydantic import ValidationError
+from werkzeug.exceptions import HTTPException
+
+from service import metrics
+from service.bundle import verify
+from service.errors import ApiError
+from service.hub import ModelHub
+from service.openapi import build_openapi
+from service.predict import parse_body, predict_response
+from service.schemas import ReleaseRequest
+from service.settings import Settings
+from service.store import NotFound, Store, StoreError, check_name
+
+log = logging.getLogger("kridge.service")
+
+
+def json_response(body, status: int = 200, headers: dict | None = None) -> Response:
+    return Response(orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY), status=status,
+                    headers=headers, mimetype="application/json")
+
+
+def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
+    """Build the app; ``watch`` starts the live.json watcher thread (off in unit tests)."""
+    settings = settings or Settings.from_env()
+    app = Flask(__name__)
+    app.config["MAX_CONTENT_LENGTH"] = settings.max_body_bytes
+    store = Store(settings.store)
+    hub = ModelHub(store, settings.pinned_cache,
+                   on_load_failure=lambda n, v, _: metrics.LOAD_FAILURES.labels(n, str(v)).inc())
+    if watch:
+        hub.start(settings.poll_seconds)
+    else:
+        hub.refresh()
+    app.extensions["kridge"] = {"hub": hub, "store": store, "settings": settings}
+    openapi_doc = orjson.dumps(build_openapi(settings.max_rows, settings.max_body_bytes))
+
+    def model_name(name: str) -> str:
+        try:
+            check_name(name)
+        except StoreError as exc:
+            raise ApiError(404, "model_not_found", str(exc)) from None
+        if not store.model_dir(name).is_dir():
+            # said here rather than by the store, whose message names its folder
+            raise ApiError(404, "model_not_found", f"no model named {name!r}")
+        return name
+
+    # -- errors --------------------------------------------------------------------------
+    @app.errorhandler(ApiError)
+    def api_error(exc: ApiError):
+        label = getattr(g, "model_labels", ("", ""))
+        metrics.ERRORS.labels(label[0], label[1], exc.code).inc()
+        return json_response(exc.body(), exc.status)
+
+    @app.errorhandler(HTTPException)
+    def http_error(exc: HTTPException):
+        code = (exc.name or "error").lower().replace(" ", "_")
+        message = {413: f"request body is larger than {settings.max_body_bytes} bytes "
+                        "(KRIDGE_MAX_BODY_BYTES)"}.get(exc.code, exc.description or exc.name)
+        return api_error(ApiError(exc.code or 500, code, message))
+
+    @app.errorhandler(Exception)
+    def unexpected(exc: Exception):
+        log.exception("unhandled error on %s %s", request.method, request.path)
+        metrics.ERRORS.labels("", "", "internal").inc()
+        return json_response({"error": {"code": "internal", "message": "internal error; "
+                                        "see the service log", "details": None}}, 500)
+
+    # -- discovery -----------------------------------------------------------------------
+    @app.get("/healthz")
+    def healthz():
+        return json_response({"up": True})
+
+    @app.get("/readyz")
+    def readyz():
+        ready, served, problems = hub.readiness()
+        return json_response({"ready": ready, "models": served, "problems": problems},
+                             200 if ready else 503)
+
+    @app.get("/models")
+    def list_models():
+        out = []
+        for name in store.models():
+            try:
+                out.append({"name": name, "live_version": store.live_version(name),
+                            "versions": store.versions(name)})
+            except StoreError as exc:
+                log.warning("model %s skipped in listing: %s", name, exc)
+        return json_response({"models": out})
+
+    @app.get("/models/<name>")
+    def describe(name: str):
+        try:
+            m = hub.live(model_name(name))
+        except StoreError as exc:
+            raise ApiError(404, "model_not_found", str(exc)) from None
+        man = m.manifest
+        return json_response({
+            "model": m.name, "version": m.version, "created": man.get("created"),
+            "features": m.features, "targets": m.targets, "kernel": man["kernel"],
+            "ridge": man["ridge"], "training_rows": man.get("training", {}).get("rows"),
+            "metrics": man.get("metrics"), "ranges": man["envelope"]["ranges"],
+            "novelty": {k: v for k, v in man["envelope"]["novelty"].items()},
+            "intervals": m.has_intervals,
+        })
+
+    @app.get("/models/<name>/versions")
+    def list_versions(name: str):
+        name = model_name(name)  # 404 for an unknown model
+        try:
+            live = store.live_version(name)
+            versions = store.versions(name)
+        except StoreError as exc:
+            raise ApiError(404, "model_not_found", str(exc)) from None
+        rows = []
+        for v in versions:
+            try:
+                man = store.read_manifest(name, v)
+                rows.append({"version": v, "created": man.get("created"), "live": v == live,
+                             "kernel": man["kernel"]["name"], "metrics": man.get("metrics")})
+            except StoreError as exc:
+                rows.append({"version": v, "created": None, "live": v == live, "kernel": None,
+                             "metrics": None, "fault": str(exc)})
+        return json_response({"model": name, "live_version": live, "versions": rows})
+
+    @app.get("/openapi.json")
+    def openapi():
+        return Response(openapi_doc, mimetype="application/json")
+
+    @app.get("/metrics")
+    def prometheus():
+        body, ctype = metrics.exposition()
+        return Response(body, content_type=ctype)
+
+    # -- predict -------------------------------------------------------------------------
+    @app.post("/models/<name>/predict")
+    def predict(name: str):
+        t_start = time.perf_counter()
+        name = model_name(name)
+        g.model_labels = (name, "")
+        pinned = request.args.get("version")
+        try:
+            if pinned is not None:
+                if not pinned.isdigit() or int(pinned) < 1:
+                    raise ApiError(400, "invalid_version",
+                                   f"version must be a positive integer, got {pinned!r}")
+                model = hub.pinned_version(name, int(pinned))
+            else:
+                model = hub.live(name)
+        except NotFound as exc:
+            raise ApiError(404, "model_not_found", str(exc)) from None
+        except StoreError as exc:
+            raise ApiError(404, "version_unavailable", str(exc)) from None
+        labels = (name, str(model.version))
+        g.model_labels = labels
+        if not request.is_json:
+            raise ApiError(415, "unsupported_media_type",
+                           "send the body as JSON with Content-Type: application/json")
+        req = parse_body(request.get_data(cache=False), settings.max_rows)
+        t_parsed = time.perf_counter()
+        body, compute = predict_response(model, req, t_start, t_parsed)
+        out_of_range = sum(1 for r in body["results"] if r["envelope"]["out_of_range"])
+        novel = sum(1 for r in body["results"] if r["envelope"]["novel"])
+        metrics.ROWS.labels(*labels).inc(len(body["results"]))
+        if out_of_range:
+            metrics.FLAGS.labels(*labels, "out_of_range").inc(out_of_range)
+        if novel:
+            metrics.FLAGS.labels(*labels, "novel").inc(novel)
+        metrics.COMPUTE_SECONDS.labels(*labels).observe(compute)
+        t = body["timing_ms"]
+        t["total"] = round((time.perf_counter() - t_start) * 1e3, 4)
+        metrics.REQUEST_SECONDS.labels(*labels).observe(t["total"] / 1e3)
+        headers = {
+            "Server-Timing": f"parse;dur={t['parse']}, compute;dur={t['compute']}, "
+                             f"total;dur={t['total']}",
+            "X-Model-Version": str(model.version),
+        }
+        return json_response(body, 200, headers)
+
+    # -- admin ---------------------------------------------------------------------------
+    def require_admin() -> None:
+        token = settings.admin_token
+        if not token:
+            raise ApiError(403, "admin_disabled",
+                           "admin routes are disabled: set KRIDGE_ADMIN_TOKEN to enable them")
+        given = request.headers.get("Authorization", "")
+        scheme, _, value = given.partition(" ")
+        if scheme.lower() != "bearer" or not hmac.compare_digest(
+            value.strip().encode(), token.encode()
+        ):
+            raise ApiError(401, "unauthorized", "missing or wrong bearer token")
+
+    def check(name: str):
+        def run(version: int) -> None:
+            verify(store, name, version)
+        return run
+
+    @app.post("/models/<name>/release")
+    def release(name: str):
+        require_admin()
+        name = model_name(name)
+        try:
+            body = ReleaseRequest.model_validate(orjson.loads(request.get_data() or b"null"))
+        except (orjson.JSONDecodeError, ValidationError):
+            raise ApiError(422, "invalid_request",
+                           'send {"version": N} with N a positive integer') from None
+        try:
+            rec = store.release(name, body.version, check=check(name))
+        except NotFound as exc:
+            raise ApiError(404, "model_not_found", str(exc)) from None
+        except StoreError as exc:
+            raise ApiError(422, "version_refused", str(exc)) from None
+        return json_response({"model": name, **rec})
+
+    @app.post("/models/<name>/rollback")
+    def rollback(name: str):
+        require_admin()
+        name = model_name(name)
+        try:
+            rec = store.rollback(name, check=check(name))
+        except NotFound as exc:
+            raise ApiError(404, "model_not_found", str(exc)) from None
+        except StoreError as exc:
+            raise ApiError(422, "rollback_refused", str(exc)) from None
+        return json_response({"model": name, **rec})
+
+    return app

@@ -1,0 +1,151 @@
+"""Loaded models of one worker process, kept in step with the store.
+
+A daemon thread polls every model's ``live.json`` (a cheap ``stat``: a release replaces the
+file by rename, so its inode and mtime change). When the live version changes, the new
+version is loaded and verified on that thread — never on the request path — and swapped in
+with one reference assignment. A version that fails to load is never served: the old one
+keeps serving, the failure is logged and counted, and loading is retried only when live.json
+changes again. Versions pinned by ``?version=N`` load on demand into a small LRU cache.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import threading
+from collections import OrderedDict
+from collections.abc import Callable
+from dataclasses import dataclass
+
+from service.bundle import Model, load_model
+from service.store import NotFound, Store, StoreError
+
+log = logging.getLogger("kridge.hub")
+
+
+@dataclass
+class LiveSlot:
+    stamp: tuple | None = None  # (inode, mtime_ns, size) of live.json last acted on
+    wanted: int | None = None  # version live.json names
+    model: Model | None = None  # version being served
+    problem: str | None = None  # why ``wanted`` is not being served
+
+
+class ModelHub:
+    """The models this worker serves: the live version of each, plus a few pinned ones."""
+
+    def __init__(
+        self,
+        store: Store,
+        pinned_cache: int = 4,
+        on_load_failure: Callable[[str, int, str], None] | None = None,
+    ):
+        self.store = store
+        self.slots: dict[str, LiveSlot] = {}
+        self.pinned: OrderedDict[tuple[str, int], Model] = OrderedDict()
+        self.pinned_cache = pinned_cache
+        self.on_load_failure = on_load_failure
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    # -- keeping in step with the store --------------------------------------------------
+    def refresh(self) -> None:
+        """One pass over the store: pick up new models and changed live pointers."""
+        for name in self.store.models():
+            slot = self.slots.setdefault(name, LiveSlot())
+            path = self.store.model_dir(name) / "live.json"
+            try:
+                st = os.stat(path)
+                stamp = (st.st_ino, st.st_mtime_ns, st.st_size)
+            except FileNotFoundError:
+                stamp = None
+            if stamp == slot.stamp:
+                continue
+            slot.stamp = stamp
+            try:
+                version = self.store.live_version(name)
+            except StoreError as exc:
+                slot.problem = str(exc)
+                continue
+            slot.wanted = version
+            if version is None or (slot.model is not None and slot.model.version == version):
+                slot.problem = None
+                continue
+            try:
+                model = self._cached_pinned(name, version) or load_model(self.store, name, version)
+            except (StoreError, OSError, ValueError) as exc:
+                slot.problem = f"version {version} was not loaded: {exc}"
+                log.error("model %s: live version %s refused: %s", name, version, exc)
+                if self.on_load_failure is not None:
+                    self.on_load_failure(name, version, str(exc))
+                continue
+            slot.model = model  # the swap: requests see old or new, never half
+            slot.problem = None
+            log.info("model %s: now serving version %s", name, version)
+
+    def start(self, interval: float) -> None:
+        """Load what is live now, then keep polling on a daemon thread."""
+        self.refresh()
+        self._thread = threading.Thread(
+            target=self._poll, args=(interval,), name="kridge-live-watch", daemon=True
+        )
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+
+    def _poll(self, interval: float) -> None:
+        while not self._stop.wait(interval):
+            try:
+                self.refresh()
+            except Exception:  # keep watching whatever one pass hit
+                log.exception("refreshing models from the store failed")
+
+    # -- lookups from request handlers ---------------------------------------------------
+    def live(self, name: str) -> Model:
+        """The live model, or NotFound/StoreError with a message for the caller."""
+        slot = self.slots.get(name)
+        if slot is None or slot.model is None:
+            self.store.versions(name)  # NotFound when no such model
+            if slot is None:  # created after our last poll: look once more
+                self.refresh()
+                slot = self.slots.get(name)
+            if slot is None or slot.model is None:
+                why = slot.problem if slot and slot.problem else "no version is live yet"
+                raise NotFound(f"model {name!r} has nothing to serve: {why}")
+        return slot.model
+
+    def _cached_pinned(self, name: str, version: int) -> Model | None:
+        with self._lock:
+            model = self.pinned.get((name, version))
+            if model is not None:
+                self.pinned.move_to_end((name, version))
+            return model
+
+    def pinned_version(self, name: str, version: int) -> Model:
+        """A specific version: the live model if it is that one, else load into the LRU."""
+        slot = self.slots.get(name)
+        if slot is not None and slot.model is not None and slot.model.version == version:
+            return slot.model
+        model = self._cached_pinned(name, version)
+        if model is not None:
+            return model
+        model = load_model(self.store, name, version)
+        with self._lock:
+            self.pinned[(name, version)] = model
+            while len(self.pinned) > self.pinned_cache:
+                self.pinned.popitem(last=False)
+        return model
+
+    def readiness(self) -> tuple[bool, dict[str, int | None], dict[str, str]]:
+        """Ready when every model with a live version is served at that version."""
+        served, problems = {}, {}
+        for name, slot in self.slots.items():
+            served[name] = slot.model.version if slot.model else None
+            if slot.wanted is not None and (slot.model is None or slot.model.version != slot.wanted):
+                problems[name] = slot.problem or f"version {slot.wanted} is loading"
+        return not problems, served, problems
+
+
+__all__ = ["ModelHub", "NotFound"]

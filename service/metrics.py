@@ -1,0 +1,49 @@
+"""Prometheus metrics. Under gunicorn, prometheus_client's multiprocess mode
+(``PROMETHEUS_MULTIPROC_DIR``, set by the gunicorn config) makes every worker write its own
+files and ``/metrics`` add them up, so the figures cover all workers whichever one answers."""
+
+from __future__ import annotations
+
+import os
+
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    REGISTRY,
+    CollectorRegistry,
+    Counter,
+    Histogram,
+    generate_latest,
+)
+
+# Latency buckets in seconds: 0.1 ms to 2.5 s; single-row requests live at the low end.
+BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25,
+           0.5, 1.0, 2.5)
+
+REQUEST_SECONDS = Histogram(
+    "kridge_request_seconds", "Predict request time, body read to response built.",
+    ["model", "version"], buckets=BUCKETS,
+)
+COMPUTE_SECONDS = Histogram(
+    "kridge_compute_seconds", "Time in the kernel computation and envelope of a request.",
+    ["model", "version"], buckets=BUCKETS,
+)
+ROWS = Counter("kridge_rows_predicted", "Rows predicted.", ["model", "version"])
+FLAGS = Counter(
+    "kridge_envelope_flags", "Rows flagged outside the training envelope, by flag.",
+    ["model", "version", "flag"],
+)
+ERRORS = Counter("kridge_errors", "Error responses by code.", ["model", "version", "code"])
+LOAD_FAILURES = Counter(
+    "kridge_load_failures", "Live versions a worker refused to load.", ["model", "version"]
+)
+
+
+def exposition() -> tuple[bytes, str]:
+    """The text exposition, aggregated across processes when in multiprocess mode."""
+    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        from prometheus_client import multiprocess
+
+        registry = CollectorRegistry()
+        multiprocess.MultiProcessCollector(registry)
+        return generate_latest(registry), CONTENT_TYPE_LATEST
+    return generate_latest(REGISTRY), CONTENT_TYPE_LATEST

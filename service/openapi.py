@@ -1,0 +1,105 @@
+"""OpenAPI 3.1 document, generated from the pydantic classes in :mod:`service.schemas`."""
+
+from __future__ import annotations
+
+from pydantic.json_schema import models_json_schema
+
+from service import schemas as s
+
+REF = "#/components/schemas/{model}"
+
+
+def _json(name: str) -> dict:
+    return {"content": {"application/json": {"schema": {"$ref": REF.format(model=name)}}}}
+
+
+def _resp(desc: str, name: str | None = None) -> dict:
+    out = {"description": desc}
+    if name:
+        out.update(_json(name))
+    return out
+
+
+def build_openapi(max_rows: int, max_body: int) -> dict:
+    """The whole document; limits are stated in the predict operation's description."""
+    _, defs = models_json_schema(
+        [(m, "validation") for m in (
+            s.PredictRequest, s.PredictResponse, s.ErrorResponse, s.ReleaseRequest,
+            s.ReleaseResponse, s.VersionsResponse, s.ModelsResponse, s.ModelSummary,
+            s.Health, s.Readiness,
+        )],
+        ref_template=REF,
+    )
+    err = {code: _resp(text, "ErrorResponse") for code, text in (
+        ("400", "Malformed JSON or a bad query parameter"),
+        ("404", "No such model or version"),
+        ("413", "Body or row count over the limit"),
+        ("415", "Body is not application/json"),
+        ("422", "Request does not fit the model (names row and feature)"),
+    )}
+    name = {"name": "name", "in": "path", "required": True, "schema": {"type": "string"}}
+    admin = [{"bearer": []}]
+    admin_err = {
+        "401": _resp("Missing or wrong bearer token", "ErrorResponse"),
+        "403": _resp("Admin routes disabled (no KRIDGE_ADMIN_TOKEN)", "ErrorResponse"),
+        "404": err["404"], "422": err["422"],
+    }
+    paths = {
+        "/healthz": {"get": {"summary": "Process is up", "operationId": "health",
+                             "responses": {"200": _resp("Up", "Health")}}},
+        "/readyz": {"get": {"summary": "Every live model is loaded", "operationId": "ready",
+                            "responses": {"200": _resp("Ready", "Readiness"),
+                                          "503": _resp("Not ready", "Readiness")}}},
+        "/models": {"get": {"summary": "Models with live version and versions",
+                            "operationId": "listModels",
+                            "responses": {"200": _resp("Models", "ModelsResponse")}}},
+        "/models/{name}": {"get": {
+            "summary": "Live version's manifest summary", "operationId": "describeModel",
+            "parameters": [name],
+            "responses": {"200": _resp("Summary", "ModelSummary"), "404": err["404"]}}},
+        "/models/{name}/versions": {"get": {
+            "summary": "Versions with created time, metrics and live marker",
+            "operationId": "listVersions", "parameters": [name],
+            "responses": {"200": _resp("Versions", "VersionsResponse"), "404": err["404"]}}},
+        "/models/{name}/predict": {"post": {
+            "summary": "Predict with the live version (or a pinned one)",
+            "description": f"At most {max_rows} rows and {max_body} bytes per request. Every "
+                           "answer carries Server-Timing and X-Model-Version headers. Results "
+                           "outside the training envelope are extrapolations.",
+            "operationId": "predict",
+            "parameters": [name, {"name": "version", "in": "query", "required": False,
+                                  "schema": {"type": "integer", "minimum": 1}}],
+            "requestBody": {"required": True, **_json("PredictRequest")},
+            "responses": {"200": _resp("Predictions", "PredictResponse"), **err}}},
+        "/models/{name}/release": {"post": {
+            "summary": "Make a version live (admin)", "operationId": "release",
+            "parameters": [name], "security": admin,
+            "requestBody": {"required": True, **_json("ReleaseRequest")},
+            "responses": {"200": _resp("Released", "ReleaseResponse"), **admin_err}}},
+        "/models/{name}/rollback": {"post": {
+            "summary": "Make the previously live version live again (admin)",
+            "operationId": "rollback", "parameters": [name], "security": admin,
+            "responses": {"200": _resp("Rolled back", "ReleaseResponse"), **admin_err}}},
+        "/metrics": {"get": {"summary": "Prometheus text exposition", "operationId": "metrics",
+                             "responses": {"200": {"description": "Metrics", "content": {
+                                 "text/plain": {"schema": {"type": "string"}}}}}}},
+        "/openapi.json": {"get": {"summary": "This document", "operationId": "openapi",
+                                  "responses": {"200": {"description": "OpenAPI 3.1",
+                                                        "content": {"application/json": {
+                                                            "schema": {"type": "object"}}}}}}},
+    }
+    return {
+        "openapi": "3.1.0",
+        "info": {
+            "title": "kridge prediction service",
+            "version": "1",
+            "description": "Kernel ridge regression predictions with training-envelope flags. "
+                           "Predictions outside the envelope are extrapolations; follow site "
+                           "procedures and qualified review before acting on them.",
+        },
+        "paths": paths,
+        "components": {
+            "schemas": defs.get("$defs", {}),
+            "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer"}},
+        },
+    }

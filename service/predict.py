@@ -1,0 +1,152 @@
+"""The predict route's work, framework-free: validate rows against a model, compute, shape
+the answer. Messages name the row (0-based, as in the request) and the feature at fault."""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import orjson
+from pydantic import ValidationError
+
+from service.bundle import Model
+from service.errors import ApiError
+from service.schemas import PredictRequest
+
+CAUTION = (
+    "At least one row lies outside the training envelope (see envelope): its prediction is an "
+    "extrapolation. Do not let it drive process or safety decisions without a check against "
+    "site procedures and review by a qualified person."
+)
+
+
+def parse_body(raw: bytes, max_rows: int) -> PredictRequest:
+    """JSON bytes → validated request (structure, strict finite numbers, no extra keys)."""
+    try:
+        data = orjson.loads(raw)
+    except orjson.JSONDecodeError as exc:
+        raise ApiError(400, "malformed_json",
+                       f"request body is not valid JSON ({exc}); NaN and Infinity are not "
+                       "JSON numbers") from None
+    if not isinstance(data, dict):
+        raise ApiError(422, "invalid_request",
+                       'request body must be an object like {"rows": [...]}')
+    rows = data.get("rows")
+    if isinstance(rows, list) and len(rows) > max_rows:
+        raise ApiError(413, "too_many_rows",
+                       f"{len(rows)} rows in one request; the limit is {max_rows} "
+                       "(KRIDGE_MAX_ROWS)")
+    try:
+        return PredictRequest.model_validate(data)
+    except ValidationError as exc:
+        raise _explain(exc, rows) from None
+
+
+def _explain(exc: ValidationError, rows) -> ApiError:
+    """Turn pydantic's errors into one message naming row and feature, plus details."""
+    details = []
+    for err in exc.errors(include_url=False, include_input=False):
+        loc = err["loc"]
+        if loc and loc[0] == "rows" and len(loc) >= 2 and isinstance(loc[1], int):
+            i = loc[1]
+            row = rows[i]
+            branch = loc[2] if len(loc) > 2 else None
+            is_obj = isinstance(row, dict)
+            if not isinstance(row, dict | list):
+                details.append({"row": i, "message": "a row must be an object or an array"})
+                continue
+            # pydantic tries both row shapes; keep only errors of the shape the row has
+            if (branch or "").startswith("dict") != is_obj:
+                continue
+            where = loc[3] if len(loc) > 3 else None
+            item = {"row": i, "message": err["msg"]}
+            if where is not None:
+                item["feature" if is_obj else "position"] = where
+            details.append(item)
+        elif loc and loc[0] == "rows":
+            details.append({"field": "rows", "message": err["msg"]})
+        else:
+            field = ".".join(str(p) for p in loc) or "body"
+            msg = "unknown field" if err["type"] == "extra_forbidden" else err["msg"]
+            details.append({"field": field, "message": msg})
+    if not details:  # pragma: no cover - pydantic always says something
+        details = [{"message": str(exc)}]
+    first = details[0]
+    if "row" in first:
+        spot = f"row {first['row']}"
+        if "feature" in first:
+            spot += f", feature {first['feature']!r}"
+        elif "position" in first:
+            spot += f", position {first['position']}"
+    else:
+        spot = f"field {first.get('field', 'body')!r}"
+    return ApiError(422, "invalid_request", f"{spot}: {first['message']}", details)
+
+
+def rows_to_array(req: PredictRequest, model: Model) -> np.ndarray:
+    """Rows (objects or arrays) → (m, d) float array in the model's feature order."""
+    feats = model.features
+    d = len(feats)
+    out = np.empty((len(req.rows), d))
+    for i, row in enumerate(req.rows):
+        if isinstance(row, dict):
+            if len(row) != d or any(f not in row for f in feats):
+                missing = [f for f in feats if f not in row]
+                unknown = [k for k in row if k not in model.features]
+                bits = []
+                if unknown:
+                    bits.append(f"unknown feature(s) {', '.join(map(repr, unknown))}")
+                if missing:
+                    bits.append(f"missing feature(s) {', '.join(map(repr, missing))}")
+                raise ApiError(422, "invalid_row", f"row {i}: {'; '.join(bits)}",
+                               {"row": i, "unknown": unknown, "missing": missing,
+                                "features": feats})
+            out[i] = [row[f] for f in feats]
+        else:
+            if len(row) != d:
+                raise ApiError(422, "invalid_row",
+                               f"row {i}: {len(row)} values, the model takes {d} "
+                               f"({', '.join(feats)})", {"row": i, "features": feats})
+            out[i] = row
+    return out
+
+
+def predict_response(model: Model, req: PredictRequest, t_start: float, t_parsed: float):
+    """Compute values, envelope and intervals; returns (response dict, compute seconds)."""
+    x = rows_to_array(req, model)
+    half = None
+    if req.coverage is not None:
+        if not model.has_intervals:
+            raise ApiError(422, "no_intervals",
+                           f"model {model.name} v{model.version} stores no interval "
+                           "calibration; retrain it with a holdout or leave out coverage")
+        half = model.half_width(req.coverage)
+        if not np.isfinite(half).all():
+            c = model.residuals.shape[0]
+            raise ApiError(422, "coverage_too_high",
+                           f"coverage {req.coverage} needs more than the {c} calibration "
+                           f"residuals this model has; the largest usable is {c / (c + 1):.4f}")
+    t0 = time.perf_counter()
+    xs = model.standardize(x)
+    y = model.predict_standardized(xs)
+    env = model.envelope(x, xs)
+    compute = time.perf_counter() - t0
+    multi = y.shape[1] > 1
+    results = []
+    for i in range(y.shape[0]):
+        item: dict = {"value": y[i].tolist() if multi else float(y[i, 0])}
+        if half is not None:
+            lo, hi = y[i] - half, y[i] + half
+            item["interval"] = (np.column_stack([lo, hi]).tolist() if multi
+                                else [float(lo[0]), float(hi[0])])
+        item["envelope"] = env[i]
+        results.append(item)
+    resp = {"model": model.name, "version": model.version, "results": results}
+    if any(not e["inside"] for e in env):
+        resp["caution"] = CAUTION
+    resp["timing_ms"] = {
+        "parse": round((t_parsed - t_start) * 1e3, 4),
+        "compute": round(compute * 1e3, 4),
+        "total": round((time.perf_counter() - t_start) * 1e3, 4),
+    }
+    return resp, compute

@@ -1,0 +1,146 @@
+"""``kridge demo``: demo data → train → release → serve, with example calls printed.
+
+``--smoke`` makes the example calls itself, prints the answers and exits 0 (tests use it).
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+from service.launch import gunicorn_argv, serve_env
+from trainer.errors import UserError
+
+DEMO_DIR = Path(__file__).resolve().parents[1] / "demo_data"
+MODEL = "coating"
+TARGETS = ["hardness_s", "gloss_gu"]
+
+
+def _generator():
+    path = DEMO_DIR / "make_coating_data.py"
+    if not path.exists():
+        raise UserError(f"demo data generator not found at {path}; run from a source checkout")
+    spec = importlib.util.spec_from_file_location("make_coating_data", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def port_free(host: str, port: int) -> bool:
+    with socket.socket() as s:
+        try:
+            s.bind((host, port))
+        except OSError:
+            return False
+    return True
+
+
+def wait_ready(base: str, proc: subprocess.Popen, timeout: float = 60.0) -> None:
+    """Poll /readyz until 200; fail early if gunicorn exits."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise UserError(f"the service exited during start-up (status {proc.returncode})")
+        try:
+            with urllib.request.urlopen(base + "/readyz", timeout=2) as r:
+                if r.status == 200:
+                    return
+        except (urllib.error.URLError, OSError):
+            pass
+        time.sleep(0.2)
+    raise UserError(f"the service did not become ready within {timeout:.0f} s")
+
+
+def post(base: str, path: str, body: dict) -> tuple[int, dict]:
+    req = urllib.request.Request(base + path, data=json.dumps(body).encode(),
+                                 headers={"Content-Type": "application/json"})
+    try:
+        with urllib.request.urlopen(req, timeout=10) as r:
+            return r.status, json.loads(r.read())
+    except urllib.error.HTTPError as exc:
+        return exc.code, json.loads(exc.read())
+
+
+def stop(proc: subprocess.Popen) -> None:
+    """End gunicorn by its pid: SIGTERM, then SIGKILL if it lingers."""
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=15)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+
+
+def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = False) -> int:
+    from trainer.train import TrainOptions, train
+
+    gen = _generator()
+    store = os.path.abspath(store or os.environ.get("KRIDGE_STORE") or "model-store")
+    if bind is None:
+        bind = f"127.0.0.1:{free_port()}" if smoke else (
+            os.environ.get("KRIDGE_BIND") or "127.0.0.1:8000")
+    host, _, port = bind.rpartition(":")
+    if not port.isdigit() or not port_free(host or "127.0.0.1", int(port)):
+        raise UserError(f"cannot listen on {bind}: address in use or invalid; "
+                        "pass --bind 127.0.0.1:PORT")
+
+    with tempfile.TemporaryDirectory() as tmp:
+        csv_path = Path(tmp) / "coating_line.csv"
+        gen.write_csv(csv_path, gen.generate())
+        print(f"1/3 demo data: {csv_path.name}, 2000 rows of a coating line's process readings")
+        print("2/3 training (kernel parameters tuned by leave-one-out) ...", flush=True)
+        summary = train(TrainOptions(data=str(csv_path), targets=TARGETS, name=MODEL,
+                                     release=True, store=store, quiet=True))
+    print(f"    {MODEL} v{summary['version']} is live: {summary['kernel']}, "
+          f"ridge {summary['ridge']:.3g}, {summary['seconds']} s")
+    for t, m in summary["metrics"].get("holdout", {}).items():
+        print(f"    holdout {t}: RMSE {m['rmse']:.3g}, R² {m['r2']:.3f}")
+
+    base = f"http://{bind}"
+    env = serve_env(bind, 2, store)
+    proc = subprocess.Popen(gunicorn_argv(bind, 2), env=env)
+    try:
+        wait_ready(base, proc)
+        inside = {"rows": [gen.TYPICAL_ROW], "coverage": 0.9}
+        outside = {"rows": [gen.EMPTY_REGION_ROW, dict(gen.TYPICAL_ROW, oven_temp_c=245.0)]}
+        print(f"3/3 serving on {base} (store {store})\n")
+        for label, body in (("a typical operating point", inside),
+                            ("the never-run region and a too-hot oven", outside)):
+            print(f"# {label}:")
+            print(f"curl -s -X POST {base}/models/{MODEL}/predict "
+                  f"-H 'Content-Type: application/json' -d '{json.dumps(body)}'\n")
+        print(f"# more: {base}/models/{MODEL}  {base}/metrics  {base}/openapi.json")
+        print("# Predictions outside the training envelope are extrapolations: check them "
+              "against site procedures before acting on them.\n")
+        if smoke:
+            for body in (inside, outside):
+                status, answer = post(base, f"/models/{MODEL}/predict", body)
+                print(f"HTTP {status}: {json.dumps(answer)}")
+                if status != 200:
+                    return 1
+            return 0
+        print("Serving until Ctrl-C.", flush=True)
+        proc.wait()
+        return proc.returncode or 0
+    except KeyboardInterrupt:
+        return 0
+    finally:
+        stop(proc)
+        sys.stdout.flush()
