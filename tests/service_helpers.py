@@ -38,18 +38,25 @@ class Gunicorn:
         self.log = open(Path(self.env.get("KRIDGE_TEST_LOG", os.devnull)), "w")
         self.proc = subprocess.Popen(self.argv, env=self.env, cwd=ROOT, stdout=self.log,
                                      stderr=subprocess.STDOUT)
-        deadline = time.monotonic() + 60
+        try:
+            self._wait_up(60.0)
+        except BaseException:
+            self.__exit__()
+            raise
+        return self
+
+    def _wait_up(self, seconds: float) -> None:
+        deadline = time.monotonic() + seconds
         while time.monotonic() < deadline:
             if self.proc.poll() is not None:
                 raise RuntimeError(f"gunicorn exited with {self.proc.returncode}")
             try:
-                if requests.get(self.base + "/readyz", timeout=1).status_code in (200, 503):
-                    return self
-            except requests.ConnectionError:
+                requests.get(self.base + "/readyz", timeout=1)  # any answer: workers are up
+                return
+            except (requests.ConnectionError, requests.Timeout):
                 pass
             time.sleep(0.1)
-        self.__exit__()
-        raise RuntimeError("gunicorn did not start within 60 s")
+        raise RuntimeError(f"gunicorn did not start within {seconds:.0f} s")
 
     def __exit__(self, *exc) -> None:
         if self.proc is not None and self.proc.poll() is None:

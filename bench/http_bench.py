@@ -1,0 +1,122 @@
+"""HTTP bench: our service against two reference servers on the same 20,000-row rbf model.
+
+Every server runs under gunicorn with the same config and worker count; single-row requests
+come from a load generator in other processes (wrk when installed, else bench/loadgen.py).
+Servers run one at a time, in alternating rounds; the best round of each is reported.
+
+    python bench/http_bench.py [--seconds 8] [--rounds 2] [--clients 4] [--workers 2]
+
+Targets (issue #3): ours ≥ 0.85 × (a) in requests/s with p99 ≤ 1.5 × (a)'s; (b) far below.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import json
+import re
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
+
+from bench.loadgen import run_load  # noqa: E402
+from service_helpers import Gunicorn  # noqa: E402
+
+WORK = ROOT / "bench" / "results"
+N_ROWS, N_FEATURES = 20_000, 16
+
+
+def make_model(store: Path) -> None:
+    """Train (once, cached) a 20,000 × 16 rbf model on a smooth synthetic surface."""
+    from service.store import Store
+
+    if store.exists() and Store(store).live_version("bench"):
+        return
+    rng = np.random.default_rng(7)
+    x = rng.uniform(-1, 1, (N_ROWS, N_FEATURES))
+    y = np.sin(2 * x[:, 0]) + x[:, 1] * x[:, 2] + 0.5 * np.cos(3 * x[:, 3]) + x[:, 4:].sum(1) / 4
+    y += rng.normal(0, 0.1, N_ROWS)
+    path = WORK / "bench_train.csv"
+    with open(path, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow([f"f{j}" for j in range(N_FEATURES)] + ["y"])
+        w.writerows(np.column_stack([x, y]).tolist())
+    print(f"training the {N_ROWS}-row bench model once (cached in {store}) ...", flush=True)
+    subprocess.run([sys.executable, "-m", "trainer.cli", "train", str(path), "--target", "y",
+                    "--name", "bench", "--kernel", "rbf", "--gamma", "0.05", "--ridge", "1.0",
+                    "--holdout", "0", "--no-report", "--release", "--store", str(store)],
+                   check=True)
+
+
+def wrk_load(base: str, body: bytes, seconds: float, clients: int) -> dict:
+    script = WORK / "post.lua"
+    script.write_text('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n'
+                      f"wrk.body = {json.dumps(body.decode())}\n")
+    out = subprocess.run(["wrk", "-t", "1", "-c", str(clients), "-d", f"{int(seconds)}s",
+                          "--latency", "-s", str(script), base + "/models/bench/predict"],
+                         capture_output=True, text=True, check=True).stdout
+
+    def ms(label):
+        m = re.search(rf"{label}%\s+([\d.]+)(us|ms|s)", out)
+        v = float(m.group(1))
+        return v / 1e3 if m.group(2) == "us" else v * 1e3 if m.group(2) == "s" else v
+
+    rps = float(re.search(r"Requests/sec:\s+([\d.]+)", out).group(1))
+    return {"rps": rps, "p50_ms": ms("50"), "p99_ms": ms("99"), "errors": 0}
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--seconds", type=float, default=8.0)
+    ap.add_argument("--rounds", type=int, default=2)
+    ap.add_argument("--clients", type=int, default=4)
+    ap.add_argument("--workers", type=int, default=2)
+    args = ap.parse_args()
+    WORK.mkdir(parents=True, exist_ok=True)
+    store = WORK / "store"
+    make_model(store)
+    row = np.random.default_rng(1).uniform(-0.5, 0.5, N_FEATURES).round(4).tolist()
+    body = json.dumps({"rows": [row]}).encode()
+    servers = {
+        "ours": "service.wsgi:app",
+        "(a) bare numpy": "bench.reference_apps:make('bare')",
+        "(b) scikit-learn": "bench.reference_apps:make('sklearn')",
+    }
+    use_wrk = shutil.which("wrk") is not None
+    print(f"load generator: {'wrk' if use_wrk else 'bench/loadgen.py'}, {args.clients} "
+          f"concurrent clients, {args.seconds:.0f} s per run, {args.workers} gunicorn workers, "
+          f"{args.rounds} rounds")
+    best: dict[str, dict] = {}
+    for rnd in range(args.rounds):
+        for label, app in servers.items():
+            with Gunicorn(store, workers=args.workers, app=app,
+                          env={"BENCH_MODEL": "bench"}) as g:
+                if use_wrk:
+                    res = wrk_load(g.base, body, args.seconds, args.clients)
+                else:
+                    res = run_load("127.0.0.1", g.port, "/models/bench/predict", body,
+                                   args.seconds, args.clients)
+            print(f"  round {rnd + 1} {label:18s} {res['rps']:8.0f} req/s  p50 "
+                  f"{res['p50_ms']:6.2f} ms  p99 {res['p99_ms']:6.2f} ms  errors {res['errors']}",
+                  flush=True)
+            if label not in best or res["rps"] > best[label]["rps"]:
+                best[label] = res
+    ours, bare, skl = (best[k] for k in servers)
+    print("\nbest of rounds:")
+    print(f"{'server':18s} {'req/s':>8s} {'p50 ms':>8s} {'p99 ms':>8s}")
+    for label, res in best.items():
+        print(f"{label:18s} {res['rps']:8.0f} {res['p50_ms']:8.2f} {res['p99_ms']:8.2f}")
+    print(f"\nours / (a) requests/s: {ours['rps'] / bare['rps']:.2f}   (target >= 0.85)")
+    print(f"ours / (a) p99:        {ours['p99_ms'] / bare['p99_ms']:.2f}   (target <= 1.5)")
+    print(f"ours / (b) requests/s: {ours['rps'] / skl['rps']:.2f}")
+    print(f"(a) / (b) requests/s:  {bare['rps'] / skl['rps']:.2f}")
+
+
+if __name__ == "__main__":
+    main()
