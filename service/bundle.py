@@ -95,6 +95,8 @@ class Model:
         """
         if self.residuals is None:
             raise StoreError(f"{self.name} v{self.version} stores no interval calibration")
+        if not 0 < coverage < 1:  # rank 0 would silently index the largest residual
+            raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
         c = self.residuals.shape[0]
         rank = math.ceil((c + 1) * coverage)
         if rank > c:

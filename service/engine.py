@@ -2,35 +2,138 @@
 
 One engine serves the HTTP service, ``load_model().predict`` and ``kridge predict``. The
 kernel matrix between a batch and the training rows is never built whole: the batch is cut
-into row tiles and the training rows into column tiles sized to stay in cache, the kernel's
-elementwise step runs in place on each tile, and the tile's product with α is accumulated.
-Extra memory is therefore O(tile) whatever the batch size.
+into row tiles and the training rows into column tiles so that one tile (plus its scratch
+twin) stays in the per-core L2 cache, the kernel's elementwise step runs in place on each tile
+(:func:`service.kernels.kernel_tile`), and the tile's product with α is accumulated. Extra
+memory is O(tile × threads) whatever the batch size.
+
+Two paths:
+
+* lean (fewer than :data:`PARALLEL_MIN_ROWS` rows, or one thread): runs in the caller's
+  thread on per-thread cached buffers; no hand-off, no copies of input already float64 and
+  C-ordered, no re-validation. This is the HTTP service's path.
+* parallel: row blocks go to a persistent thread pool (numpy releases the GIL inside its
+  loops and BLAS), while BLAS itself is held to one thread so that the two levels of
+  threading never exceed the cores.
 """
 
 from __future__ import annotations
 
 import os
+import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
-from service.kernels import KernelSpec, kernel_block, row_sq_norms
+from service.kernels import KernelSpec, kernel_tile, prepare_columns, prepare_rows
 
-#: Elements in one kernel tile: 2¹⁷ float64 = 1 MiB, about an L2 cache here.
-TILE_ELEMENTS = 1 << 17
-#: Rows per tile in the row direction for large batches.
-TILE_ROWS = 256
-#: Below this many query rows the lean path runs: one thread, no hand-off.
-PARALLEL_MIN_ROWS = 2 * TILE_ROWS
+#: Elements in one kernel tile: 2¹⁶ float64 = 512 KiB. With the scratch twin that some
+#: kernels need it is 1 MiB, half of the 2 MiB per-core L2 of the machines we measured, so
+#: the five or six passes over a tile after the matrix product run from L2, not from L3.
+#: Larger tiles measured no faster; smaller ones pay numpy's per-call overhead (~1 µs × ~8
+#: calls per tile) too often.
+TILE_ELEMENTS = 1 << 16
+#: Query rows per tile. 128 rows × 512 columns keeps the matrix product efficient (inner
+#: dimension is only d) while one row tile's share of X is re-read from L3, not DRAM.
+ROW_TILE = 128
+#: Query rows per tile for the laplacian: its per-feature passes broadcast a query column
+#: against a training row, and numpy runs those faster on few long rows than on many short.
+ROW_TILE_L1 = 16
+#: Below this many query rows everything runs in the caller's thread: the work (~50 µs per
+#: row at 20,000 training rows) is then too small to repay a thread hand-off.
+PARALLEL_MIN_ROWS = 64
+
+
+def available_cores() -> int:
+    """Cores this process may run on (affinity mask when the OS exposes one)."""
+    try:
+        return len(os.sched_getaffinity(0)) or 1
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
 
 
 def engine_threads() -> int:
-    """Threads a large batch may use: ``KRIDGE_ENGINE_THREADS``, else every core."""
-    value = os.environ.get("KRIDGE_ENGINE_THREADS")
-    if value and value.isdigit() and int(value) > 0:
-        return int(value)
-    return os.cpu_count() or 1
+    """Threads a large batch may use: ``KRIDGE_ENGINE_THREADS``, else every core.
+
+    Never more than the cores: the gunicorn config sets this to cores // workers so that
+    workers × threads ≤ cores.
+    """
+    cores = available_cores()
+    value = os.environ.get("KRIDGE_ENGINE_THREADS", "").strip()
+    if value.isdigit() and int(value) > 0:
+        return min(int(value), cores)
+    return cores
+
+
+# -- per-thread scratch -------------------------------------------------------------------
+_local = threading.local()
+
+
+def _buffers(size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Two flat float64 buffers of at least ``size`` elements, cached per thread.
+
+    Reusing them avoids two allocations per call on the single-row path; a thread holds at
+    most 2 × TILE_ELEMENTS × 8 bytes (1 MiB).
+    """
+    bufs = getattr(_local, "bufs", None)
+    if bufs is None or bufs[0].size < size:
+        bufs = (np.empty(size), np.empty(size))
+        _local.bufs = bufs
+    return bufs
+
+
+# -- BLAS thread bound ----------------------------------------------------------------------
+class _SingleThreadedBlas:
+    """Context holding BLAS at one thread while any parallel batch runs (re-entrant, counted).
+
+    Limits are process-wide; counting entries means that two overlapping large batches do
+    not restore the BLAS thread count under each other's feet. The threadpoolctl controller
+    is built once: building it scans every loaded library (~ms), setting a limit is µs.
+    """
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._depth = 0
+        self._controller = None
+        self._limiter = None
+
+    def __enter__(self) -> None:
+        with self._lock:
+            if self._depth == 0:
+                if self._controller is None:
+                    from threadpoolctl import ThreadpoolController
+
+                    self._controller = ThreadpoolController().select(user_api="blas")
+                # Under the service's OPENBLAS_NUM_THREADS=1 there is nothing to change:
+                # one query per library (~1 µs) instead of a set and a restore.
+                if any(lib.num_threads != 1 for lib in self._controller.lib_controllers):
+                    self._limiter = self._controller.limit(limits=1)
+            self._depth += 1
+
+    def __exit__(self, *exc) -> None:
+        with self._lock:
+            self._depth -= 1
+            if self._depth == 0 and self._limiter is not None:
+                self._limiter.restore_original_limits()
+                self._limiter = None
+
+
+_single_blas = _SingleThreadedBlas()
+_pools: dict[tuple[int, int], ThreadPoolExecutor] = {}
+_pools_lock = threading.Lock()
+
+
+def _pool(threads: int) -> ThreadPoolExecutor:
+    """A persistent pool per size, rebuilt after a fork (a forked pool has no threads)."""
+    key = (os.getpid(), threads)
+    pool = _pools.get(key)
+    if pool is None:
+        with _pools_lock:
+            pool = _pools.get(key)
+            if pool is None:
+                pool = ThreadPoolExecutor(threads, thread_name_prefix="kridge-engine")
+                _pools[key] = pool
+    return pool
 
 
 class Engine:
@@ -39,63 +142,108 @@ class Engine:
     Parameters
     ----------
     spec : kernel and parameters.
-    x_train : (n, d) standardized training rows (may be a read-only memory map).
-    dual : (n, t) dual coefficients α.
+    x_train : (n, d) standardized training rows. A float64 C-ordered array (such as a
+        read-only memory map) is used as is, never copied.
+    dual : (n,) or (n, t) dual coefficients α.
     threads : worker threads for large batches (default :func:`engine_threads`).
+    tile_elements, row_tile : tile geometry (defaults :data:`TILE_ELEMENTS`,
+        :data:`ROW_TILE`); tests shrink them to force many tiles.
+
+    Notes
+    -----
+    ``predict(Q)[i, t] = Σ_j k(q_i, x_j) α_jt``, summed tile by tile over j. The training
+    half of every distance (c‖x_j‖², or γΣ_k x_jk for the laplacian) is computed here once.
     """
 
     def __init__(
-        self, spec: KernelSpec, x_train: np.ndarray, dual: np.ndarray, threads: int | None = None
+        self,
+        spec: KernelSpec,
+        x_train: np.ndarray,
+        dual: np.ndarray,
+        threads: int | None = None,
+        tile_elements: int | None = None,
+        row_tile: int | None = None,
     ):
         self.spec = spec
-        self.x = x_train
-        self.dual = dual if dual.ndim == 2 else dual[:, None]
-        self.n, self.d = x_train.shape
-        self.threads = threads or engine_threads()
-        # Precomputed once at load: the training half of every squared distance.
-        self.x_sq = row_sq_norms(x_train) if spec.uses == "sqdist" else None
-
-    def _cols_for(self, rows: int) -> int:
-        return max(64, min(self.n, TILE_ELEMENTS // max(rows, 1)))
-
-    def _block(self, q: np.ndarray, out: np.ndarray) -> None:
-        """Accumulate k(q, X)·α into ``out`` for one row tile, walking column tiles."""
-        m = q.shape[0]
-        cols = self._cols_for(m)
-        q_sq = row_sq_norms(q) if self.x_sq is not None else None
-        buf = np.empty((m, cols))
-        scratch = np.empty((m, cols)) if self.spec.uses != "dot" else None
-        for start in range(0, self.n, cols):
-            stop = min(start + cols, self.n)
-            w = stop - start
-            tile = buf[:, :w]
-            kernel_block(
-                self.spec,
-                q,
-                self.x[start:stop],
-                x_sq=None if self.x_sq is None else self.x_sq[start:stop],
-                q_sq=q_sq,
-                out=tile,
-                scratch=None if scratch is None else scratch[:, :w],
+        # np.asarray drops the memmap subclass (whose per-view Python hooks cost µs per
+        # slice) but keeps the same memory; only a wrong dtype or order forces a copy.
+        self.x = np.ascontiguousarray(np.asarray(x_train), dtype=np.float64)
+        dual = np.asarray(dual, dtype=np.float64)
+        self.dual = np.ascontiguousarray(dual if dual.ndim == 2 else dual[:, None])
+        if self.x.ndim != 2 or self.dual.shape[0] != self.x.shape[0]:
+            raise ValueError(
+                f"training rows {self.x.shape} and dual coefficients {self.dual.shape} disagree"
             )
-            out += tile @ self.dual[start:stop]
+        self.n, self.d = self.x.shape
+        self.targets = self.dual.shape[1]
+        self.threads = max(1, threads or engine_threads())
+        self.tile_elements = tile_elements or TILE_ELEMENTS
+        default_rows = ROW_TILE_L1 if spec.uses == "l1" else ROW_TILE
+        self.row_tile = max(1, min(row_tile or default_rows, self.tile_elements))
+        self.xt = self.x.T  # (d, n) view, read by BLAS as a transposed operand: no copy
+        self.col = prepare_columns(spec, self.x)
+
+    # -- core ----------------------------------------------------------------------------
+    def _rows(self, q: np.ndarray, out: np.ndarray) -> None:
+        """Write k(q, X)·α for the rows ``q`` (m, d) into ``out`` (m, t), in this thread."""
+        m = q.shape[0]
+        spec, n, xt, col, dual = self.spec, self.n, self.xt, self.col, self.dual
+        r = min(m, self.row_tile)
+        cols = min(n, max(1, self.tile_elements // r))
+        flat, flat2 = _buffers(r * cols)
+        acc = np.empty((r, self.targets)) if cols < n else None
+        for i in range(0, m, r):
+            qi = q[i : i + r]
+            ri = qi.shape[0]
+            qs, row = prepare_rows(spec, qi)
+            oi = out[i : i + r]
+            for j in range(0, n, cols):
+                w = min(cols, n - j)
+                tile = flat[: ri * w].reshape(ri, w)
+                kernel_tile(
+                    spec,
+                    qs,
+                    row,
+                    xt[:, j : j + w],
+                    None if col is None else col[j : j + w],
+                    tile,
+                    flat2[: ri * w].reshape(ri, w),
+                )
+                if j == 0:
+                    np.matmul(tile, dual[j : j + w], out=oi)
+                else:
+                    a = acc[:ri]
+                    np.matmul(tile, dual[j : j + w], out=a)
+                    oi += a
 
     def predict(self, q: np.ndarray) -> np.ndarray:
-        """k(q, X)·α for standardized rows ``q`` (m, d); returns (m, t)."""
+        """k(q, X)·α for standardized rows ``q`` (m, d); returns (m, t).
+
+        No checks beyond shape: callers (``Model.predict``, the HTTP layer) validate values.
+        """
         q = np.ascontiguousarray(q, dtype=np.float64)
+        if q.ndim != 2 or q.shape[1] != self.d:
+            raise ValueError(f"expected rows of {self.d} features, got shape {q.shape}")
         m = q.shape[0]
-        out = np.zeros((m, self.dual.shape[1]))
-        if m < PARALLEL_MIN_ROWS or self.threads == 1:
-            for start in range(0, m, TILE_ROWS):
-                self._block(q[start : start + TILE_ROWS], out[start : start + TILE_ROWS])
+        out = np.empty((m, self.targets))
+        if m == 0:
             return out
-        starts = range(0, m, TILE_ROWS)
-        # Our threads split the rows; BLAS inside each must stay single-threaded or the
-        # two levels of threading fight over the same cores.
-        with threadpool_limits(1, user_api="blas"), ThreadPoolExecutor(self.threads) as pool:
-            list(
-                pool.map(
-                    lambda s: self._block(q[s : s + TILE_ROWS], out[s : s + TILE_ROWS]), starts
-                )
-            )
+        if m < PARALLEL_MIN_ROWS or self.threads == 1:
+            # BLAS's own threads would split each small tile product and wait on each
+            # other (milliseconds per tile when the cores are busy): our tiles stay serial.
+            with _single_blas:
+                self._rows(q, out)
+            return out
+        # Blocks of whole row tiles, at least two per thread so a thread slowed by a
+        # neighbour's work on a shared core does not hold up the rest.
+        per = -(-m // (2 * self.threads))
+        step = max(self.row_tile, -(-per // self.row_tile) * self.row_tile)
+        pool = _pool(self.threads)
+        with _single_blas:
+            futures = [
+                pool.submit(self._rows, q[s : s + step], out[s : s + step])
+                for s in range(0, m, step)
+            ]
+            for f in futures:
+                f.result()
         return out

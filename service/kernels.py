@@ -107,8 +107,166 @@ def default_spec(name: str, n_features: int, gamma=None, degree=None, coef0=None
 
 
 def row_sq_norms(a: np.ndarray) -> np.ndarray:
-    """Squared Euclidean norm of each row, ``‖a_i‖²``."""
+    """Squared Euclidean norm of each row, ``‖a_i‖² = Σ_k a_ik²``."""
     return np.einsum("ij,ij->i", a, a)
+
+
+def _sqdist_scale(spec: KernelSpec) -> float:
+    """The factor c with which a distance kernel reads c·‖a − b‖².
+
+    rbf reads γ r²; Matérn reads t² = 2ν · 2γ · r² (t = √(2ν) r / ℓ, ℓ = 1/√(2γ)).
+    """
+    if spec.name == "rbf":
+        return spec.gamma
+    return 2.0 * (3.0 if spec.name == "matern32" else 5.0) * spec.gamma
+
+
+def prepare_columns(
+    spec: KernelSpec, x: np.ndarray, x_sq: np.ndarray | None = None
+) -> np.ndarray | None:
+    """Training-side term of :func:`kernel_tile`, computed once per model.
+
+    Returns c·‖x_j‖² for distance kernels (c from :func:`_sqdist_scale`), γ·Σ_k x_jk for the
+    laplacian, None for the dot-product kernels. Length n; never a copy of ``x`` itself, so
+    a memory-mapped training matrix stays shared between processes.
+    """
+    if spec.uses == "sqdist":
+        return _sqdist_scale(spec) * (row_sq_norms(x) if x_sq is None else x_sq)
+    if spec.uses == "l1":
+        return spec.gamma * x.sum(axis=1)
+    return None
+
+
+def prepare_rows(
+    spec: KernelSpec, q: np.ndarray, q_sq: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """Query-side operands of :func:`kernel_tile`: ``(q_scaled, row_term)``.
+
+    ========================  =================  =================
+    kernel                    q_scaled           row_term
+    ========================  =================  =================
+    linear                    q                  None
+    polynomial, sigmoid       γ q                None
+    rbf, Matérn               2c q               c‖q_i‖²
+    laplacian                 q                  γ Σ_k q_ik
+    ========================  =================  =================
+
+    Folding the scale into the small (m, d) query side saves a pass over every (m, n) tile.
+    """
+    if spec.uses == "sqdist":
+        c = _sqdist_scale(spec)
+        qs = q * (2.0 * c)
+        row = c * row_sq_norms(q) if q_sq is None else c * q_sq
+        return qs, row
+    if spec.uses == "l1":
+        return q, spec.gamma * q.sum(axis=1)
+    if spec.name == "linear":
+        return q, None
+    return q * spec.gamma, None
+
+
+def _integer_power(out: np.ndarray, degree: float, scratch: np.ndarray | None) -> np.ndarray:
+    """``out **= degree`` in place; small integer degrees by multiplication (pow is ~10× slower)."""
+    if degree == 1.0:
+        return out
+    if degree == 2.0:
+        return np.square(out, out=out)
+    if degree == 3.0:
+        if scratch is None:
+            scratch = np.empty_like(out)
+        np.square(out, out=scratch)
+        return np.multiply(out, scratch, out=out)
+    if degree == 4.0:
+        np.square(out, out=out)
+        return np.square(out, out=out)
+    return np.power(out, degree, out=out)
+
+
+def kernel_tile(
+    spec: KernelSpec,
+    qs: np.ndarray,
+    row: np.ndarray | None,
+    xt: np.ndarray,
+    col: np.ndarray | None,
+    out: np.ndarray,
+    scratch: np.ndarray | None = None,
+) -> np.ndarray:
+    """Kernel values for one tile from prepared operands, in place in ``out``.
+
+    Parameters
+    ----------
+    spec : the kernel.
+    qs, row : from :func:`prepare_rows` for the tile's m query rows.
+    xt : (d, w) the tile's training rows transposed (a view such as ``x[j0:j1].T``).
+    col : the tile's slice of :func:`prepare_columns` (None for dot kernels).
+    out : (m, w) float buffer, overwritten.
+    scratch : optional (m, w) buffer (laplacian, Matérn, polynomial of degree 3).
+
+    Returns
+    -------
+    ``out`` holding k(q_i, x_j).
+
+    Notes
+    -----
+    Distance kernels: u = 2c qᵀx − c‖q‖² − c‖x‖² = −c‖q − x‖² (the expansion scikit-learn's
+    ``euclidean_distances`` uses), clipped at 0 from above against rounding; rbf is exp(u).
+    Laplacian: ‖q − x‖₁ = Σ_k (q_k + x_k) − 2 Σ_k min(q_k, x_k), which needs two passes per
+    feature over the tile instead of three for subtract/abs/add.
+    """
+    name = spec.name
+    if spec.uses == "l1":
+        d = xt.shape[0]
+        if not xt.flags.c_contiguous:
+            # d passes over the tile each read one feature of every training row: copy the
+            # tile's rows to feature-major order once (d × w values, read once) rather than
+            # gather with stride d in every pass, which drags the whole of X through the
+            # cache d times
+            xt = np.ascontiguousarray(xt)
+        np.minimum(qs[:, 0, None], xt[0], out=out)
+        if d > 1:
+            if scratch is None:
+                scratch = np.empty_like(out)
+            for k in range(1, d):
+                np.minimum(qs[:, k, None], xt[k], out=scratch)
+                out += scratch
+        # u = 2γ Σ min − γ Σ q − γ Σ x = −γ ‖q − x‖₁
+        out *= 2.0 * spec.gamma
+        out -= row[:, None]
+        out -= col
+        np.minimum(out, 0.0, out=out)
+        return np.exp(out, out=out)
+
+    np.matmul(qs, xt, out=out)
+    if name == "linear":
+        return out
+    if name in ("polynomial", "sigmoid"):
+        out += spec.coef0
+        if name == "sigmoid":
+            return np.tanh(out, out=out)
+        return _integer_power(out, spec.degree, scratch)
+
+    # distance kernels: out = u = −c r² ≤ 0
+    out -= row[:, None]
+    out -= col
+    np.minimum(out, 0.0, out=out)
+    if name == "rbf":
+        return np.exp(out, out=out)
+    # Matérn: t = √(c r²) = √(−u)
+    np.negative(out, out=out)
+    np.sqrt(out, out=out)
+    if scratch is None:
+        scratch = np.empty_like(out)
+    np.negative(out, out=scratch)
+    np.exp(scratch, out=scratch)  # scratch = exp(-t)
+    if name == "matern32":
+        out += 1.0  # 1 + t
+    else:
+        tt = out * out  # 1 + t + t²/3
+        tt /= 3.0
+        out += 1.0
+        out += tt
+    out *= scratch
+    return out
 
 
 def kernel_block(
@@ -128,7 +286,7 @@ def kernel_block(
     q, x : (m, d) and (n, d) standardized rows.
     x_sq, q_sq : optional precomputed ``row_sq_norms`` of x and q (distance kernels).
     out : optional (m, n) float buffer to write into.
-    scratch : optional (m, n) buffer used by the laplacian kernel.
+    scratch : optional (m, n) buffer used by the laplacian, Matérn and cubic kernels.
 
     Returns
     -------
@@ -137,62 +295,14 @@ def kernel_block(
     Notes
     -----
     Squared distances use ‖a − b‖² = ‖a‖² − 2aᵀb + ‖b‖², clipped at 0, as scikit-learn's
-    ``euclidean_distances`` does, so one matrix product does most of the work.
+    ``euclidean_distances`` does, so one matrix product does most of the work. This is
+    :func:`kernel_tile` on freshly prepared operands: serving and training share one code path.
     """
     m, n = q.shape[0], x.shape[0]
     if out is None:
         out = np.empty((m, n), dtype=np.result_type(q.dtype, x.dtype))
-    name = spec.name
-    if spec.uses == "l1":
-        if scratch is None:
-            scratch = np.empty_like(out)
-        out.fill(0.0)
-        for j in range(q.shape[1]):
-            np.subtract(q[:, j, None], x[None, :, j], out=scratch)
-            np.abs(scratch, out=scratch)
-            out += scratch
-        out *= -spec.gamma
-        return np.exp(out, out=out)
-
-    np.matmul(q, x.T, out=out)
-    if name == "linear":
-        return out
-    if name in ("polynomial", "sigmoid"):
-        out *= spec.gamma
-        out += spec.coef0
-        if name == "sigmoid":
-            return np.tanh(out, out=out)
-        return np.power(out, spec.degree, out=out)
-
-    # distance kernels
-    if x_sq is None:
-        x_sq = row_sq_norms(x)
-    if q_sq is None:
-        q_sq = row_sq_norms(q)
-    out *= -2.0
-    out += q_sq[:, None]
-    out += x_sq[None, :]
-    np.maximum(out, 0.0, out=out)
-    if name == "rbf":
-        out *= -spec.gamma
-        return np.exp(out, out=out)
-    # Matérn: t = √(2ν) r / ℓ with ℓ = 1/√(2γ), i.e. t = √(2ν·2γ·r²)
-    nu2 = 3.0 if name == "matern32" else 5.0
-    out *= 2.0 * nu2 * spec.gamma
-    np.sqrt(out, out=out)  # out = t
-    if scratch is None:
-        scratch = np.empty_like(out)
-    np.negative(out, out=scratch)
-    np.exp(scratch, out=scratch)  # scratch = exp(-t)
-    if name == "matern32":
-        out += 1.0
-    else:
-        tt = out * out  # 1 + t + t²/3
-        tt /= 3.0
-        out += 1.0
-        out += tt
-    out *= scratch
-    return out
+    qs, row = prepare_rows(spec, q, q_sq)
+    return kernel_tile(spec, qs, row, x.T, prepare_columns(spec, x, x_sq), out, scratch)
 
 
 def kernel_matrix(spec: KernelSpec, a: np.ndarray, b: np.ndarray | None = None) -> np.ndarray:
@@ -203,7 +313,7 @@ def kernel_matrix(spec: KernelSpec, a: np.ndarray, b: np.ndarray | None = None) 
     """
     b = a if b is None else b
     out = kernel_block(spec, a, b)
-    if b is a and spec.uses == "sqdist":
-        # k(a, a) = 1 exactly; the expanded distance form leaves rounding noise there
+    if b is a and spec.uses in ("sqdist", "l1"):
+        # k(a, a) = 1 exactly; the expanded distance forms leave rounding noise there
         np.fill_diagonal(out, 1.0)
     return out

@@ -32,6 +32,7 @@ import numpy as np
 
 SCHEMA = 1
 NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
+ARRAY_NAME_RE = re.compile(r"[A-Za-z0-9_]{1,64}")
 STAGING = ".staging"
 
 
@@ -197,6 +198,11 @@ class Store:
         if not isinstance(listed, dict) or not listed:
             raise StoreError(f"{name} v{version}: manifest lists no arrays")
         for key, meta in listed.items():
+            # the manifest is data from disk: its names must not lead out of arrays/
+            if not isinstance(key, str) or not ARRAY_NAME_RE.fullmatch(key):
+                raise StoreError(f"{name} v{version}: manifest lists an invalid array name {key!r}")
+            if not isinstance(meta, dict):
+                raise StoreError(f"{name} v{version}: manifest entry of array {key!r} is malformed")
             path = vdir / "arrays" / f"{key}.npy"
             if not path.is_file():
                 raise StoreError(f"{name} v{version}: array {key!r} is missing ({key}.npy)")
@@ -243,6 +249,8 @@ class Store:
             (work / "arrays").mkdir(parents=True)
             listed = {}
             for key, arr in arrays.items():
+                if not ARRAY_NAME_RE.fullmatch(key):
+                    raise StoreError(f"invalid array name {key!r}")
                 arr = np.ascontiguousarray(arr)
                 if arr.dtype.hasobject:
                     raise StoreError(f"array {key!r} is an object array; bundles hold numbers")

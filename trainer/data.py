@@ -56,13 +56,24 @@ def _check_header(header: list[str], path: Path) -> list[str]:
     return header
 
 
-def to_float(rows: list[list[str]], header: list[str], first_line: int, path) -> np.ndarray:
-    """Convert string cells to float64, or name the first bad cell (line and column)."""
+def to_float(
+    rows: list[list[str]], header: list[str], first_line: int, path,
+    lines: list[int] | None = None,
+) -> np.ndarray:
+    """Convert string cells to float64, or name the first bad cell (line and column).
+
+    ``lines[i]`` is the file line on which ``rows[i]`` starts; without it rows are taken to
+    sit on consecutive lines from ``first_line`` (no blank lines, no multi-line cells).
+    """
     width = len(header)
+
+    def line(i: int) -> int:
+        return lines[i] if lines is not None else first_line + i
+
     for i, row in enumerate(rows):
         if len(row) != width:
             raise UserError(
-                f"{path}: line {first_line + i} has {len(row)} cells, the header has {width}"
+                f"{path}: line {line(i)} has {len(row)} cells, the header has {width}"
             )
     try:
         values = np.array(rows, dtype=np.float64) if rows else np.empty((0, width))
@@ -72,7 +83,7 @@ def to_float(rows: list[list[str]], header: list[str], first_line: int, path) ->
         values = None
     for i, row in enumerate(rows):
         for j, cell in enumerate(row):
-            where = f"{path}: line {first_line + i}, column {header[j]!r}"
+            where = f"{path}: line {line(i)}, column {header[j]!r}"
             text = cell.strip()
             if not text or text.lower() in ("nan", "na", "null", "none"):
                 raise UserError(f"{where}: missing value")
@@ -86,7 +97,7 @@ def to_float(rows: list[list[str]], header: list[str], first_line: int, path) ->
 
 
 def _open_csv(path: Path):
-    fh = open(path, newline="", encoding="utf-8-sig")
+    fh = open(path, newline="", encoding="utf-8-sig")  # noqa: SIM115 (the caller closes it)
     reader = csv.reader(fh)
     try:
         header = next(reader)
@@ -115,12 +126,19 @@ def read_table(path) -> Table:
     if path.suffix.lower() in (".parquet", ".pq"):
         return _read_parquet(path, digest)
     fh, reader, header = _open_csv(path)
+    rows: list[list[str]] = []
+    lines: list[int] = []  # file line each row starts on (blank lines are skipped)
     with fh:
         try:
-            rows = [row for row in reader if row]
+            start = reader.line_num + 1
+            for row in reader:
+                if row:
+                    rows.append(row)
+                    lines.append(start)
+                start = reader.line_num + 1
         except (csv.Error, UnicodeDecodeError) as exc:
             raise UserError(f"{path}: line {reader.line_num}: {exc}") from None
-    values = to_float(rows, header, 2, path)
+    values = to_float(rows, header, 2, path, lines)
     return Table(header, values, digest, str(path))
 
 
@@ -166,21 +184,29 @@ def iter_csv_chunks(
     with fh:
         done = 0
         rows: list[list[str]] = []
-        for row in reader:
-            if not row:
-                continue
-            if len(row) != len(header):
-                raise UserError(
-                    f"{path}: line {reader.line_num} has {len(row)} cells, "
-                    f"the header has {len(header)}"
-                )
-            rows.append([row[j] for j in idx])
-            if len(rows) == chunk_rows:
-                yield done, to_float(rows, columns, done + 2, path)
-                done += len(rows)
-                rows = []
+        lines: list[int] = []
+        start = reader.line_num + 1
+        try:
+            for row in reader:
+                if not row:
+                    start = reader.line_num + 1
+                    continue
+                if len(row) != len(header):
+                    raise UserError(
+                        f"{path}: line {start} has {len(row)} cells, "
+                        f"the header has {len(header)}"
+                    )
+                rows.append([row[j] for j in idx])
+                lines.append(start)
+                start = reader.line_num + 1
+                if len(rows) == chunk_rows:
+                    yield done, to_float(rows, columns, done + 2, path, lines)
+                    done += len(rows)
+                    rows, lines = [], []
+        except (csv.Error, UnicodeDecodeError) as exc:
+            raise UserError(f"{path}: line {reader.line_num}: {exc}") from None
         if rows or not done:
-            yield done, to_float(rows, columns, done + 2, path)
+            yield done, to_float(rows, columns, done + 2, path, lines)
 
 
 def split_columns(

@@ -53,7 +53,10 @@ class Standardizer:
         return cls(mean, scale)
 
     def __call__(self, x: np.ndarray) -> np.ndarray:
-        return (x - self.mean) / self.scale
+        # C order, as the bundle stores it: column selections arrive Fortran-ordered, and
+        # row norms summed over a Fortran-ordered array can differ in the last bit, which
+        # made the in-memory fit and its published bundle disagree
+        return np.ascontiguousarray((x - self.mean) / self.scale)
 
 
 @dataclass
@@ -97,22 +100,30 @@ def solve_dual(k: np.ndarray, y_c: np.ndarray, ridge: float, want_loo: bool = Fa
     """
     n = k.shape[0]
     k.flat[:: n + 1] += ridge
-    anorm = np.abs(k).sum(axis=0).max()
+    # 1-norm for the condition estimate, by row blocks: np.abs(k) whole would be one more
+    # n × n temporary (the matrix is symmetric, so row sums are column sums)
+    anorm = max(
+        float(np.abs(k[i : i + 1024]).sum(axis=1).max()) for i in range(0, n, 1024)
+    )
     hint = f"the kernel system (n = {n}, ridge = {ridge:g}) is numerically singular; " \
         "raise --ridge (e.g. by a factor of 10) or remove duplicated/near-duplicate rows"
+    # LAPACK works in place only on Fortran-ordered arrays; a C-ordered k would be copied
+    # whole (and again by dpocon/dpotri), tripling the memory of a large fit. K is
+    # symmetric, so its transpose is the same matrix in Fortran order, at no cost.
+    a = k.T if k.flags.c_contiguous else k
     with safe_lapack(n):
         try:
-            c, lower = sla.cho_factor(k, lower=True, overwrite_a=True, check_finite=False)
+            c, lower = sla.cho_factor(a, lower=True, overwrite_a=True, check_finite=False)
         except np.linalg.LinAlgError:
             raise UserError(hint) from None
-        # c.T is Fortran-ordered with Lᵀ in its upper triangle: LAPACK reads it without a copy
-        rcond, info = lapack.dpocon(c.T, anorm, uplo="U")
+        # c is Fortran-ordered with L in its lower triangle
+        rcond, info = lapack.dpocon(c, anorm, uplo="L")
         if info != 0 or rcond < RCOND_MIN:
             raise UserError(f"{hint} (reciprocal condition number {rcond:.1e})")
         dual = sla.cho_solve((c, lower), y_c, check_finite=False)
         loo = None
         if want_loo:
-            inv, info = lapack.dpotri(c.T, lower=0, overwrite_c=True)
+            inv, info = lapack.dpotri(c, lower=1, overwrite_c=True)
             if info != 0:
                 raise UserError(hint)
             loo = dual / np.diag(inv)[:, None]
