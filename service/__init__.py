@@ -2,8 +2,20 @@
 
 ``from service import load_model`` is the small, stable Python API; the Flask app factory is
 ``service.app.create_app``.
+
+Importing this package loads nothing heavy: the gunicorn config lives in it and must set the
+BLAS thread environment before numpy (and OpenBLAS's thread pool) is loaded anywhere, or the
+workers inherit a multi-threaded BLAS from the master through fork.
 """
 
-from service.bundle import Model, load_model
+from __future__ import annotations
 
 __all__ = ["Model", "load_model"]
+
+
+def __getattr__(name: str):
+    if name in __all__:
+        from service import bundle
+
+        return getattr(bundle, name)
+    raise AttributeError(f"module 'service' has no attribute {name!r}")

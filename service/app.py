@@ -51,13 +51,15 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
 
     def model_name(name: str) -> str:
         try:
-            check_name(name)
+            return check_name(name)
         except StoreError as exc:
             raise ApiError(404, "model_not_found", str(exc)) from None
+
+    def not_found(name: str, exc: StoreError) -> ApiError:
+        """404 for a lookup that failed; never the store's folder in the message."""
         if not store.model_dir(name).is_dir():
-            # said here rather than by the store, whose message names its folder
-            raise ApiError(404, "model_not_found", f"no model named {name!r}")
-        return name
+            return ApiError(404, "model_not_found", f"no model named {name!r}")
+        return ApiError(404, "model_not_found", str(exc))
 
     # -- errors --------------------------------------------------------------------------
     @app.errorhandler(ApiError)
@@ -107,7 +109,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         try:
             m = hub.live(model_name(name))
         except StoreError as exc:
-            raise ApiError(404, "model_not_found", str(exc)) from None
+            raise not_found(name, exc) from None
         man = m.manifest
         return json_response({
             "model": m.name, "version": m.version, "created": man.get("created"),
@@ -120,12 +122,12 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
 
     @app.get("/models/<name>/versions")
     def list_versions(name: str):
-        name = model_name(name)  # 404 for an unknown model
+        name = model_name(name)
         try:
             live = store.live_version(name)
             versions = store.versions(name)
         except StoreError as exc:
-            raise ApiError(404, "model_not_found", str(exc)) from None
+            raise not_found(name, exc) from None
         rows = []
         for v in versions:
             try:
@@ -162,7 +164,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
             else:
                 model = hub.live(name)
         except NotFound as exc:
-            raise ApiError(404, "model_not_found", str(exc)) from None
+            raise not_found(name, exc) from None
         except StoreError as exc:
             raise ApiError(404, "version_unavailable", str(exc)) from None
         labels = (name, str(model.version))
@@ -221,7 +223,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         try:
             rec = store.release(name, body.version, check=check(name))
         except NotFound as exc:
-            raise ApiError(404, "model_not_found", str(exc)) from None
+            raise not_found(name, exc) from None
         except StoreError as exc:
             raise ApiError(422, "version_refused", str(exc)) from None
         return json_response({"model": name, **rec})
@@ -233,7 +235,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         try:
             rec = store.rollback(name, check=check(name))
         except NotFound as exc:
-            raise ApiError(404, "model_not_found", str(exc)) from None
+            raise not_found(name, exc) from None
         except StoreError as exc:
             raise ApiError(422, "rollback_refused", str(exc)) from None
         return json_response({"model": name, **rec})

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import time
@@ -146,7 +147,9 @@ def test_bad_inputs_get_4xx_naming_the_fault(served, body, ctype, status, words)
 
 
 def test_unknown_model_version_and_method(served):
-    assert served.post("/models/nosuch/predict", json={"rows": [[1]]}).status_code == 404
+    unknown = served.post("/models/nosuch/predict", json={"rows": [[1]]})
+    assert unknown.status_code == 404 and str(served.store) not in unknown.text
+    assert unknown.json()["error"]["message"] == "no model named 'nosuch'"
     assert served.post("/models/..%2Fetc/predict", json={"rows": [[1]]}).status_code == 404
     assert predict(served, {"rows": [TYPICAL_ROW]}, params={"version": "99"}).status_code == 404
     assert predict(served, {"rows": [TYPICAL_ROW]}, params={"version": "x"}).status_code == 400
@@ -289,3 +292,14 @@ def test_demo_smoke(tmp_path):
     assert "interval" in answers[0]["results"][0]
     assert all(not res["envelope"]["inside"] for res in answers[1]["results"])
     assert "curl -s -X POST" in r.stdout
+
+
+def test_gunicorn_config_loads_before_numpy():
+    # numpy imported in the master would start OpenBLAS's threads before the config limits
+    # them, and every forked worker would inherit a multi-threaded BLAS
+    code = ("import sys, os, service.gunicorn_config; "
+            "assert 'numpy' not in sys.modules, 'numpy imported by the config'; "
+            "assert os.environ['OPENBLAS_NUM_THREADS'] == '1'")
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+    r = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr

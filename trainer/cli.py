@@ -39,7 +39,11 @@ def cmd_train(args) -> int:
         ridge=args.ridge, holdout=args.holdout, seed=args.seed, release=args.release,
         store=args.store, quiet=args.quiet, report=not args.no_report,
     )
-    log = (lambda *a, **k: None) if args.quiet else (lambda *a, **k: print(*a, file=sys.stderr, **k))
+
+    def log(*a, **k):
+        if not args.quiet:
+            print(*a, file=sys.stderr, **k)
+
     summary = train(opts, log=log)
     if args.json:
         print(json.dumps(summary, indent=2))
@@ -57,6 +61,8 @@ def cmd_train(args) -> int:
         ("ridge", f"{summary['ridge']:.6g}"),
         ("LOO", headline(summary["metrics"], "loo")),
         ("holdout", headline(summary["metrics"], "holdout")),
+        *([("tuning", summary["tuning"])] if summary.get("tuning") else []),
+        *([("report", summary["report"])] if summary.get("report") else []),
         ("time", f"{summary['seconds']} s"),
         ("store", summary["store"]),
     ])
@@ -205,7 +211,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     t = add("train", cmd_train, "fit a model from a CSV/Parquet file and publish a new version")
     t.add_argument("data", help="CSV with a header row (or .parquet)")
-    t.add_argument("--target", required=True, type=_csv_list, help="target column(s), comma-separated")
+    t.add_argument("--target", required=True, type=_csv_list,
+                   help="target column(s), comma-separated")
     t.add_argument("--name", required=True, help="model name")
     t.add_argument("--features", type=_csv_list, help="feature columns (default: all but targets)")
     t.add_argument("--kernel", default="rbf",
@@ -250,7 +257,8 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("--quiet", action="store_true")
 
     s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
-    s.add_argument("--bind", default=None, help="HOST:PORT (default $KRIDGE_BIND or 127.0.0.1:8000)")
+    s.add_argument("--bind", default=None,
+                   help="HOST:PORT (default $KRIDGE_BIND or 127.0.0.1:8000)")
     s.add_argument("--workers", type=int, default=None, help="worker processes (default 2)")
 
     d = add("demo", cmd_demo, "demo data -> train -> release -> serve, with example calls")
@@ -269,6 +277,15 @@ def main(argv: list[str] | None = None) -> int:
     except ValueError as exc:  # e.g. bad kernel parameters from KernelSpec
         print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_USER
+    except BrokenPipeError:
+        # output piped into e.g. `head`, which exited: stop quietly, as other Unix tools do;
+        # point stdout at /dev/null so the interpreter's final flush does not fail again
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 141
+    except OSError as exc:  # unreadable/unwritable paths: one line, no traceback
+        print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_FAULT
     except KeyboardInterrupt:
         return 130
 

@@ -47,7 +47,8 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         ("kernel", f"{kern['name']}({params})"),
         ("ridge", fmt(m["ridge"], 6)),
         ("training rows", f"{tr.get('rows')} (holdout {tr.get('holdout_rows', 0)} rows, "
-                          f"seed {tr.get('seed')}), data sha256 {str(tr.get('data_sha256'))[:16]}…"),
+                          f"seed {tr.get('seed')}), "
+                          f"data sha256 {str(tr.get('data_sha256'))[:16]}…"),
         ("LOO", headline(m.get("metrics", {}), "loo")),
         ("holdout", headline(m.get("metrics", {}), "holdout")),
     ]
@@ -56,6 +57,11 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         lines.append(("tuning", tuning.get("summary", tuning.get("method", ""))))
     if m.get("intervals"):
         lines.append(("intervals", m["intervals"]["method"]))
+        cov = m["intervals"].get("holdout_coverage")
+        if cov:
+            lines.append(("holdout coverage", "; ".join(
+                f"{c['nominal']:.0%} → " + ", ".join(f"{v:.1%}" for v in c["empirical"])
+                for c in cov)))
     lines.append(("novelty", f"k={nov.get('k')}, threshold distance "
                              f"{fmt(nov.get('threshold_distance', float('nan')))} "
                              f"({nov.get('calibration', '')})"))

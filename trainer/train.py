@@ -105,7 +105,8 @@ def _params_of(kernel: str) -> tuple[str, ...]:
     from service.kernels import KERNEL_PARAMS
 
     if kernel not in KERNEL_PARAMS:
-        raise UserError(f"unknown kernel {kernel!r}; choose auto or one of {', '.join(KERNEL_NAMES)}")
+        raise UserError(
+            f"unknown kernel {kernel!r}; choose auto or one of {', '.join(KERNEL_NAMES)}")
     return KERNEL_PARAMS[kernel]
 
 
@@ -125,12 +126,19 @@ def train(opts: TrainOptions, log=print) -> dict:
 
     metrics: dict = {}
     holdout_abs = None
+    holdout_coverage = None
     if ho.size:
-        part = fit_exact(x[tr], y[tr], spec, ridge)
+        part = fit_exact(x[tr], y[tr], spec, ridge, want_loo=tr.size <= LOO_MAX_ROWS)
         pred = part.predict(x[ho])
         metrics["holdout"] = _per_target(opts.targets, y[ho], pred)
         holdout_abs = np.abs(y[ho] - pred)
         metrics["holdout"]["_predictions"] = {"actual": y[ho].tolist(), "predicted": pred.tolist()}
+        if part.loo_residuals is not None:
+            # honest check of the interval method: calibrated on the training part's LOO
+            # residuals, scored on rows that neither the fit nor the calibration saw
+            from trainer.tuning import interval_coverage
+
+            holdout_coverage = interval_coverage(np.abs(part.loo_residuals), y[ho], pred)
 
     t_fit = time.perf_counter()
     final: Fit = fit_exact(x, y, spec, ridge, want_loo=n <= LOO_MAX_ROWS)
@@ -179,6 +187,10 @@ def train(opts: TrainOptions, log=print) -> dict:
         "intervals": None if calib is None else {
             "method": interval_how,
             "calibration_rows": int(calib.shape[0]),
+            "holdout_coverage": holdout_coverage,
+            "holdout_coverage_method": None if holdout_coverage is None else (
+                "half-widths from the training-part model's LOO residuals, applied to its "
+                "holdout predictions"),
         },
         "precision": "float64",
         "libraries": library_versions(),
@@ -212,6 +224,9 @@ def train(opts: TrainOptions, log=print) -> dict:
         "kernel": spec.describe(),
         "ridge": ridge,
         "metrics": metrics,
+        "tuning": tuning_info["summary"] if tuning_info else None,
+        "report": (str(store.version_dir(opts.name, version) / "report.html")
+                   if extra is not None else None),
         "seconds": round(time.perf_counter() - t0, 2),
         "store": str(store.root),
     }

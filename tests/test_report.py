@@ -1,0 +1,50 @@
+"""The training report and the headline numbers of ``kridge inspect``."""
+
+from __future__ import annotations
+
+import base64
+import re
+
+import pytest
+
+from trainer.cli import main
+
+
+@pytest.fixture(scope="module")
+def small_csv(tmp_path_factory, demo_csv):
+    lines = demo_csv.read_text().splitlines()
+    path = tmp_path_factory.mktemp("data") / "coating_small.csv"
+    path.write_text("\n".join(lines[:301]) + "\n")
+    return path
+
+
+def test_train_auto_writes_self_contained_report(small_csv, store_dir, capsys):
+    rc = main(["train", str(small_csv), "--target", "hardness_s,gloss_gu", "--name", "c",
+               "--kernel", "auto", "--quiet"])
+    assert rc == 0
+    out, err = capsys.readouterr()
+    assert err == ""  # --quiet: no progress, no log lines
+    assert "LOO" in out and "holdout" in out and "tuning" in out
+    page = (store_dir / "c" / "versions" / "1" / "report.html").read_text()
+    images = re.findall(r'src="data:image/png;base64,([A-Za-z0-9+/=]+)"', page)
+    # LOO-vs-ridge curves, parity + residual histogram, calibration histogram
+    assert len(images) >= 3
+    assert all(base64.b64decode(i)[:8] == b"\x89PNG\r\n\x1a\n" for i in images)
+    assert not re.search(r'(src|href)="(https?:)?//', page)  # no network assets
+    for heading in ("Data", "Chosen parameters", "Leave-one-out error against ridge",
+                    "Holdout: parity and residuals", "Prediction intervals",
+                    "Training envelope"):
+        assert f"<h2>{heading}</h2>" in page
+    assert "holdout coverage" in page and "oven_temp_c" in page
+    assert "Best of each kernel compared" in page  # --kernel auto lists each kernel
+
+
+def test_inspect_prints_headline_numbers(small_csv, store_dir, capsys):
+    main(["train", str(small_csv), "--target", "hardness_s", "--name", "c", "--quiet"])
+    capsys.readouterr()
+    assert main(["inspect", "c"]) == 0
+    out = capsys.readouterr().out
+    for key in ("LOO", "holdout", "tuning", "holdout coverage", "report"):
+        assert re.search(rf"^{key}\s", out, re.M), key
+    assert re.search(r"^LOO\s+hardness_s: RMSE [0-9.]+", out, re.M)
+    assert "exact leave-one-out" in out

@@ -1,0 +1,278 @@
+"""The training report: one self-contained HTML file per version (``report.html``).
+
+Everything is inside the file — plots are PNG images embedded as base64 data URIs and the
+style sheet is inline — so the report opens offline and can be mailed or archived as is.
+Plots use matplotlib's non-interactive Agg backend (no display needed).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import math
+from pathlib import Path
+
+import numpy as np
+
+from trainer.tuning import COVERAGE_LEVELS, interval_coverage
+
+_STYLE = """
+body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
+color:#222;line-height:1.4}
+h1{font-size:1.5rem}h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px solid #ccc}
+table{border-collapse:collapse;margin:.5rem 0}td,th{border:1px solid #ccc;padding:.2rem .5rem;
+text-align:right}th{background:#f3f3f3}td.l,th.l{text-align:left}
+img{max-width:100%}.note{color:#555;font-size:.9rem}
+"""
+
+
+def _esc(value) -> str:
+    return html.escape(str(value))
+
+
+def _num(value, digits: int = 4) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            return "∞" if value > 0 else "–"
+        return f"{value:.{digits}g}"
+    return _esc(value)
+
+
+def _table(headers: list[str], rows: list[list], left: int = 1) -> str:
+    """HTML table; the first ``left`` columns are left-aligned text."""
+    def cell(tag, i, v):
+        cls = ' class="l"' if i < left else ""
+        return f"<{tag}{cls}>{v if isinstance(v, _Raw) else _num(v)}</{tag}>"
+
+    head = "".join(cell("th", i, _Raw(_esc(h))) for i, h in enumerate(headers))
+    body = "".join("<tr>" + "".join(cell("td", i, v) for i, v in enumerate(r)) + "</tr>"
+                   for r in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+class _Raw(str):
+    """Already-escaped HTML."""
+
+
+def _png(fig) -> str:
+    """Embed a matplotlib figure as a base64 PNG <img>; closes the figure."""
+    import matplotlib.pyplot as plt
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=96, bbox_inches="tight")
+    plt.close(fig)
+    data = base64.b64encode(buf.getvalue()).decode("ascii")
+    return f'<img alt="plot" src="data:image/png;base64,{data}">'
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
+    """LOO error against ridge, one line per kernel parameter setting, one panel per kernel."""
+    curves = [c for c in tuning.get("curves", []) if len(c["ridge"]) > 1]
+    if not curves:
+        return None
+    plt = _pyplot()
+    kernels = list(dict.fromkeys(c["kernel"] for c in curves))
+    fig, axes = plt.subplots(1, len(kernels), figsize=(4.2 * len(kernels), 3.4), squeeze=False)
+    single = len(targets) == 1
+    chosen = tuning.get("chosen", {})
+    for ax, name in zip(axes[0], kernels, strict=True):
+        own = [c for c in curves if c["kernel"] == name]
+        gammas = [c["params"].get("gamma") for c in own]
+        finite = [g for g in gammas if g is not None]
+        lo, hi = (min(finite), max(finite)) if finite else (1.0, 1.0)
+        cmap = plt.get_cmap("viridis")
+        for c, g in zip(own, gammas, strict=True):
+            if single:
+                err = [np.nan if r is None else r[0] for r in c["loo_rmse"]]
+            else:  # RMSE/SD averaged over targets: sqrt of the criterion
+                err = [np.nan if s is None else math.sqrt(s) for s in c["score"]]
+            pos = 0.5 if g is None or hi == lo else math.log(g / lo) / math.log(hi / lo)
+            ax.plot(c["ridge"], err, color=cmap(pos), lw=1)
+        if chosen.get("kernel") == name:
+            val = chosen.get("cv_rmse", [np.nan])[0] if single else math.sqrt(chosen["score"])
+            ax.plot([chosen["ridge"]], [val], marker="*", ms=12, color="crimson",
+                    label="chosen", ls="none")
+            ax.legend(loc="best", fontsize=8)
+        ax.set_xscale("log")
+        ax.set_yscale("log")
+        ax.set_xlabel("ridge λ")
+        ax.set_title(f"{name}" + ("" if not finite else f" (γ {lo:.3g} → {hi:.3g}, dark → light)"),
+                     fontsize=9)
+    axes[0][0].set_ylabel(f"LOO RMSE ({targets[0]})" if single else "LOO RMSE / SD (mean)")
+    fig.tight_layout()
+    return _png(fig)
+
+
+def _parity_and_hist(actual: np.ndarray, predicted: np.ndarray, targets: list[str]) -> str:
+    plt = _pyplot()
+    t = len(targets)
+    fig, axes = plt.subplots(t, 2, figsize=(9, 3.6 * t), squeeze=False)
+    for j, name in enumerate(targets):
+        a, p = actual[:, j], predicted[:, j]
+        ax = axes[j][0]
+        ax.scatter(a, p, s=8, alpha=0.6)
+        lo, hi = float(min(a.min(), p.min())), float(max(a.max(), p.max()))
+        ax.plot([lo, hi], [lo, hi], color="k", lw=1)
+        ax.set_xlabel(f"actual {name}")
+        ax.set_ylabel(f"predicted {name}")
+        ax.set_title("holdout: predicted against actual", fontsize=9)
+        ax = axes[j][1]
+        ax.hist(a - p, bins=30, color="slategray")
+        ax.set_xlabel(f"residual (actual − predicted) {name}")
+        ax.set_ylabel("rows")
+        ax.set_title("holdout residuals", fontsize=9)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def _calib_hist(calib: np.ndarray, targets: list[str]) -> str:
+    plt = _pyplot()
+    t = len(targets)
+    fig, axes = plt.subplots(1, t, figsize=(4.5 * t, 3.2), squeeze=False)
+    for j, name in enumerate(targets):
+        ax = axes[0][j]
+        ax.hist(calib[:, j], bins=30, color="slategray")
+        ax.set_xlabel(f"|LOO residual| {name}")
+        ax.set_ylabel("rows")
+    fig.tight_layout()
+    return _png(fig)
+
+
+def _metrics_rows(metrics: dict) -> list[list]:
+    rows = []
+    for kind in ("loo", "holdout"):
+        for target, m in (metrics.get(kind) or {}).items():
+            rows.append([_Raw(_esc(kind)), _Raw(_esc(target)), m["rmse"], m["mae"], m["r2"],
+                         m["rows"]])
+    return rows
+
+
+def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
+           calib: np.ndarray | None) -> str:
+    """The report as one HTML string."""
+    targets = list(manifest["targets"])
+    tr = manifest.get("training", {})
+    kern = manifest["kernel"]
+    parts = [f"<!doctype html><html lang=en><head><meta charset=utf-8>"
+             f"<title>{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}"
+             f" — training report</title><style>{_STYLE}</style></head><body>",
+             f"<h1>{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}: "
+             f"training report</h1>",
+             f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>"]
+
+    parts.append("<h2>Data</h2>")
+    parts.append(_table(["", ""], [
+        [_Raw("file"), _Raw(_esc(tr.get("data_file")))],
+        [_Raw("sha256"), _Raw(f"<code>{_esc(tr.get('data_sha256'))}</code>")],
+        [_Raw("rows"), tr.get("rows")],
+        [_Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
+                               f" seed {tr.get('seed')})"],
+        [_Raw("features"), _Raw(_esc(", ".join(manifest["features"])))],
+        [_Raw("targets"), _Raw(_esc(", ".join(targets)))],
+        [_Raw("final fit"), _Raw(_esc(tr.get("final_fit", "")))],
+    ], left=2))
+
+    parts.append("<h2>Chosen parameters</h2>")
+    params = ", ".join(f"{k}={_num(v, 6)}" for k, v in kern.get("params", {}).items())
+    rows = [[_Raw("kernel"), _Raw(_esc(f"{kern['name']}({params})"))],
+            [_Raw("ridge λ"), _Raw(_num(manifest["ridge"], 6))]]
+    if tuning:
+        rows += [[_Raw("how"), _Raw(_esc(tuning.get("method", "")))],
+                 [_Raw("criterion"), _Raw(_esc(tuning.get("criterion", "")))],
+                 [_Raw("searched"), _Raw(_esc(", ".join(tuning.get("searched", []))))],
+                 [_Raw("fallback"), _Raw(_esc(tuning.get("fallback") or "no"))],
+                 [_Raw("summary"), _Raw(_esc(tuning.get("summary", "")))]]
+    else:
+        rows.append([_Raw("how"), _Raw("given on the command line (no tuning)")])
+    parts.append(_table(["", ""], rows, left=2))
+    if tuning and len(tuning.get("per_kernel", {})) > 1:
+        parts.append("<p>Best of each kernel compared:</p>")
+        parts.append(_table(["kernel", "parameters", "ridge", "criterion"], [
+            [_Raw(_esc(k)), _Raw(_esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items())
+                                      or "–")), v["ridge"], v["score"]]
+            for k, v in tuning["per_kernel"].items()], left=2))
+
+    parts.append("<h2>Metrics</h2>")
+    parts.append(_table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
+                        _metrics_rows(manifest.get("metrics", {})), left=2))
+    parts.append("<p class=note>loo: exact leave-one-out of the final model (all rows); "
+                 "holdout: the model fitted on the training part, scored on the held-out rows."
+                 "</p>")
+
+    if tuning:
+        img = _curve_plot(tuning, targets)
+        if img:
+            parts.append("<h2>Leave-one-out error against ridge</h2>")
+            parts.append(img)
+            parts.append("<p class=note>One line per kernel parameter setting tried; "
+                         "the star marks the choice.</p>")
+
+    if holdout_points:
+        actual = np.asarray(holdout_points["actual"], dtype=float)
+        predicted = np.asarray(holdout_points["predicted"], dtype=float)
+        parts.append("<h2>Holdout: parity and residuals</h2>")
+        parts.append(_parity_and_hist(actual, predicted, targets))
+    else:
+        actual = predicted = None
+
+    parts.append("<h2>Prediction intervals</h2>")
+    intervals = manifest.get("intervals")
+    if intervals:
+        parts.append(f"<p>{_esc(intervals['method'])}; {intervals['calibration_rows']} "
+                     "calibration residuals.</p>")
+        cov = intervals.get("holdout_coverage")
+        note = intervals.get("holdout_coverage_method")
+        if cov is None and calib is not None and actual is not None:
+            cov = interval_coverage(calib, actual, predicted, COVERAGE_LEVELS)
+            note = ("half-widths from the stored calibration residuals (these include the "
+                    "holdout rows, so the check is optimistic)")
+        if cov:
+            rows = [[_Raw(_esc(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
+                     c["rows"]] for c in cov for j, t in enumerate(targets)]
+            parts.append(_table(["target", "nominal", "holdout coverage", "half-width",
+                                 "rows"], rows))
+            parts.append(f"<p class=note>{_esc(note)}</p>")
+        if calib is not None:
+            parts.append(_calib_hist(np.asarray(calib, dtype=float), targets))
+    else:
+        parts.append("<p>No interval calibration stored.</p>")
+
+    parts.append("<h2>Training envelope</h2>")
+    env = manifest.get("envelope", {})
+    std = manifest.get("standardization", {})
+    rows = []
+    for j, f in enumerate(manifest["features"]):
+        r = env.get("ranges", {}).get(f, {})
+        rows.append([_Raw(_esc(f)), r.get("min"), r.get("max"),
+                     (std.get("mean") or [None] * (j + 1))[j],
+                     (std.get("scale") or [None] * (j + 1))[j]])
+    parts.append(_table(["feature", "min", "max", "mean", "scale (SD)"], rows))
+    nov = env.get("novelty", {})
+    if nov:
+        parts.append(_table(["", ""], [
+            [_Raw("novelty method"), _Raw(_esc(nov.get("method", "")))],
+            [_Raw("k"), nov.get("k")],
+            [_Raw("threshold distance"), nov.get("threshold_distance")],
+            [_Raw("calibration"), _Raw(_esc(nov.get("calibration", "")))],
+            [_Raw("training rows flagged"), nov.get("training_rows_flagged")],
+        ], left=2))
+    parts.append("</body></html>")
+    return "\n".join(parts)
+
+
+def write_report(path: Path, manifest: dict, tuning: dict | None, holdout_points: dict | None,
+                 calib: np.ndarray | None) -> None:
+    """Write ``report.html`` for one version (called while the version is being published)."""
+    Path(path).write_text(render(manifest, tuning, holdout_points, calib), encoding="utf-8")
