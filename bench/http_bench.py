@@ -25,8 +25,9 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
 
-from bench.loadgen import run_load  # noqa: E402
 from service_helpers import Gunicorn  # noqa: E402
+
+from bench.loadgen import run_load  # noqa: E402
 
 WORK = ROOT / "bench" / "results"
 N_ROWS, N_FEATURES = 20_000, 16

@@ -143,7 +143,8 @@ class ModelHub:
         served, problems = {}, {}
         for name, slot in self.slots.items():
             served[name] = slot.model.version if slot.model else None
-            if slot.wanted is not None and (slot.model is None or slot.model.version != slot.wanted):
+            behind = slot.model is None or slot.model.version != slot.wanted
+            if slot.wanted is not None and behind:
                 problems[name] = slot.problem or f"version {slot.wanted} is loading"
         return not problems, served, problems
 
