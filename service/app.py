@@ -31,7 +31,14 @@ log = logging.getLogger("kridge.service")
 
 def json_response(body, status: int = 200, headers: dict | None = None) -> Response:
     return Response(orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY), status=status,
-                    headers=headers, mimetype="application/json")
+                    headers=headers, content_type="application/json")
+
+
+def sends_json(environ: dict) -> bool:
+    """Content-Type is application/json or a +json type (werkzeug's rule, without the cost)."""
+    mime = environ.get("CONTENT_TYPE", "").split(";", 1)[0].strip().lower()
+    return mime == "application/json" or (mime.startswith("application/")
+                                           and mime.endswith("+json"))
 
 
 def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
@@ -64,7 +71,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
     # -- errors --------------------------------------------------------------------------
     @app.errorhandler(ApiError)
     def api_error(exc: ApiError):
-        label = getattr(g, "model_labels", ("", ""))
+        label = g.get("model_labels") or ((request.view_args or {}).get("name", ""), "")
         metrics.ERRORS.labels(label[0], label[1], exc.code).inc()
         return json_response(exc.body(), exc.status)
 
@@ -153,8 +160,8 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
     def predict(name: str):
         t_start = time.perf_counter()
         name = model_name(name)
-        g.model_labels = (name, "")
-        pinned = request.args.get("version")
+        # request.args parses even an empty query string; most calls have none
+        pinned = request.args.get("version") if request.environ.get("QUERY_STRING") else None
         try:
             if pinned is not None:
                 if not pinned.isdigit() or int(pinned) < 1:
@@ -169,7 +176,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
             raise ApiError(404, "version_unavailable", str(exc)) from None
         labels = (name, str(model.version))
         g.model_labels = labels
-        if not request.is_json:
+        if not sends_json(request.environ):
             raise ApiError(415, "unsupported_media_type",
                            "send the body as JSON with Content-Type: application/json")
         req = parse_body(request.get_data(cache=False), settings.max_rows)
@@ -177,15 +184,16 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         body, compute = predict_response(model, req, t_start, t_parsed)
         out_of_range = sum(1 for r in body["results"] if r["envelope"]["out_of_range"])
         novel = sum(1 for r in body["results"] if r["envelope"]["novel"])
-        metrics.ROWS.labels(*labels).inc(len(body["results"]))
+        series = metrics.for_version(*labels)
+        series.rows.inc(len(body["results"]))
         if out_of_range:
-            metrics.FLAGS.labels(*labels, "out_of_range").inc(out_of_range)
+            series.out_of_range.inc(out_of_range)
         if novel:
-            metrics.FLAGS.labels(*labels, "novel").inc(novel)
-        metrics.COMPUTE_SECONDS.labels(*labels).observe(compute)
+            series.novel.inc(novel)
+        series.compute.observe(compute)
         t = body["timing_ms"]
         t["total"] = round((time.perf_counter() - t_start) * 1e3, 4)
-        metrics.REQUEST_SECONDS.labels(*labels).observe(t["total"] / 1e3)
+        series.request.observe(t["total"] / 1e3)
         headers = {
             "Server-Timing": f"parse;dur={t['parse']}, compute;dur={t['compute']}, "
                              f"total;dur={t['total']}",

@@ -13,7 +13,7 @@ import numpy as np
 
 from service import envelope
 from service.engine import Engine
-from service.kernels import KernelSpec, row_sq_norms
+from service.kernels import KernelSpec
 from service.store import Store, StoreError
 
 
@@ -44,10 +44,8 @@ class Model:
         self.lo = np.array([env["ranges"][f]["min"] for f in self.features])
         self.hi = np.array([env["ranges"][f]["max"] for f in self.features])
         nov = env["novelty"]
-        self.novelty_k = int(nov["k"])
         self.novelty_tau = float(nov["threshold_distance"])
-        self.novelty_ref = arrays["novelty_reference"]
-        self.novelty_ref_sq = row_sq_norms(self.novelty_ref)
+        self.neighbours = envelope.NeighbourIndex(arrays["novelty_reference"], int(nov["k"]))
         self.residuals = arrays.get("abs_residuals")  # sorted, (c, t); None: no intervals
 
     # -- numbers -------------------------------------------------------------------------
@@ -70,10 +68,7 @@ class Model:
 
     def novelty(self, xs: np.ndarray) -> np.ndarray:
         """Novelty score of standardized rows: k-th neighbour distance / τ (see envelope)."""
-        d = envelope.kth_neighbour_distance(
-            self.novelty_ref, self.novelty_ref_sq, xs, self.novelty_k
-        )
-        return d / self.novelty_tau
+        return self.neighbours.distances(xs) / self.novelty_tau
 
     def envelope(self, x, xs: np.ndarray | None = None) -> list[dict]:
         """Envelope report per row: inside, out_of_range, novelty, novel."""

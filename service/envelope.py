@@ -21,32 +21,39 @@ NOVELTY_K = 5
 NOVELTY_QUANTILE = 0.99
 
 
-def kth_neighbour_distance(
-    reference: np.ndarray, ref_sq: np.ndarray, q: np.ndarray, k: int, skip_self: bool = False
-) -> np.ndarray:
-    """Euclidean distance from each row of ``q`` to its k-th nearest row of ``reference``.
+class NeighbourIndex:
+    """Distances from query rows to their k-th nearest reference row, built once per model.
 
-    Parameters
-    ----------
-    reference : (r, d) standardized reference rows; ``ref_sq`` their squared norms.
-    q : (m, d) standardized query rows.
-    k : which neighbour (1 = nearest).
-    skip_self : the queries are reference rows themselves; do not count the zero distance.
-
-    Returns
-    -------
-    (m,) distances, computed as √max(‖q‖² − 2qᵀr + ‖r‖², 0).
+    The reference is stored augmented as A = [−2R | ‖r‖²] so that for q̃ = [q, 1]
+    (A q̃)_j + ‖q‖² = ‖q − r_j‖²: one matrix product per batch (one GEMV for a single row,
+    the service's common case), then a partial sort.
     """
-    kk = min(k + int(skip_self), reference.shape[0]) - 1
-    out = np.empty(q.shape[0])
-    for start in range(0, q.shape[0], 1024):
-        block = q[start : start + 1024]
-        d2 = block @ reference.T
-        d2 *= -2.0
-        d2 += row_sq_norms(block)[:, None]
-        d2 += ref_sq[None, :]
-        out[start : start + 1024] = np.partition(d2, kk, axis=1)[:, kk]
-    return np.sqrt(np.maximum(out, 0.0))
+
+    def __init__(self, reference: np.ndarray, k: int):
+        reference = np.asarray(reference, dtype=np.float64)
+        self.rows, self.d = reference.shape
+        self.k = k
+        self.aug = np.empty((self.rows, self.d + 1))
+        np.multiply(reference, -2.0, out=self.aug[:, : self.d])
+        self.aug[:, self.d] = row_sq_norms(reference)
+
+    def distances(self, q: np.ndarray, skip_self: bool = False, block: int = 1024) -> np.ndarray:
+        """Euclidean distance from each row of ``q`` (m, d) to its k-th nearest reference row.
+
+        ``skip_self``: the queries are the reference rows themselves, so the zero distance to
+        itself is not counted (leave-one-out). Computed as √max(‖q‖² − 2qᵀr + ‖r‖², 0).
+        """
+        kk = min(self.k + int(skip_self), self.rows) - 1
+        m = q.shape[0]
+        q_aug = np.ones((m, self.d + 1))
+        q_aug[:, : self.d] = q
+        out = np.empty(m)
+        for start in range(0, m, block):
+            t = q_aug[start : start + block] @ self.aug.T
+            out[start : start + block] = np.partition(t, kk, axis=1)[:, kk]
+        out += row_sq_norms(q)
+        np.maximum(out, 0.0, out=out)
+        return np.sqrt(out, out=out)
 
 
 def check_ranges(x_raw: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
@@ -64,13 +71,13 @@ def describe(
 ) -> list[dict]:
     """Per-row envelope dicts in the response's shape."""
     result = []
-    for i in range(x_raw.shape[0]):
-        cols = np.flatnonzero(outside[i])
-        score = float(novelty[i])
+    any_outside = outside.any(axis=1).tolist()
+    for i, score in enumerate(novelty.tolist()):
+        cols = np.flatnonzero(outside[i]) if any_outside[i] else ()
         novel = score > 1.0
         result.append(
             {
-                "inside": not (cols.size or novel),
+                "inside": not (any_outside[i] or novel),
                 "out_of_range": {
                     features[j]: {
                         "value": float(x_raw[i, j]),

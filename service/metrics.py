@@ -5,6 +5,8 @@ files and ``/metrics`` add them up, so the figures cover all workers whichever o
 from __future__ import annotations
 
 import os
+from functools import lru_cache
+from typing import NamedTuple
 
 from prometheus_client import (
     CONTENT_TYPE_LATEST,
@@ -36,6 +38,28 @@ ERRORS = Counter("kridge_errors", "Error responses by code.", ["model", "version
 LOAD_FAILURES = Counter(
     "kridge_load_failures", "Live versions a worker refused to load.", ["model", "version"]
 )
+
+
+class VersionSeries(NamedTuple):
+    """The labelled children one model version updates on every request."""
+
+    rows: Counter
+    out_of_range: Counter
+    novel: Counter
+    compute: Histogram
+    request: Histogram
+
+
+@lru_cache(maxsize=512)
+def for_version(model: str, version: str) -> VersionSeries:
+    """Children looked up once per (model, version), not on every request."""
+    return VersionSeries(
+        ROWS.labels(model, version),
+        FLAGS.labels(model, version, "out_of_range"),
+        FLAGS.labels(model, version, "novel"),
+        COMPUTE_SECONDS.labels(model, version),
+        REQUEST_SECONDS.labels(model, version),
+    )
 
 
 def exposition() -> tuple[bytes, str]:

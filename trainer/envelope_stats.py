@@ -10,8 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from service.envelope import NOVELTY_K, NOVELTY_QUANTILE, kth_neighbour_distance
-from service.kernels import row_sq_norms
+from service.envelope import NOVELTY_K, NOVELTY_QUANTILE, NeighbourIndex
 
 #: Largest reference set kept for the novelty score. It bounds the score's per-request cost
 #: (about 15 µs per row at 2,000 × 16 on the machines here, against ~150 µs for the kernel
@@ -32,14 +31,14 @@ def envelope_stats(
     k = min(NOVELTY_K, n - 1)
     if n <= REFERENCE_ROWS:
         reference = x_s
-        calib = kth_neighbour_distance(reference, row_sq_norms(reference), x_s, k, True)
+        calib = NeighbourIndex(reference, k).distances(x_s, skip_self=True)
         how = "leave-one-out k-th neighbour distance of every training row"
     else:
         rng = np.random.default_rng(seed)
         pick = np.zeros(n, dtype=bool)
         pick[rng.choice(n, REFERENCE_ROWS, replace=False)] = True
         reference = x_s[pick]
-        calib = kth_neighbour_distance(reference, row_sq_norms(reference), x_s[~pick], k)
+        calib = NeighbourIndex(reference, k).distances(x_s[~pick])
         how = (f"k-th neighbour distance to a random reference of {REFERENCE_ROWS} training "
                f"rows, measured on the {n - REFERENCE_ROWS} training rows outside it")
     tau = float(np.quantile(calib, NOVELTY_QUANTILE))
