@@ -23,3 +23,12 @@ def store_dir(tmp_path, monkeypatch) -> Path:
 @pytest.fixture(scope="session")
 def demo_csv() -> Path:
     return DEMO_CSV
+
+
+@pytest.fixture
+def small_csv(tmp_path, demo_csv):
+    """The first 60 rows of the demo data: enough for a real model, fast to fit."""
+    lines = demo_csv.read_text().splitlines()[:61]
+    path = tmp_path / "small.csv"
+    path.write_text("\n".join(lines) + "\n")
+    return path

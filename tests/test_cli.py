@@ -28,13 +28,6 @@ FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "v
 RBF = ["--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report"]
 
 
-@pytest.fixture
-def small_csv(tmp_path, demo_csv):
-    lines = demo_csv.read_text().splitlines()[:61]
-    path = tmp_path / "small.csv"
-    path.write_text("\n".join(lines) + "\n")
-    return path
-
 
 def run_cli(capsys, *argv):
     code = main([str(a) for a in argv])

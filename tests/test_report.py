@@ -11,15 +11,15 @@ from trainer.cli import main
 
 
 @pytest.fixture(scope="module")
-def small_csv(tmp_path_factory, demo_csv):
+def csv_300(tmp_path_factory, demo_csv):
     lines = demo_csv.read_text().splitlines()
     path = tmp_path_factory.mktemp("data") / "coating_small.csv"
     path.write_text("\n".join(lines[:301]) + "\n")
     return path
 
 
-def test_train_auto_writes_self_contained_report(small_csv, store_dir, capsys):
-    rc = main(["train", str(small_csv), "--target", "hardness_s,gloss_gu", "--name", "c",
+def test_train_auto_writes_self_contained_report(csv_300, store_dir, capsys):
+    rc = main(["train", str(csv_300), "--target", "hardness_s,gloss_gu", "--name", "c",
                "--kernel", "auto", "--quiet"])
     assert rc == 0
     out, err = capsys.readouterr()
@@ -39,8 +39,8 @@ def test_train_auto_writes_self_contained_report(small_csv, store_dir, capsys):
     assert "Best of each kernel compared" in page  # --kernel auto lists each kernel
 
 
-def test_inspect_prints_headline_numbers(small_csv, store_dir, capsys):
-    main(["train", str(small_csv), "--target", "hardness_s", "--name", "c", "--quiet"])
+def test_inspect_prints_headline_numbers(csv_300, store_dir, capsys):
+    main(["train", str(csv_300), "--target", "hardness_s", "--name", "c", "--quiet"])
     capsys.readouterr()
     assert main(["inspect", "c"]) == 0
     out = capsys.readouterr().out

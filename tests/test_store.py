@@ -31,14 +31,6 @@ KRIDGE = str(Path(sys.executable).with_name("kridge"))
 TARGETS = ["hardness_s", "gloss_gu"]
 
 
-@pytest.fixture
-def small_csv(tmp_path, demo_csv):
-    """The first 60 rows of the demo data: enough for a real model, fast to fit."""
-    lines = demo_csv.read_text().splitlines()[:61]
-    path = tmp_path / "small.csv"
-    path.write_text("\n".join(lines) + "\n")
-    return path
-
 
 def publish(store_dir, data, name="coat", targets=TARGETS, **kw):
     opts = TrainOptions(data=str(data), targets=targets, name=name, kernel="rbf", gamma=0.2,

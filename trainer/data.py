@@ -7,13 +7,13 @@ file and find it.
 from __future__ import annotations
 
 import csv
-import hashlib
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from service.store import sha256_file
 from trainer.errors import UserError
 
 MIN_ROWS = 3
@@ -31,14 +31,6 @@ class Table:
     def select(self, names: list[str]) -> np.ndarray:
         index = {c: j for j, c in enumerate(self.columns)}
         return self.values[:, [index[n] for n in names]]
-
-
-def file_sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def _check_header(header: list[str], path: Path) -> list[str]:
@@ -122,7 +114,7 @@ def _check_path(path) -> Path:
 def read_table(path) -> Table:
     """Read a whole CSV or Parquet file into a numeric :class:`Table`."""
     path = _check_path(path)
-    digest = file_sha256(path)
+    digest = sha256_file(path)
     if path.suffix.lower() in (".parquet", ".pq"):
         return _read_parquet(path, digest)
     fh, reader, header = _open_csv(path)
