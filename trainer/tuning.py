@@ -52,7 +52,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.linalg as sla
-from threadpoolctl import threadpool_info, threadpool_limits
+from threadpoolctl import threadpool_info
 
 from service.kernels import KERNEL_PARAMS, KernelSpec, kernel_matrix
 from trainer.errors import UserError
@@ -75,13 +75,13 @@ RIDGE_GRID_SIZE = 30
 WIDTH_GRID_SIZE = 8
 WIDTH_EXTENSIONS = 2
 WIDTH_BISECTIONS = 2
-#: Up to this many rows, candidates run in parallel (joblib threads, one BLAS thread each;
-#: eigh releases the GIL). Measured here with other developers' jobs on the same 2 cores:
-#: two eigh of n = 1,600 took 12.8 s one after another on 2 BLAS threads but 2.7 s side by
-#: side on one thread each; n = 3,000: 72 s against 13.8 s. The tridiagonal reduction in eigh
-#: scales poorly over threads and busy-waiting BLAS threads suffer badly on a loaded machine,
-#: so parallel candidates pay at every size the exact search handles.
-PARALLEL_UP_TO = EXACT_MAX_ROWS
+#: From this many rows up to EXACT_MAX_ROWS, candidates run in separate processes (joblib's
+#: loky backend), one BLAS thread each. Threads do not help: scipy's eigh holds the GIL, so
+#: threaded candidates run one after another on one BLAS thread. Measured on a quiet 2-core
+#: machine here, 8 rbf candidates at n = 3,000: two processes 21.8 s, one after another on 2
+#: BLAS threads 24.8 s, two threads 38.9 s. Below ~1,000 rows a decomposition takes under
+#: 0.2 s and starting worker processes costs more than it saves.
+PARALLEL_FROM = 1000
 #: Kernels compared by ``--kernel auto`` (sigmoid is indefinite in general: asked-for only).
 AUTO_KERNELS = ("linear", "polynomial", "rbf", "laplacian", "matern32", "matern52")
 #: 1 − H_ii below this (relative) counts as a row the smoother interpolates: LOO undefined.
@@ -332,24 +332,25 @@ def _make_runner(n: int, quiet: bool, total_hint: int, log):
     cores = os.cpu_count() or 1
     bar = tqdm(total=total_hint, desc="tuning", unit="fit", leave=False,
                disable=quiet or not sys.stderr.isatty(), file=sys.stderr)
-    parallel = cores > 1 and n <= PARALLEL_UP_TO
+    parallel = cores > 1 and PARALLEL_FROM <= n <= EXACT_MAX_ROWS
     blas_threads = max((p.get("num_threads", 1) for p in threadpool_info()
                         if p.get("user_api") == "blas"), default=1)
     if parallel:
-        how = (f"candidates spread over {cores} cores with joblib threads "
-               f"(one BLAS thread each: faster than multi-threaded BLAS on one "
-               f"decomposition at a time; BLAS would otherwise use {blas_threads} thread(s))")
+        how = (f"candidates spread over {cores} worker processes with joblib, one BLAS thread "
+               f"each (measured faster than one decomposition at a time on {blas_threads} "
+               "BLAS threads)")
     else:
         how = (f"candidates one after another: BLAS already uses {blas_threads} thread(s) "
                f"for each n = {n} decomposition")
 
     def run(problem: Problem, specs: list[KernelSpec]) -> list[Curve]:
         if parallel and len(specs) > 1:
-            from joblib import Parallel, delayed
+            from joblib import Parallel, delayed, parallel_config
 
-            with threadpool_limits(1, user_api="blas"):
-                out = Parallel(n_jobs=min(cores, len(specs)), prefer="threads")(
+            with parallel_config(backend="loky", inner_max_num_threads=1):
+                out = Parallel(n_jobs=min(cores, len(specs)))(
                     delayed(evaluate)(problem, s) for s in specs)
+            problem.evaluated += len(specs)  # the workers counted on their own copies
             bar.update(len(specs))
             return out
         out = []
