@@ -165,6 +165,31 @@ def prepare_rows(
     return q * spec.gamma, None
 
 
+def augmented_columns(spec: KernelSpec, x: np.ndarray) -> np.ndarray:
+    """X̃ᵀ = [xᵀ; 1; −c‖x‖²], shape (d + 2, n), for a distance kernel (a new array).
+
+    With :func:`augmented_rows` one matrix product gives u = 2c qᵀx − c‖q‖² − c‖x‖² =
+    −c‖q − x‖² directly, so a tile needs no passes for the row and column terms.
+    """
+    d, n = x.shape[1], x.shape[0]
+    out = np.empty((d + 2, n))
+    out[:d] = x.T
+    out[d] = 1.0
+    out[d + 1] = -prepare_columns(spec, x)
+    return out
+
+
+def augmented_rows(spec: KernelSpec, q: np.ndarray) -> np.ndarray:
+    """Q̃ = [2c q, −c‖q‖², 1], shape (m, d + 2): the query side of :func:`augmented_columns`."""
+    qs, row = prepare_rows(spec, q)
+    m, d = q.shape
+    out = np.empty((m, d + 2))
+    out[:, :d] = qs
+    out[:, d] = -row
+    out[:, d + 1] = 1.0
+    return out
+
+
 def _integer_power(out: np.ndarray, degree: float, scratch: np.ndarray | None) -> np.ndarray:
     """``out **= degree`` in place; small integer degrees by multiplication (pow is ~10× slower)."""
     if degree == 1.0:
@@ -196,7 +221,8 @@ def kernel_tile(
     Parameters
     ----------
     spec : the kernel.
-    qs, row : from :func:`prepare_rows` for the tile's m query rows.
+    qs, row : from :func:`prepare_rows` for the tile's m query rows; for a distance kernel
+        also ``(augmented_rows(...), None)`` with ``xt`` a slice of :func:`augmented_columns`.
     xt : (d, w) the tile's training rows transposed (a view such as ``x[j0:j1].T``).
     col : the tile's slice of :func:`prepare_columns` (None for dot kernels).
     out : (m, w) float buffer, overwritten.
@@ -246,8 +272,14 @@ def kernel_tile(
         return _integer_power(out, spec.degree, scratch)
 
     # distance kernels: out = u = −c r² ≤ 0
-    out -= row[:, None]
-    out -= col
+    if row is None:
+        # augmented operands (augmented_rows/augmented_columns): u came out of the product;
+        # rounding can leave u a hair above 0, which exp maps to 1 + O(1e-15): harmless
+        if name == "rbf":
+            return np.exp(out, out=out)
+    else:
+        out -= row[:, None]
+        out -= col
     np.minimum(out, 0.0, out=out)
     if name == "rbf":
         return np.exp(out, out=out)
