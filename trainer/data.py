@@ -164,7 +164,9 @@ def iter_csv_chunks(
     """Stream a CSV in chunks: yields (first data row index, values of ``columns``).
 
     Only ``columns`` are converted; other columns may hold anything. Memory stays bounded by
-    the chunk size, so a file larger than memory can be scored.
+    the chunk size, so a file larger than memory can be scored. The file and its header are
+    checked here, before the first chunk is asked for, so a caller can refuse a file before
+    writing any output.
     """
     path = _check_path(path)
     fh, reader, header = _open_csv(path)
@@ -172,6 +174,10 @@ def iter_csv_chunks(
     if missing:
         fh.close()
         raise UserError(f"{path}: missing feature column(s) {', '.join(map(repr, missing))}")
+    return _chunks(path, fh, reader, header, columns, chunk_rows)
+
+
+def _chunks(path, fh, reader, header, columns, chunk_rows) -> Iterator[tuple[int, np.ndarray]]:
     idx = [header.index(c) for c in columns]
     with fh:
         done = 0

@@ -40,6 +40,7 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
         if not model.has_intervals:
             raise UserError(f"{model.name} v{model.version} has no interval calibration")
         half = model.half_width(coverage)
+    chunks = iter_csv_chunks(path, model.features, chunk_rows)  # refuses a bad file first
     writer = csv.writer(out, lineterminator="\n")
     header = list(model.features) + [f"{t}_predicted" for t in model.targets]
     if half is not None:
@@ -48,7 +49,7 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
     writer.writerow(header + ["inside", "novelty", "out_of_range"])
     bar = _progress(quiet)
     total = 0
-    for _start, x in iter_csv_chunks(path, model.features, chunk_rows):
+    for _start, x in chunks:
         if not x.shape[0]:
             continue
         xs = model.standardize(x)
