@@ -39,7 +39,10 @@ class Model:
         self.intercept = np.asarray(manifest["intercept"], dtype=np.float64)
         kern = manifest["kernel"]
         self.spec = KernelSpec.from_params(kern["name"], kern.get("params", {}))
-        self.engine = Engine(self.spec, arrays["x_train"], arrays["dual"])
+        precision = manifest.get("precision", "float64")
+        if precision not in ("float64", "float32"):
+            raise ValueError(f"unknown precision {precision!r}")
+        self.engine = Engine(self.spec, arrays["x_train"], arrays["dual"], dtype=precision)
         env = manifest["envelope"]
         self.lo = np.array([env["ranges"][f]["min"] for f in self.features])
         self.hi = np.array([env["ranges"][f]["max"] for f in self.features])

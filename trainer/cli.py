@@ -38,6 +38,7 @@ def cmd_train(args) -> int:
         kernel=args.kernel, gamma=args.gamma, degree=args.degree, coef0=args.coef0,
         ridge=args.ridge, holdout=args.holdout, seed=args.seed, release=args.release,
         store=args.store, quiet=args.quiet, report=not args.no_report,
+        precision=args.precision,
     )
 
     def log(*a, **k):
@@ -48,7 +49,7 @@ def cmd_train(args) -> int:
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
-    from trainer.show import headline, print_pairs
+    from trainer.show import headline, precision_line, print_pairs
 
     print_pairs([
         ("model", f"{summary['name']} v{summary['version']}"
@@ -63,6 +64,7 @@ def cmd_train(args) -> int:
         ("holdout", headline(summary["metrics"], "holdout")),
         *([("tuning", summary["tuning"])] if summary.get("tuning") else []),
         *([("report", summary["report"])] if summary.get("report") else []),
+        ("precision", precision_line(summary["precision"], summary["precision_check"])),
         ("time", f"{summary['seconds']} s"),
         ("store", summary["store"]),
     ])
@@ -225,6 +227,8 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")
     t.add_argument("--no-report", action="store_true", help="skip report.html")
+    t.add_argument("--precision", choices=("float64", "float32"), default="float64",
+                   help="serving precision; float32 records its measured error (default float64)")
     t.add_argument("--quiet", action="store_true")
     t.add_argument("--json", action="store_true", help="print the summary as JSON")
 

@@ -65,7 +65,8 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     lines.append(("novelty", f"k={nov.get('k')}, threshold distance "
                              f"{fmt(nov.get('threshold_distance', float('nan')))} "
                              f"({nov.get('calibration', '')})"))
-    lines.append(("precision", m.get("precision", "float64")))
+    lines.append(("precision", precision_line(m.get("precision", "float64"),
+                                              m.get("precision_check"))))
     return lines
 
 
@@ -73,3 +74,12 @@ def print_pairs(pairs: list[tuple[str, str]], out=None) -> None:
     width = max(len(k) for k, _ in pairs)
     for k, v in pairs:
         print(f"{k.ljust(width)}  {v}", file=out or sys.stdout)
+
+
+def precision_line(precision: str, check: dict | None) -> str:
+    """'float64 (exact)' or float32 with its measured largest difference per target."""
+    if precision != "float32" or not check:
+        return f"{precision} (exact)" if precision == "float64" else precision
+    diffs = ", ".join(f"{t} {fmt(v, 2)}" for t, v in check["max_abs_error"].items())
+    return (f"float32: largest difference from float64 on the {check['rows']} training rows "
+            f"{diffs}")

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import platform
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -50,7 +50,7 @@ class TrainOptions:
     store: str | None = None
     quiet: bool = False
     report: bool = True
-    extra: dict = field(default_factory=dict)
+    precision: str = "float64"
 
 
 def split_holdout(n: int, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
@@ -78,6 +78,27 @@ def library_versions() -> dict[str, str]:
         except md.PackageNotFoundError:
             out[lib] = "unknown"
     return out
+
+
+def precision_check(final: Fit, targets: list[str], y: np.ndarray) -> dict:
+    """Largest |float32 − float64| prediction difference on the model's own training rows.
+
+    Run when ``--precision float32`` is asked for, so the manifest states what single
+    precision costs this model (it can be large when α is large and cancels, e.g. for a wide
+    kernel with a tiny ridge).
+    """
+    from service.engine import Engine
+
+    exact = Engine(final.spec, final.x_s, final.dual).predict(final.x_s)
+    single = Engine(final.spec, final.x_s, final.dual, dtype=np.float32).predict(final.x_s)
+    diff = np.abs(single - exact).max(axis=0)
+    sd = y.std(axis=0)
+    return {
+        "rows": int(final.x_s.shape[0]),
+        "max_abs_error": {t: float(diff[j]) for j, t in enumerate(targets)},
+        "relative_to_target_sd": {t: float(diff[j] / sd[j]) for j, t in enumerate(targets)},
+        "how": "float32 engine against float64 engine on every training row",
+    }
 
 
 def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, log):
@@ -156,6 +177,12 @@ def train(opts: TrainOptions, log=print) -> dict:
         calib = None
         interval_how = None
 
+    if opts.precision not in ("float64", "float32"):
+        raise UserError(f"--precision must be float64 or float32, not {opts.precision!r}")
+    check = precision_check(final, list(opts.targets), y) if opts.precision == "float32" else None
+    if check and max(check["relative_to_target_sd"].values()) > 1e-3:
+        log("warning: float32 changes predictions on training rows by up to "
+            f"{max(check['relative_to_target_sd'].values()):.2g} target SD; consider float64")
     env, reference = envelope_stats.envelope_stats(x, final.x_s, features, opts.seed)
     holdout_points = metrics.get("holdout", {}).pop("_predictions", None)
     manifest = {
@@ -192,7 +219,8 @@ def train(opts: TrainOptions, log=print) -> dict:
                 "half-widths from the training-part model's LOO residuals, applied to its "
                 "holdout predictions"),
         },
-        "precision": "float64",
+        "precision": opts.precision,
+        "precision_check": check,
         "libraries": library_versions(),
     }
     arrays = {"x_train": final.x_s, "dual": final.dual, "novelty_reference": reference}
@@ -225,6 +253,8 @@ def train(opts: TrainOptions, log=print) -> dict:
         "ridge": ridge,
         "metrics": metrics,
         "tuning": tuning_info["summary"] if tuning_info else None,
+        "precision": opts.precision,
+        "precision_check": check,
         "report": (str(store.version_dir(opts.name, version) / "report.html")
                    if extra is not None else None),
         "seconds": round(time.perf_counter() - t0, 2),
