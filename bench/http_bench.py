@@ -14,6 +14,7 @@ from __future__ import annotations
 import argparse
 import csv
 import json
+import os
 import re
 import shutil
 import subprocess
@@ -53,6 +54,22 @@ def make_model(store: Path) -> None:
                     "--name", "bench", "--kernel", "rbf", "--gamma", "0.05", "--ridge", "1.0",
                     "--holdout", "0", "--no-report", "--release", "--store", str(store)],
                    check=True)
+
+
+def workers_cpu_seconds(master_pid: int) -> float:
+    """User + system CPU seconds of the gunicorn master's worker processes (Linux /proc)."""
+    tick = os.sysconf("SC_CLK_TCK")
+    total = 0.0
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[1]) == master_pid:  # ppid
+            total += (int(fields[11]) + int(fields[12])) / tick
+    return total
 
 
 def wrk_load(base: str, body: bytes, seconds: float, clients: int) -> dict:
@@ -98,25 +115,32 @@ def main() -> None:
         for label, app in servers.items():
             with Gunicorn(store, workers=args.workers, app=app,
                           env={"BENCH_MODEL": "bench"}) as g:
+                cpu0 = workers_cpu_seconds(g.proc.pid)
                 if use_wrk:
                     res = wrk_load(g.base, body, args.seconds, args.clients)
                 else:
                     res = run_load("127.0.0.1", g.port, "/models/bench/predict", body,
                                    args.seconds, args.clients)
+                # server CPU per request: what the handler costs, whatever the client's share
+                res["cpu_us"] = ((workers_cpu_seconds(g.proc.pid) - cpu0)
+                                 / max(res["rps"] * args.seconds, 1) * 1e6)
             print(f"  round {rnd + 1} {label:18s} {res['rps']:8.0f} req/s  p50 "
-                  f"{res['p50_ms']:6.2f} ms  p99 {res['p99_ms']:6.2f} ms  errors {res['errors']}",
-                  flush=True)
+                  f"{res['p50_ms']:6.2f} ms  p99 {res['p99_ms']:6.2f} ms  worker CPU "
+                  f"{res['cpu_us']:5.0f} µs/req  errors {res['errors']}", flush=True)
             if label not in best or res["rps"] > best[label]["rps"]:
                 best[label] = res
     ours, bare, skl = (best[k] for k in servers)
     print("\nbest of rounds:")
-    print(f"{'server':18s} {'req/s':>8s} {'p50 ms':>8s} {'p99 ms':>8s}")
+    print(f"{'server':18s} {'req/s':>8s} {'p50 ms':>8s} {'p99 ms':>8s} {'CPU µs/req':>11s}")
     for label, res in best.items():
-        print(f"{label:18s} {res['rps']:8.0f} {res['p50_ms']:8.2f} {res['p99_ms']:8.2f}")
+        print(f"{label:18s} {res['rps']:8.0f} {res['p50_ms']:8.2f} {res['p99_ms']:8.2f} "
+              f"{res['cpu_us']:11.0f}")
     print(f"\nours / (a) requests/s: {ours['rps'] / bare['rps']:.2f}   (target >= 0.85)")
     print(f"ours / (a) p99:        {ours['p99_ms'] / bare['p99_ms']:.2f}   (target <= 1.5)")
     print(f"ours / (b) requests/s: {ours['rps'] / skl['rps']:.2f}")
     print(f"(a) / (b) requests/s:  {bare['rps'] / skl['rps']:.2f}")
+    print(f"worker CPU per request, ours / (a): {ours['cpu_us'] / bare['cpu_us']:.2f} "
+          "(server cost alone; the load generator shares the cores)")
 
 
 if __name__ == "__main__":
