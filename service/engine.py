@@ -184,8 +184,14 @@ class Engine:
         if self.dtype not in (np.float64, np.float32):
             raise ValueError(f"engine precision must be float64 or float32, not {self.dtype}")
         # np.asarray drops the memmap subclass (whose per-view Python hooks cost µs per
-        # slice) but keeps the same memory; only a wrong dtype or order forces a copy.
-        self.x = np.ascontiguousarray(np.asarray(x_train), dtype=self.dtype)
+        # slice) but keeps the same memory; only a wrong dtype or a strided view forces a
+        # copy. Row-major and column-major (how bundles store laplacian models) both serve.
+        x = np.asarray(x_train)
+        if x.dtype != self.dtype:
+            x = x.astype(self.dtype, order="K")
+        if not (x.flags.c_contiguous or x.flags.f_contiguous):
+            x = np.ascontiguousarray(x)
+        self.x = x
         dual = np.asarray(dual, dtype=self.dtype)
         self.dual = np.ascontiguousarray(dual if dual.ndim == 2 else dual[:, None])
         if self.x.ndim != 2 or self.dual.shape[0] != self.x.shape[0]:
@@ -198,7 +204,12 @@ class Engine:
         self.tile_elements = tile_elements or TILE_ELEMENTS
         default_rows = ROW_TILE_L1 if spec.uses == "l1" else ROW_TILE
         self.row_tile = max(1, min(row_tile or default_rows, self.tile_elements))
-        self.xt = self.x.T  # (d, n) view, read by BLAS as a transposed operand: no copy
+        # (d, n) view, read by BLAS as a transposed operand: no copy. The laplacian's
+        # per-feature passes want each feature's values contiguous: a column-major X gives
+        # that for free; a row-major one gets a private feature-major copy here.
+        self.xt = self.x.T
+        if spec.uses == "l1" and not self.xt.flags.c_contiguous:
+            self.xt = np.ascontiguousarray(self.xt)
         self.col = prepare_columns(spec, self.x)
         self._aug: np.ndarray | None = None
         self._aug_lock = threading.Lock()

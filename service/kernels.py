@@ -242,7 +242,7 @@ def kernel_tile(
     name = spec.name
     if spec.uses == "l1":
         d = xt.shape[0]
-        if not xt.flags.c_contiguous:
+        if xt.strides[1] != xt.itemsize:
             # d passes over the tile each read one feature of every training row: copy the
             # tile's rows to feature-major order once (d × w values, read once) rather than
             # gather with stride d in every pass, which drags the whole of X through the

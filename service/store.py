@@ -251,7 +251,9 @@ class Store:
             for key, arr in arrays.items():
                 if not ARRAY_NAME_RE.fullmatch(key):
                     raise StoreError(f"invalid array name {key!r}")
-                arr = np.ascontiguousarray(arr)
+                arr = np.asarray(arr)
+                if not (arr.flags.c_contiguous or arr.flags.f_contiguous):
+                    arr = np.ascontiguousarray(arr)  # .npy holds either order, not a view
                 if arr.dtype.hasobject:
                     raise StoreError(f"array {key!r} is an object array; bundles hold numbers")
                 path = work / "arrays" / f"{key}.npy"

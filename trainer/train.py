@@ -223,7 +223,10 @@ def train(opts: TrainOptions, log=print) -> dict:
         "precision_check": check,
         "libraries": library_versions(),
     }
-    arrays = {"x_train": final.x_s, "dual": final.dual, "novelty_reference": reference}
+    # The laplacian's per-feature passes read X one feature at a time: store it column-major
+    # so that serving processes read it from the shared memory map without a private copy.
+    x_store = np.asfortranarray(final.x_s) if spec.uses == "l1" else final.x_s
+    arrays = {"x_train": x_store, "dual": final.dual, "novelty_reference": reference}
     if calib is not None:
         arrays["abs_residuals"] = np.sort(calib, axis=0)
 
