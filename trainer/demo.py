@@ -137,6 +137,8 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
                     return 1
             return 0
         print("Serving until Ctrl-C.", flush=True)
+        # a service manager stops us with SIGTERM: leave through `finally` so gunicorn ends too
+        signal.signal(signal.SIGTERM, lambda *_: sys.exit(0))
         proc.wait()
         return proc.returncode or 0
     except KeyboardInterrupt:

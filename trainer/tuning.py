@@ -359,8 +359,16 @@ def _make_runner(n: int, quiet: bool, total_hint: int, log):
             bar.update(1)
         return out
 
+    def close() -> None:
+        """Close the progress bar and end the worker processes (they would idle for minutes)."""
+        bar.close()
+        if parallel:
+            from joblib.externals.loky import get_reusable_executor
+
+            get_reusable_executor().shutdown(wait=True)
+
     run.how = how  # type: ignore[attr-defined]
-    run.bar = bar  # type: ignore[attr-defined]
+    run.close = close  # type: ignore[attr-defined]
     return run
 
 
@@ -485,7 +493,7 @@ def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print) -> tuple[KernelSpe
                 gamma = {"gamma": float(opts.gamma)} if "gamma" in KERNEL_PARAMS[name] else {}
                 got = runner(problem, [KernelSpec(name, **gamma, **base)])
             curves += got
-    runner.bar.close()
+    runner.close()
     best = min(curves, key=lambda c: c.best_score)
     if not math.isfinite(best.best_score):
         raise UserError("tuning found no usable parameters (every candidate was numerically "
