@@ -123,7 +123,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
             "features": m.features, "targets": m.targets, "kernel": man["kernel"],
             "ridge": man["ridge"], "training_rows": man.get("training", {}).get("rows"),
             "metrics": man.get("metrics"), "ranges": man["envelope"]["ranges"],
-            "novelty": {k: v for k, v in man["envelope"]["novelty"].items()},
+            "novelty": man["envelope"]["novelty"],
             "intervals": m.has_intervals,
         })
 

@@ -341,7 +341,7 @@ def kernel_matrix(spec: KernelSpec, a: np.ndarray, b: np.ndarray | None = None) 
     """Full kernel matrix K[i, j] = k(a_i, b_j) (``b`` defaults to ``a``).
 
     Used for training, where the whole matrix is needed anyway; serving goes through
-    :mod:`service.engine`, which tiles the same :func:`kernel_block`.
+    :mod:`service.engine`, which applies the same :func:`kernel_tile` tile by tile.
     """
     b = a if b is None else b
     out = kernel_block(spec, a, b)

@@ -197,7 +197,7 @@ def test_object_array_is_refused_without_unpickling(two_versions, tmp_path, caps
     n_rows = np.load(path).shape[0]
     payload = np.empty((n_rows, 2), dtype=object)
     payload[:] = Canary(marker)
-    np.save(path, payload, allow_pickle=True)
+    np.save(path, payload)  # numpy's default writes the objects as a pickle: the forgery
 
     def fix(m):  # a forger who also fixes the checksum and shape
         m["arrays"]["dual"]["sha256"] = hashlib.sha256(path.read_bytes()).hexdigest()

@@ -30,7 +30,6 @@ from trainer.fit import Fit, fit_exact, scores
 #: Above this many rows the bundle's exact LOO residuals (an O(n³) inverse) are skipped and
 #: intervals are calibrated on the holdout residuals instead (split conformal).
 LOO_MAX_ROWS = 8000
-DEFAULT_RIDGE = 1.0
 
 
 @dataclass
@@ -102,7 +101,7 @@ def precision_check(final: Fit, targets: list[str], y: np.ndarray) -> dict:
 
 
 def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, log):
-    """Explicit parameters as given; omitted ones tuned (or defaulted without tuning)."""
+    """Explicit parameters as given; omitted ones tuned by :mod:`trainer.tuning`."""
     wanted_kernel = opts.kernel
     explicit = wanted_kernel != "auto" and opts.ridge is not None and all(
         getattr(opts, p) is not None
@@ -112,13 +111,8 @@ def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, lo
     if explicit:
         spec = default_spec(wanted_kernel, x_tr.shape[1], opts.gamma, opts.degree, opts.coef0)
         return spec, float(opts.ridge), None
-    try:
-        from trainer import tuning
-    except ImportError:  # tuning not available: documented defaults
-        tuning = None
-    if tuning is None:
-        spec = default_spec(wanted_kernel, x_tr.shape[1], opts.gamma, opts.degree, opts.coef0)
-        return spec, DEFAULT_RIDGE if opts.ridge is None else float(opts.ridge), None
+    from trainer import tuning
+
     return tuning.tune(opts, x_tr, y_tr, log)
 
 
@@ -148,12 +142,13 @@ def train(opts: TrainOptions, log=print) -> dict:
     metrics: dict = {}
     holdout_abs = None
     holdout_coverage = None
+    holdout_points = None
     if ho.size:
         part = fit_exact(x[tr], y[tr], spec, ridge, want_loo=tr.size <= LOO_MAX_ROWS)
         pred = part.predict(x[ho])
         metrics["holdout"] = _per_target(opts.targets, y[ho], pred)
         holdout_abs = np.abs(y[ho] - pred)
-        metrics["holdout"]["_predictions"] = {"actual": y[ho].tolist(), "predicted": pred.tolist()}
+        holdout_points = {"actual": y[ho].tolist(), "predicted": pred.tolist()}
         if part.loo_residuals is not None:
             # honest check of the interval method: calibrated on the training part's LOO
             # residuals, scored on rows that neither the fit nor the calibration saw
@@ -184,7 +179,6 @@ def train(opts: TrainOptions, log=print) -> dict:
         log("warning: float32 changes predictions on training rows by up to "
             f"{max(check['relative_to_target_sd'].values()):.2g} target SD; consider float64")
     env, reference = envelope_stats.envelope_stats(x, final.x_s, features, opts.seed)
-    holdout_points = metrics.get("holdout", {}).pop("_predictions", None)
     manifest = {
         "created": now_iso(),
         "features": features,
@@ -232,14 +226,11 @@ def train(opts: TrainOptions, log=print) -> dict:
 
     extra = None
     if opts.report:
-        try:
-            from trainer import report
-        except ImportError:
-            report = None
-        if report is not None:
-            def extra(folder, version):
-                report.write_report(folder / "report.html", dict(manifest, version=version,
-                                    model=opts.name), tuning_info, holdout_points, calib)
+        from trainer import report
+
+        def extra(folder, version):
+            report.write_report(folder / "report.html", dict(manifest, version=version,
+                                model=opts.name), tuning_info, holdout_points, calib)
     version = store.publish(opts.name, manifest, arrays, extra_files=extra)
     live = False
     if opts.release:
