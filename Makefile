@@ -27,4 +27,4 @@ lint: $(STAMP)
 	$(VENV)/bin/ruff check .
 
 clean:
-	rm -rf $(VENV) model-store .pytest_cache .ruff_cache
+	rm -rf $(VENV) kridge-store .pytest_cache .ruff_cache

@@ -120,7 +120,7 @@ def load_model(store=None, name: str | None = None, version: int | None = None) 
     """Load and verify one model version (the live one when ``version`` is None).
 
     ``store`` is a path (or a :class:`Store`); None means env ``KRIDGE_STORE`` or
-    ``./model-store``. Every array's sha256 is checked before use; object arrays are refused.
+    ``./kridge-store``. Every array's sha256 is checked before use; object arrays are refused.
     """
     if name is None:
         raise TypeError("load_model needs a model name")

@@ -24,7 +24,7 @@ def build_openapi(max_rows: int, max_body: int) -> dict:
     """The whole document; limits are stated in the predict operation's description."""
     _, defs = models_json_schema(
         [(m, "validation") for m in (
-            s.PredictRequest, s.PredictResponse, s.ErrorResponse, s.ReleaseRequest,
+            s.RowBatch, s.PredictionBatch, s.ErrorResponse, s.ReleaseRequest,
             s.ReleaseResponse, s.VersionsResponse, s.ModelsResponse, s.ModelSummary,
             s.Health, s.Readiness,
         )],
@@ -69,8 +69,8 @@ def build_openapi(max_rows: int, max_body: int) -> dict:
             "operationId": "predict",
             "parameters": [name, {"name": "version", "in": "query", "required": False,
                                   "schema": {"type": "integer", "minimum": 1}}],
-            "requestBody": {"required": True, **_json("PredictRequest")},
-            "responses": {"200": _resp("Predictions", "PredictResponse"), **err}}},
+            "requestBody": {"required": True, **_json("RowBatch")},
+            "responses": {"200": _resp("Predictions", "PredictionBatch"), **err}}},
         "/models/{name}/release": {"post": {
             "summary": "Make a version live (admin)", "operationId": "release",
             "parameters": [name], "security": admin,

@@ -11,7 +11,7 @@ from pydantic import ValidationError
 
 from service.bundle import Model
 from service.errors import ApiError
-from service.schemas import PredictRequest
+from service.schemas import RowBatch
 
 CAUTION = (
     "At least one row lies outside the training envelope (see envelope): its prediction is an "
@@ -20,7 +20,7 @@ CAUTION = (
 )
 
 
-def parse_body(raw: bytes, max_rows: int) -> PredictRequest:
+def parse_body(raw: bytes, max_rows: int) -> RowBatch:
     """JSON bytes → validated request (structure, strict finite numbers, no extra keys)."""
     try:
         data = orjson.loads(raw)
@@ -37,7 +37,7 @@ def parse_body(raw: bytes, max_rows: int) -> PredictRequest:
                        f"{len(rows)} rows in one request; the limit is {max_rows} "
                        "(KRIDGE_MAX_ROWS)")
     try:
-        return PredictRequest.model_validate(data)
+        return RowBatch.model_validate(data)
     except ValidationError as exc:
         raise _explain(exc, rows) from None
 
@@ -83,7 +83,7 @@ def _explain(exc: ValidationError, rows) -> ApiError:
     return ApiError(422, "invalid_request", f"{spot}: {first['message']}", details)
 
 
-def rows_to_array(req: PredictRequest, model: Model) -> np.ndarray:
+def rows_to_array(req: RowBatch, model: Model) -> np.ndarray:
     """Rows (objects or arrays) → (m, d) float array in the model's feature order."""
     feats = model.features
     d = len(feats)
@@ -111,7 +111,7 @@ def rows_to_array(req: PredictRequest, model: Model) -> np.ndarray:
     return out
 
 
-def predict_response(model: Model, req: PredictRequest, t_start: float, t_parsed: float):
+def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: float):
     """Compute values, envelope and intervals; returns (response dict, compute seconds)."""
     x = rows_to_array(req, model)
     half = None

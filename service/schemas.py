@@ -20,7 +20,7 @@ class Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
 
 
-class PredictRequest(Strict):
+class RowBatch(Strict):
     rows: list[dict[str, Number] | list[Number]] = Field(
         ..., min_length=1, description="Rows to predict. " + ROW_DOC
     )
@@ -63,7 +63,7 @@ class Timing(BaseModel):
     total: float
 
 
-class PredictResponse(BaseModel):
+class PredictionBatch(BaseModel):
     model: str
     version: int
     results: list[Result]

@@ -3,7 +3,7 @@
 =========================  ===============================================  ==============
 variable                   meaning                                          default
 =========================  ===============================================  ==============
-KRIDGE_STORE               store root                                       ./model-store
+KRIDGE_STORE               store root                                       ./kridge-store
 KRIDGE_BIND                address gunicorn listens on                      127.0.0.1:8000
 KRIDGE_WORKERS             gunicorn worker processes                        2
 KRIDGE_MAX_BODY_BYTES      largest request body accepted                    8 MiB
@@ -19,6 +19,9 @@ from __future__ import annotations
 
 import os
 from dataclasses import dataclass, field
+
+#: Store root when neither ``--store`` nor ``KRIDGE_STORE`` names one.
+DEFAULT_STORE = "kridge-store"
 
 
 def _int(name: str, default: int) -> int:
@@ -49,7 +52,7 @@ def _float(name: str, default: float) -> float:
 
 @dataclass(frozen=True)
 class Settings:
-    store: str = "model-store"
+    store: str = DEFAULT_STORE
     max_body_bytes: int = 8 << 20
     max_rows: int = 10_000
     poll_seconds: float = 0.25
@@ -59,7 +62,7 @@ class Settings:
     @classmethod
     def from_env(cls, **overrides) -> Settings:
         values = dict(
-            store=os.environ.get("KRIDGE_STORE") or "model-store",
+            store=os.environ.get("KRIDGE_STORE") or DEFAULT_STORE,
             max_body_bytes=_int("KRIDGE_MAX_BODY_BYTES", 8 << 20),
             max_rows=_int("KRIDGE_MAX_ROWS", 10_000),
             poll_seconds=_float("KRIDGE_POLL_SECONDS", 0.25),

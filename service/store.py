@@ -30,6 +30,8 @@ from pathlib import Path
 
 import numpy as np
 
+from service.settings import DEFAULT_STORE
+
 SCHEMA = 1
 NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 ARRAY_NAME_RE = re.compile(r"[A-Za-z0-9_]{1,64}")
@@ -50,8 +52,8 @@ def now_iso() -> str:
 
 
 def store_root(path: str | os.PathLike | None = None) -> Path:
-    """``path``, else env ``KRIDGE_STORE``, else ``./model-store``."""
-    return Path(path or os.environ.get("KRIDGE_STORE") or "model-store")
+    """``path``, else env ``KRIDGE_STORE``, else ``./kridge-store``."""
+    return Path(path or os.environ.get("KRIDGE_STORE") or DEFAULT_STORE)
 
 
 def check_name(name: str) -> str:

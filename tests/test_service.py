@@ -173,7 +173,7 @@ def test_discovery_routes_and_openapi(served):
     assert doc["openapi"].startswith("3.1")
     for path in ("/models/{name}/predict", "/models/{name}/release", "/metrics", "/readyz"):
         assert path in doc["paths"]
-    req_schema = doc["components"]["schemas"]["PredictRequest"]
+    req_schema = doc["components"]["schemas"]["RowBatch"]
     assert set(req_schema["properties"]) == {"rows", "coverage"}
 
 

@@ -207,7 +207,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     def add(name, func, help_):
         sp = sub.add_parser(name, help=help_, description=help_)
-        sp.add_argument("--store", help="store root (default: $KRIDGE_STORE or ./model-store)")
+        sp.add_argument("--store", help="store root (default: $KRIDGE_STORE or ./kridge-store)")
         sp.set_defaults(func=func)
         return sp
 

@@ -19,6 +19,7 @@ import urllib.request
 from pathlib import Path
 
 from service.launch import gunicorn_argv, serve_env
+from service.store import store_root
 from trainer.errors import UserError
 
 DEMO_DIR = Path(__file__).resolve().parents[1] / "demo_data"
@@ -92,7 +93,7 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
     from trainer.train import TrainOptions, train
 
     gen = _generator()
-    store = os.path.abspath(store or os.environ.get("KRIDGE_STORE") or "model-store")
+    store = os.path.abspath(store_root(store))
     if bind is None:
         bind = f"127.0.0.1:{free_port()}" if smoke else (
             os.environ.get("KRIDGE_BIND") or "127.0.0.1:8000")
