@@ -57,7 +57,8 @@ def test_train_prints_a_summary(store_dir, small_csv, capsys):
     assert code == 0, err
     lines = dict(line.split(None, 1) for line in out.strip().splitlines())
     assert lines["model"].startswith("coat v1") and "not live" in lines["model"]
-    assert lines["rows"] == "60"
+    assert lines["rows"] == "60 (60 of 60 rows have a value for hardness_s)"
+    assert lines["method"].startswith("exact")
     assert lines["features"].startswith("6: oven_temp_c")  # all columns but the target
     assert lines["kernel"] == "polynomial(gamma=0.2, degree=2, coef0=1)"
     assert lines["ridge"] == "0.5"

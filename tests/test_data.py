@@ -7,7 +7,7 @@ import hashlib
 import numpy as np
 import pytest
 
-from trainer.data import iter_csv_chunks, read_table, split_columns
+from trainer.data import iter_chunks, read_table, split_columns
 from trainer.errors import UserError
 
 
@@ -59,7 +59,7 @@ def test_line_numbers_count_blank_lines_and_multiline_cells(tmp_path):
     with pytest.raises(UserError, match="line 6, column 'b'"):
         read_table(write(tmp_path, text))
     with pytest.raises(UserError, match="line 6, column 'b'"):
-        list(iter_csv_chunks(write(tmp_path, text, "s.csv"), ["a", "b"]))
+        list(iter_chunks(write(tmp_path, text, "s.csv"), ["a", "b"]))
 
 
 def test_empty_and_missing_files(tmp_path):
@@ -101,8 +101,8 @@ def test_split_columns_refusals(tmp_path, text, targets, features, message):
 def test_chunks_convert_only_the_needed_columns(tmp_path):
     # a text column the model does not use must not stop scoring
     path = write(tmp_path, "id,a,b\nx1,1,2\nx2,3,4\nx3,5,6\n")
-    chunks = list(iter_csv_chunks(path, ["b", "a"], chunk_rows=2))
+    chunks = list(iter_chunks(path, ["b", "a"], block_bytes=14))  # two 7-byte records per block
     assert [start for start, _ in chunks] == [0, 2]
     np.testing.assert_array_equal(np.vstack([c for _, c in chunks]), [[2, 1], [4, 3], [6, 5]])
     with pytest.raises(UserError, match="missing feature column"):
-        list(iter_csv_chunks(path, ["a", "zz"]))
+        list(iter_chunks(path, ["a", "zz"]))

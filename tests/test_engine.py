@@ -258,7 +258,7 @@ def _tiny_model(rng: np.random.Generator):
 @pytest.mark.slow
 def test_scoring_a_large_csv_streams(tmp_path):
     """kridge predict's scorer holds one chunk at a time: the traced peak while scoring
-    120,000 rows in chunks of 2,000 stays far below what the whole file would need."""
+    120,000 rows in blocks of 128 KiB (about 2,000 rows) stays far below what the whole file would need."""
     from trainer.score_file import score_csv
 
     rng = _rng(8)
@@ -276,7 +276,7 @@ def test_scoring_a_large_csv_streams(tmp_path):
 
     with open(Path(tmp_path / "out.csv"), "w") as out:
         tracemalloc.start()
-        total = score_csv(model, path, out, quiet=True, chunk_rows=2_000)
+        total = score_csv(model, path, out, quiet=True, block_bytes=1 << 17)
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
     assert total == rows

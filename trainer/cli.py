@@ -38,7 +38,9 @@ def cmd_train(args) -> int:
         kernel=args.kernel, gamma=args.gamma, degree=args.degree, coef0=args.coef0,
         ridge=args.ridge, holdout=args.holdout, seed=args.seed, release=args.release,
         store=args.store, quiet=args.quiet, report=not args.no_report,
-        precision=args.precision,
+        precision=args.precision, time=args.time, drop_incomplete=args.drop_incomplete,
+        sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
+        landmark_scheme=args.landmark_scheme, cluster=args.cluster,
     )
 
     def log(*a, **k):
@@ -55,7 +57,8 @@ def cmd_train(args) -> int:
         ("model", f"{summary['name']} v{summary['version']}"
                   + ("  (live)" if summary["live"] else "  (not live: kridge release "
                      f"{summary['name']} {summary['version']})")),
-        ("rows", str(summary["rows"])),
+        ("rows", f"{summary['rows']} ({summary['data']})"),
+        ("method", summary["method"]),
         ("features", f"{len(summary['features'])}: {', '.join(summary['features'])}"),
         ("targets", ", ".join(summary["targets"])),
         ("kernel", summary["kernel"]),
@@ -212,7 +215,7 @@ def build_parser() -> argparse.ArgumentParser:
         return sp
 
     t = add("train", cmd_train, "fit a model from a CSV/Parquet file and publish a new version")
-    t.add_argument("data", help="CSV with a header row (or .parquet)")
+    t.add_argument("data", help="CSV with a header row, .parquet or .xlsx")
     t.add_argument("--target", required=True, type=_csv_list,
                    help="target column(s), comma-separated")
     t.add_argument("--name", required=True, help="model name")
@@ -229,6 +232,21 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("--no-report", action="store_true", help="skip report.html")
     t.add_argument("--precision", choices=("float64", "float32"), default="float64",
                    help="serving precision; float32 records its measured error (default float64)")
+    t.add_argument("--time", metavar="COL",
+                   help="timestamp column (ISO 8601 or a number): hold out the most recent "
+                        "rows and tune by blocked cross-validation in time order")
+    t.add_argument("--drop-incomplete", action="store_true",
+                   help="leave out (and count) rows with a missing feature value")
+    t.add_argument("--sep", help="CSV separator (default: detected)")
+    t.add_argument("--decimal", choices=(".", ","), help="CSV decimal mark (default: detected)")
+    t.add_argument("--method", choices=("exact", "nystrom", "auto"), default="auto",
+                   help="exact KRR, Nyström on landmark rows, or auto by row count (default)")
+    t.add_argument("--landmarks", type=int, metavar="M",
+                   help="Nyström landmark rows (default: from the row count and memory)")
+    t.add_argument("--landmark-scheme", choices=("uniform", "kmeans++"),
+                   help="how Nyström landmarks are chosen (default: uniform)")
+    t.add_argument("--cluster", metavar="ADDRESS",
+                   help="Dask scheduler address: run the Nyström accumulation there")
     t.add_argument("--quiet", action="store_true")
     t.add_argument("--json", action="store_true", help="print the summary as JSON")
 

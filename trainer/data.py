@@ -1,20 +1,26 @@
-"""Reading tabular measurements: CSV with a header row (Parquet when pyarrow is installed).
+"""Training and scoring data: which columns, which rows, and what missing values mean.
 
-Every refusal is one line naming the file line and column at fault, so a user can open the
-file and find it.
+The bytes are read by :mod:`trainer.reader` (CSV in any common dialect, Parquet, Excel).
+This module decides what the numbers are for:
+
+* only the named features, targets and time column are read; other columns are ignored;
+* a row whose target is empty is left out and counted (the normal shape of soft-sensor data:
+  lab values exist for a few rows only); with several targets a row needs every one;
+* a missing feature value is refused with its line and column, unless ``drop_incomplete``
+  leaves those rows out (counted too). Nothing is ever imputed.
+
+Every refusal is one line naming the file line (or sheet row) and the column at fault.
 """
 
 from __future__ import annotations
 
-import csv
 from collections.abc import Iterator
-from dataclasses import dataclass
-from pathlib import Path
+from dataclasses import dataclass, field
 
 import numpy as np
 
-from service.store import sha256_file
 from trainer.errors import UserError
+from trainer.reader import BLOCK_BYTES, Chunk, Source
 
 MIN_ROWS = 3
 
@@ -30,187 +36,180 @@ class Table:
 
     def select(self, names: list[str]) -> np.ndarray:
         index = {c: j for j, c in enumerate(self.columns)}
-        return self.values[:, [index[n] for n in names]]
+        # C order, as the training reader gives: column sums run in another order on a
+        # Fortran-ordered array, and the standardization would differ in the last bit
+        return np.ascontiguousarray(self.values[:, [index[n] for n in names]])
 
 
-def _check_header(header: list[str], path: Path) -> list[str]:
-    header = [h.strip() for h in header]
-    seen: dict[str, int] = {}
-    for j, name in enumerate(header):
-        if not name:
-            raise UserError(f"{path}: line 1, column {j + 1} has an empty name")
-        if name in seen:
-            raise UserError(
-                f"{path}: line 1: column name {name!r} appears twice "
-                f"(columns {seen[name] + 1} and {j + 1})"
-            )
-        seen[name] = j
-    return header
+@dataclass
+class TrainingData:
+    """The rows a model is fitted on, with an account of the rows left out."""
+
+    features: list[str]
+    targets: list[str]
+    x: np.ndarray  # (n, d)
+    y: np.ndarray  # (n, t)
+    time: np.ndarray | None  # (n,) seconds since 1970 UTC (ISO input) or the column's numbers
+    sha256: str
+    path: str
+    counts: dict = field(default_factory=dict)
+    dialect: dict = field(default_factory=dict)
+    time_column: str | None = None
+    time_is_clock: bool = False  # the time column held ISO 8601 stamps (not plain numbers)
 
 
-def to_float(
-    rows: list[list[str]], header: list[str], first_line: int, path,
-    lines: list[int] | None = None,
-) -> np.ndarray:
-    """Convert string cells to float64, or name the first bad cell (line and column).
+def _refuse_missing(src: Source, chunk: Chunk, values: np.ndarray, names: list[str],
+                    first_row: int, what: str = "missing value") -> None:
+    i, j = np.argwhere(np.isnan(values))[0]
+    raise UserError(f"{src.where(chunk.block, int(i), first_row)}, column {names[j]!r}: {what}")
 
-    ``lines[i]`` is the file line on which ``rows[i]`` starts; without it rows are taken to
-    sit on consecutive lines from ``first_line`` (no blank lines, no multi-line cells).
+
+def read_table(path, sep: str | None = None, decimal: str | None = None) -> Table:
+    """Read every column of a file as numbers (no missing values allowed)."""
+    src = Source(path, sep, decimal)
+    parts = []
+    first_row = 0
+    for chunk in src.chunks(src.header):
+        if np.isnan(chunk.values).any():
+            _refuse_missing(src, chunk, chunk.values, src.header, first_row)
+        parts.append(chunk.values)
+        first_row += chunk.values.shape[0]
+    values = np.concatenate(parts) if parts else np.empty((0, len(src.header)))
+    return Table(src.header, values, src.sha256, str(src.path))
+
+
+def iter_chunks(path, columns: list[str], sep: str | None = None, decimal: str | None = None,
+                block_bytes: int = BLOCK_BYTES) -> Iterator[tuple[int, np.ndarray]]:
+    """Stream ``columns`` of a file: yields (first data row index, values), no missing values.
+
+    The file and its header are checked before the first chunk is asked for, so a caller can
+    refuse a file before writing any output. Memory stays bounded by the block size.
     """
-    width = len(header)
-
-    def line(i: int) -> int:
-        return lines[i] if lines is not None else first_line + i
-
-    for i, row in enumerate(rows):
-        if len(row) != width:
-            raise UserError(
-                f"{path}: line {line(i)} has {len(row)} cells, the header has {width}"
-            )
-    try:
-        values = np.array(rows, dtype=np.float64) if rows else np.empty((0, width))
-        if np.isfinite(values).all():
-            return values.reshape(len(rows), width)
-    except ValueError:
-        values = None
-    for i, row in enumerate(rows):
-        for j, cell in enumerate(row):
-            where = f"{path}: line {line(i)}, column {header[j]!r}"
-            text = cell.strip()
-            if not text or text.lower() in ("nan", "na", "null", "none"):
-                raise UserError(f"{where}: missing value")
-            try:
-                v = float(text)
-            except ValueError:
-                raise UserError(f"{where}: {cell!r} is not a number") from None
-            if not np.isfinite(v):
-                raise UserError(f"{where}: {cell!r} is not a finite number")
-    raise UserError(f"{path}: could not read the numbers")  # pragma: no cover
-
-
-def _open_csv(path: Path):
-    fh = open(path, newline="", encoding="utf-8-sig")  # noqa: SIM115 (the caller closes it)
-    reader = csv.reader(fh)
-    try:
-        header = next(reader)
-    except StopIteration:
-        fh.close()
-        raise UserError(f"{path}: the file is empty") from None
-    except (csv.Error, UnicodeDecodeError) as exc:
-        fh.close()
-        raise UserError(f"{path}: not readable as CSV ({exc})") from None
-    return fh, reader, _check_header(header, path)
-
-
-def _check_path(path) -> Path:
-    path = Path(path)
-    if not path.is_file():
-        raise UserError(f"{path}: no such file")
-    if path.stat().st_size == 0:
-        raise UserError(f"{path}: the file is empty")
-    return path
-
-
-def read_table(path) -> Table:
-    """Read a whole CSV or Parquet file into a numeric :class:`Table`."""
-    path = _check_path(path)
-    digest = sha256_file(path)
-    if path.suffix.lower() in (".parquet", ".pq"):
-        return _read_parquet(path, digest)
-    fh, reader, header = _open_csv(path)
-    rows: list[list[str]] = []
-    lines: list[int] = []  # file line each row starts on (blank lines are skipped)
-    with fh:
-        try:
-            start = reader.line_num + 1
-            for row in reader:
-                if row:
-                    rows.append(row)
-                    lines.append(start)
-                start = reader.line_num + 1
-        except (csv.Error, UnicodeDecodeError) as exc:
-            raise UserError(f"{path}: line {reader.line_num}: {exc}") from None
-    values = to_float(rows, header, 2, path, lines)
-    return Table(header, values, digest, str(path))
-
-
-def _read_parquet(path: Path, digest: str) -> Table:
-    try:
-        import pyarrow.parquet as pq
-    except ImportError:
-        raise UserError(
-            f"{path}: reading Parquet needs pyarrow (pip install 'kridge[parquet]')"
-        ) from None
-    table = pq.read_table(path)
-    header = _check_header(list(table.column_names), path)
-    cols = []
-    for name in header:
-        col = table.column(name)
-        try:
-            arr = col.to_numpy(zero_copy_only=False).astype(np.float64)
-        except (TypeError, ValueError):
-            raise UserError(f"{path}: column {name!r} is not numeric ({col.type})") from None
-        bad = np.flatnonzero(~np.isfinite(arr))
-        if bad.size:
-            raise UserError(f"{path}: row {bad[0] + 1}, column {name!r}: missing or not finite")
-        cols.append(arr)
-    values = np.column_stack(cols) if cols else np.empty((0, 0))
-    return Table(header, values, digest, str(path))
-
-
-def iter_csv_chunks(
-    path, columns: list[str], chunk_rows: int = 50_000
-) -> Iterator[tuple[int, np.ndarray]]:
-    """Stream a CSV in chunks: yields (first data row index, values of ``columns``).
-
-    Only ``columns`` are converted; other columns may hold anything. Memory stays bounded by
-    the chunk size, so a file larger than memory can be scored. The file and its header are
-    checked here, before the first chunk is asked for, so a caller can refuse a file before
-    writing any output.
-    """
-    path = _check_path(path)
-    fh, reader, header = _open_csv(path)
-    missing = [c for c in columns if c not in header]
+    src = Source(path, sep, decimal)
+    missing = [c for c in columns if c not in src.header]
     if missing:
-        fh.close()
-        raise UserError(f"{path}: missing feature column(s) {', '.join(map(repr, missing))}")
-    return _chunks(path, fh, reader, header, columns, chunk_rows)
+        raise UserError(f"{src.path}: missing feature column(s) {', '.join(map(repr, missing))}")
+    return _chunks(src, columns, block_bytes)
 
 
-def _chunks(path, fh, reader, header, columns, chunk_rows) -> Iterator[tuple[int, np.ndarray]]:
-    idx = [header.index(c) for c in columns]
-    with fh:
-        done = 0
-        rows: list[list[str]] = []
-        lines: list[int] = []
-        start = reader.line_num + 1
-        try:
-            for row in reader:
-                if not row:
-                    start = reader.line_num + 1
-                    continue
-                if len(row) != len(header):
-                    raise UserError(
-                        f"{path}: line {start} has {len(row)} cells, "
-                        f"the header has {len(header)}"
-                    )
-                rows.append([row[j] for j in idx])
-                lines.append(start)
-                start = reader.line_num + 1
-                if len(rows) == chunk_rows:
-                    yield done, to_float(rows, columns, done + 2, path, lines)
-                    done += len(rows)
-                    rows, lines = [], []
-        except (csv.Error, UnicodeDecodeError) as exc:
-            raise UserError(f"{path}: line {reader.line_num}: {exc}") from None
-        if rows or not done:
-            yield done, to_float(rows, columns, done + 2, path, lines)
+def _chunks(src: Source, columns: list[str], block_bytes: int) -> Iterator[tuple[int, np.ndarray]]:
+    done = 0
+    for chunk in src.chunks(columns, block_bytes=block_bytes):
+        if np.isnan(chunk.values).any():
+            _refuse_missing(src, chunk, chunk.values, columns, done)
+        yield done, chunk.values
+        done += chunk.values.shape[0]
+
+
+def _names(src: Source, targets: list[str], features: list[str] | None,
+           time: str | None) -> list[str]:
+    """Resolve and check feature names; the default is every other numeric column."""
+    for group, names in (("target", targets), ("feature", features or [])):
+        if len(set(names)) != len(names):
+            raise UserError(f"{group} columns list a name twice: {', '.join(names)}")
+        src.check_columns(names, f"{group} column")
+    if time is not None:
+        src.check_columns([time], "time column")
+        if time in targets or (features and time in features):
+            raise UserError(f"column {time!r} cannot be the time column and a feature or target")
+    if features is None:
+        features = [c for c in src.header if c not in targets and c != time]
+        odd = src.numeric_probe(features)
+        if odd:
+            raise UserError(
+                f"{src.path}: column(s) {', '.join(map(repr, odd))} are not numeric; name the "
+                "inputs with --features (other columns are then ignored), or give a "
+                "timestamp column with --time")
+    overlap = set(features) & set(targets)
+    if overlap:
+        raise UserError(f"column(s) {', '.join(sorted(overlap))} cannot be feature and target")
+    if not features:
+        raise UserError(f"{src.path}: no feature columns left besides the target(s)")
+    return features
+
+
+def load_training(path, targets: list[str], features: list[str] | None = None,
+                  time: str | None = None, drop_incomplete: bool = False,
+                  sep: str | None = None, decimal: str | None = None) -> TrainingData:
+    """Read the rows to fit on: rows with every target present, complete features.
+
+    Returns
+    -------
+    TrainingData with ``counts``: ``rows_read``, ``rows_with_target``,
+    ``rows_dropped_incomplete`` and ``rows_used``.
+    """
+    src = Source(path, sep, decimal)
+    features = _names(src, targets, features, time)
+    d = len(features)
+    xs, ys, ts = [], [], []
+    read = with_target = dropped = 0
+    for chunk in src.chunks(features + targets, time):
+        m = chunk.values.shape[0]
+        v = chunk.values
+        has_target = ~np.isnan(v[:, d:]).any(axis=1)
+        incomplete = np.isnan(v[:, :d]).any(axis=1)
+        if chunk.time is not None:
+            incomplete |= np.isnan(chunk.time)
+        bad = has_target & incomplete
+        if bad.any() and not drop_incomplete:
+            i = int(np.flatnonzero(bad)[0])
+            cols = features + ([time] if time else [])
+            cells = np.append(v[i, :d], chunk.time[i] if chunk.time is not None else 0.0)
+            j = int(np.flatnonzero(np.isnan(cells))[0])
+            raise UserError(f"{src.where(chunk.block, i, read)}, column {cols[j]!r}: missing "
+                            "value (give --drop-incomplete to leave such rows out)")
+        keep = has_target & ~incomplete
+        xs.append(v[keep, :d])
+        ys.append(v[keep, d:])
+        if chunk.time is not None:
+            ts.append(chunk.time[keep])
+        read += m
+        with_target += int(has_target.sum())
+        dropped += int(bad.sum())
+    x = np.concatenate(xs) if xs else np.empty((0, d))
+    y = np.concatenate(ys) if ys else np.empty((0, len(targets)))
+    t = np.concatenate(ts) if time else None
+    n = x.shape[0]
+    if n < MIN_ROWS:
+        left_out = "" if n == read else (f" usable of {read} (rows with every target: "
+                                         f"{with_target}, left out for a missing input: "
+                                         f"{dropped})")
+        raise UserError(f"{src.path}: {n} data row(s){left_out}; training needs at least "
+                        f"{MIN_ROWS}")
+    for j, name in enumerate(targets):
+        if np.ptp(y[:, j]) == 0:
+            raise UserError(f"{src.path}: target column {name!r} is constant ({y[0, j]:g})")
+    counts = {
+        "rows_read": read,
+        "rows_with_target": with_target,
+        "rows_dropped_incomplete": dropped,
+        "rows_used": n,
+        "summary": (f"{with_target} of {read} rows have a value for "
+                    f"{' and '.join(targets)}"
+                    + (f"; {dropped} of them left out for a missing input" if dropped else "")),
+    }
+    clock = bool(time) and _is_clock(src, time)
+    return TrainingData(features, list(targets), x, y, t, src.sha256, str(src.path), counts,
+                        src.dialect(), time, clock)
+
+
+def count_target_rows(path, targets: list[str], sep: str | None = None,
+                      decimal: str | None = None) -> int:
+    """Rows that have a value in every target column (reads only those columns)."""
+    src = Source(path, sep, decimal)
+    src.check_columns(targets, "target column")
+    return sum(int((~np.isnan(c.values).any(axis=1)).sum()) for c in src.chunks(targets))
+
+
+def _is_clock(src: Source, time: str) -> bool:
+    """Whether the time column holds timestamps (ISO 8601 or a date type), not numbers."""
+    return bool(src.numeric_probe([time]))
 
 
 def split_columns(
     table: Table, targets: list[str], features: list[str] | None
 ) -> tuple[list[str], np.ndarray, np.ndarray]:
-    """Resolve feature and target names and check the data is fit for training.
+    """Resolve feature and target names of an all-numeric :class:`Table` (tests, tools).
 
     Returns (feature names, X, Y) with Y of shape (n, t).
     """

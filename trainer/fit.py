@@ -47,6 +47,7 @@ class Standardizer:
 
     @classmethod
     def fit(cls, x: np.ndarray) -> Standardizer:
+        x = np.ascontiguousarray(x)  # same summation order whatever the caller's layout
         mean = x.mean(axis=0)
         scale = x.std(axis=0)  # ddof=0, as scikit-learn's StandardScaler
         scale[scale == 0] = 1.0
@@ -138,7 +139,7 @@ def fit_exact(
         raise UserError(f"ridge must be a non-negative number, got {ridge}")
     scaler = Standardizer.fit(x)
     x_s = scaler(x)
-    intercept = y.mean(axis=0)
+    intercept = np.ascontiguousarray(y).mean(axis=0)
     k = kernel_matrix(spec, x_s)
     dual, loo = solve_dual(k, y - intercept, ridge, want_loo)
     return Fit(spec, ridge, scaler, intercept, x_s, dual, loo)

@@ -53,6 +53,12 @@ def _table(headers: list[str], rows: list[list], left: int = 1) -> str:
     return f"<table><tr>{head}</tr>{body}</table>"
 
 
+def _span_text(span: dict | None) -> str:
+    if not span:
+        return "– (no --time column: random holdout)"
+    return f"{span['column']}: {span['start']} → {span['end']}"
+
+
 class _Raw(str):
     """Already-escaped HTML."""
 
@@ -137,6 +143,24 @@ def _parity_and_hist(actual: np.ndarray, predicted: np.ndarray, targets: list[st
     return _png(fig)
 
 
+def _residuals_in_time(time: np.ndarray, actual: np.ndarray, predicted: np.ndarray,
+                       targets: list[str], clock: bool) -> str:
+    """Holdout residuals against time: drift or a change of regime shows as a trend."""
+    plt = _pyplot()
+    t = len(targets)
+    fig, axes = plt.subplots(t, 1, figsize=(9, 2.8 * t), squeeze=False)
+    x = time.astype("datetime64[s]") if clock else time
+    for j, name in enumerate(targets):
+        ax = axes[j][0]
+        ax.plot(x, actual[:, j] - predicted[:, j], ".", ms=3, color="slategray")
+        ax.axhline(0.0, color="k", lw=1)
+        ax.set_ylabel(f"residual {name}")
+        ax.set_title("holdout residuals in time order (the most recent rows)", fontsize=9)
+    fig.autofmt_xdate()
+    fig.tight_layout()
+    return _png(fig)
+
+
 def _calib_hist(calib: np.ndarray, targets: list[str]) -> str:
     plt = _pyplot()
     t = len(targets)
@@ -177,6 +201,10 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
         [_Raw("file"), _Raw(_esc(tr.get("data_file")))],
         [_Raw("sha256"), _Raw(f"<code>{_esc(tr.get('data_sha256'))}</code>")],
         [_Raw("rows"), tr.get("rows")],
+        [_Raw("rows read"), _Raw(_esc((tr.get("row_counts") or {}).get("summary", "–")))],
+        [_Raw("method"), _Raw(_esc(f"{tr.get('method', 'exact')}: "
+                                   f"{tr.get('method_reason', '')}"))],
+        [_Raw("time span"), _Raw(_esc(_span_text(tr.get("time"))))],
         [_Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
                                f" seed {tr.get('seed')})"],
         [_Raw("features"), _Raw(_esc(", ".join(manifest["features"])))],
@@ -224,6 +252,12 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
         predicted = np.asarray(holdout_points["predicted"], dtype=float)
         parts.append("<h2>Holdout: parity and residuals</h2>")
         parts.append(_parity_and_hist(actual, predicted, targets))
+        if holdout_points.get("time"):
+            span = (manifest.get("training") or {}).get("time") or {}
+            parts.append("<h2>Holdout residuals against time</h2>")
+            parts.append(_residuals_in_time(np.asarray(holdout_points["time"], dtype=float),
+                                            actual, predicted, targets,
+                                            span.get("kind", "").startswith("ISO")))
     else:
         actual = predicted = None
 

@@ -13,10 +13,9 @@ import sys
 import numpy as np
 
 from service.bundle import Model
-from trainer.data import iter_csv_chunks
+from trainer.data import iter_chunks
 from trainer.errors import UserError
-
-CHUNK_ROWS = 50_000
+from trainer.reader import BLOCK_BYTES
 
 
 def _progress(quiet: bool):
@@ -31,7 +30,7 @@ def _progress(quiet: bool):
 
 
 def score_csv(model: Model, path, out, coverage: float | None = None, quiet: bool = False,
-              chunk_rows: int = CHUNK_ROWS) -> int:
+              block_bytes: int = BLOCK_BYTES) -> int:
     """Write predictions for every row of ``path`` to the text stream ``out``; returns rows."""
     half = None
     if coverage is not None:
@@ -40,7 +39,7 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
         if not model.has_intervals:
             raise UserError(f"{model.name} v{model.version} has no interval calibration")
         half = model.half_width(coverage)
-    chunks = iter_csv_chunks(path, model.features, chunk_rows)  # refuses a bad file first
+    chunks = iter_chunks(path, model.features, block_bytes=block_bytes)  # refuses a bad file first
     writer = csv.writer(out, lineterminator="\n")
     header = list(model.features) + [f"{t}_predicted" for t in model.targets]
     if half is not None:

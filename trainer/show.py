@@ -52,6 +52,15 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         ("LOO", headline(m.get("metrics", {}), "loo")),
         ("holdout", headline(m.get("metrics", {}), "holdout")),
     ]
+    counts = tr.get("row_counts")
+    if counts:
+        lines.insert(7, ("data", counts.get("summary", "")))
+    if tr.get("method"):
+        lines.insert(7, ("method", f"{tr['method']}: {tr.get('method_reason', '')}"))
+    span = env.get("time_span")
+    if span:
+        lines.append(("time span", f"{span['column']}: {span['start']} → {span['end']} "
+                                   f"(holdout: {tr.get('holdout_kind', '')})"))
     tuning = m.get("tuning")
     if tuning:
         lines.append(("tuning", tuning.get("summary", tuning.get("method", ""))))

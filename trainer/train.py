@@ -16,6 +16,7 @@ from __future__ import annotations
 import platform
 import time
 from dataclasses import dataclass
+from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
@@ -27,6 +28,10 @@ from trainer import data, envelope_stats
 from trainer.errors import UserError
 from trainer.fit import Fit, fit_exact, scores
 
+#: ``--method auto``: exact KRR up to this many usable rows, Nyström above. An exact fit of
+#: 15,000 rows holds a 1.8 GB kernel matrix and factorizes in about 20 s on two cores;
+#: twice the rows cost four times the memory and eight times the time.
+AUTO_EXACT_MAX_ROWS = 15_000
 #: Above this many rows the bundle's exact LOO residuals (an O(n³) inverse) are skipped and
 #: intervals are calibrated on the holdout residuals instead (split conformal).
 LOO_MAX_ROWS = 8000
@@ -50,17 +55,45 @@ class TrainOptions:
     quiet: bool = False
     report: bool = True
     precision: str = "float64"
+    time: str | None = None
+    drop_incomplete: bool = False
+    sep: str | None = None
+    decimal: str | None = None
+    method: str = "auto"
+    landmarks: int | None = None
+    landmark_scheme: str | None = None
+    cluster: str | None = None
 
 
-def split_holdout(n: int, fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """Seeded random split into (train indices, holdout indices)."""
+def split_holdout(n: int, fraction: float, seed: int,
+                  most_recent: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Split into (train indices, holdout indices): a seeded random draw, or with
+    ``most_recent`` (rows in time order) the last ``fraction`` of the rows."""
     if not 0 <= fraction < 1:
         raise UserError(f"--holdout must be in [0, 1), got {fraction}")
     n_hold = int(round(n * fraction))
     if fraction > 0 and (n_hold < 1 or n - n_hold < data.MIN_ROWS):
         raise UserError(f"{n} rows are too few for a holdout of {fraction}; use --holdout 0")
+    if most_recent:
+        return np.arange(n - n_hold), np.arange(n - n_hold, n)
     perm = np.random.default_rng(seed).permutation(n)
     return np.sort(perm[n_hold:]), np.sort(perm[:n_hold])
+
+
+def time_text(value: float, clock: bool) -> str | float:
+    """A time value as the user wrote it: ISO 8601 (UTC) for clock times, else the number."""
+    if not clock:
+        return float(value)
+    return datetime.fromtimestamp(value, tz=timezone.utc).isoformat(timespec="seconds")
+
+
+def time_span(d: data.TrainingData) -> dict | None:
+    """First and last time of the training rows, for the manifest and the envelope."""
+    if d.time is None:
+        return None
+    return {"column": d.time_column, "start": time_text(d.time.min(), d.time_is_clock),
+            "end": time_text(d.time.max(), d.time_is_clock),
+            "kind": "ISO 8601, UTC" if d.time_is_clock else "number"}
 
 
 def _per_target(targets: list[str], y: np.ndarray, pred: np.ndarray) -> dict:
@@ -100,7 +133,8 @@ def precision_check(final: Fit, targets: list[str], y: np.ndarray) -> dict:
     }
 
 
-def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, log):
+def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, log,
+                      time_ordered: bool = False):
     """Explicit parameters as given; omitted ones tuned by :mod:`trainer.tuning`."""
     wanted_kernel = opts.kernel
     explicit = wanted_kernel != "auto" and opts.ridge is not None and all(
@@ -113,7 +147,7 @@ def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, lo
         return spec, float(opts.ridge), None
     from trainer import tuning
 
-    return tuning.tune(opts, x_tr, y_tr, log)
+    return tuning.tune(opts, x_tr, y_tr, log, time_ordered=time_ordered)
 
 
 def _params_of(kernel: str) -> tuple[str, ...]:
@@ -125,6 +159,30 @@ def _params_of(kernel: str) -> tuple[str, ...]:
     return KERNEL_PARAMS[kernel]
 
 
+def choose_method(opts: TrainOptions) -> tuple[str, str]:
+    """(method, reason): exact KRR up to :data:`AUTO_EXACT_MAX_ROWS` usable rows, else Nyström.
+
+    ``auto`` counts the rows that have every target (one streamed pass over the target
+    columns only), since sparse lab values can make a large export a small training set.
+    """
+    if opts.method == "exact":
+        if opts.cluster:
+            raise UserError("--cluster runs the Nyström accumulation; use --method nystrom")
+        return "exact", "asked for with --method exact"
+    if opts.method == "nystrom" or opts.cluster or opts.landmarks:
+        return "nystrom", "asked for with " + ("--method nystrom" if opts.method == "nystrom"
+                                               else "--cluster" if opts.cluster
+                                               else "--landmarks")
+    if opts.method != "auto":
+        raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
+    rows = data.count_target_rows(opts.data, opts.targets, opts.sep, opts.decimal)
+    if rows <= AUTO_EXACT_MAX_ROWS:
+        return "exact", (f"{rows} rows with a target ≤ {AUTO_EXACT_MAX_ROWS}: exact KRR "
+                         "(--method auto)")
+    return "nystrom", (f"{rows} rows with a target > {AUTO_EXACT_MAX_ROWS}: exact KRR would "
+                       f"need an n × n matrix of {rows**2 * 8 / 1e9:.0f} GB (--method auto)")
+
+
 def train(opts: TrainOptions, log=print) -> dict:
     """Run the whole job; returns a summary (version, metrics, timings)."""
     t0 = time.perf_counter()
@@ -132,32 +190,51 @@ def train(opts: TrainOptions, log=print) -> dict:
     store.model_dir(opts.name)  # validates the name before any work
     if opts.kernel != "auto":
         _params_of(opts.kernel)
-    table = data.read_table(opts.data)
-    features, x, y = data.split_columns(table, opts.targets, opts.features)
-    n = x.shape[0]
-    tr, ho = split_holdout(n, opts.holdout, opts.seed)
+    if opts.precision not in ("float64", "float32"):
+        raise UserError(f"--precision must be float64 or float32, not {opts.precision!r}")
+    method, reason = choose_method(opts)
+    if method == "nystrom":
+        from trainer.nystrom_train import train_nystrom
 
-    spec, ridge, tuning_info = choose_parameters(opts, x[tr], y[tr], log)
+        return train_nystrom(opts, store, log, t0, reason)
+    d = data.load_training(opts.data, opts.targets, opts.features, opts.time,
+                           opts.drop_incomplete, opts.sep, opts.decimal)
+    features, x, y = d.features, d.x, d.y
+    if d.time is not None:  # time order: the holdout is the latest stretch, folds run forward
+        order = np.argsort(d.time, kind="stable")
+        x, y, d.time = x[order], y[order], d.time[order]
+    timed = d.time is not None
+    n = x.shape[0]
+    tr, ho = split_holdout(n, opts.holdout, opts.seed, most_recent=timed)
+
+    spec, ridge, tuning_info = choose_parameters(opts, x[tr], y[tr], log, time_ordered=timed)
 
     metrics: dict = {}
     holdout_abs = None
     holdout_coverage = None
     holdout_points = None
     if ho.size:
-        part = fit_exact(x[tr], y[tr], spec, ridge, want_loo=tr.size <= LOO_MAX_ROWS)
+        part = fit_exact(x[tr], y[tr], spec, ridge,
+                         want_loo=tr.size <= LOO_MAX_ROWS and not timed)
         pred = part.predict(x[ho])
         metrics["holdout"] = _per_target(opts.targets, y[ho], pred)
         holdout_abs = np.abs(y[ho] - pred)
         holdout_points = {"actual": y[ho].tolist(), "predicted": pred.tolist()}
+        if timed:
+            holdout_points["time"] = d.time[ho].tolist()
+        from trainer.tuning import interval_coverage
+
         if part.loo_residuals is not None:
             # honest check of the interval method: calibrated on the training part's LOO
             # residuals, scored on rows that neither the fit nor the calibration saw
-            from trainer.tuning import interval_coverage
-
             holdout_coverage = interval_coverage(np.abs(part.loo_residuals), y[ho], pred)
+        elif timed and ho.size >= 4:
+            # in time order: calibrate on the earlier half of the holdout, check on the later
+            half = ho.size // 2
+            holdout_coverage = interval_coverage(holdout_abs[:half], y[ho][half:], pred[half:])
 
     t_fit = time.perf_counter()
-    final: Fit = fit_exact(x, y, spec, ridge, want_loo=n <= LOO_MAX_ROWS)
+    final: Fit = fit_exact(x, y, spec, ridge, want_loo=n <= LOO_MAX_ROWS and not timed)
     fit_seconds = time.perf_counter() - t_fit
     if final.loo_residuals is not None:
         metrics["loo"] = _per_target(opts.targets, y, y - final.loo_residuals)
@@ -167,18 +244,20 @@ def train(opts: TrainOptions, log=print) -> dict:
     elif holdout_abs is not None:
         calib = holdout_abs
         interval_how = ("split-conformal quantile of the holdout residuals of the model fitted "
-                        "on the training part (Lei et al. 2018)")
+                        "on the training part (Lei et al. 2018)"
+                        + ("; the holdout is the most recent stretch in time" if timed else ""))
     else:
         calib = None
         interval_how = None
 
-    if opts.precision not in ("float64", "float32"):
-        raise UserError(f"--precision must be float64 or float32, not {opts.precision!r}")
     check = precision_check(final, list(opts.targets), y) if opts.precision == "float32" else None
     if check and max(check["relative_to_target_sd"].values()) > 1e-3:
         log("warning: float32 changes predictions on training rows by up to "
             f"{max(check['relative_to_target_sd'].values()):.2g} target SD; consider float64")
     env, reference = envelope_stats.envelope_stats(x, final.x_s, features, opts.seed)
+    span = time_span(d)
+    if span:
+        env["time_span"] = span
     manifest = {
         "created": now_iso(),
         "features": features,
@@ -194,11 +273,18 @@ def train(opts: TrainOptions, log=print) -> dict:
         "training": {
             "rows": int(n),
             "data_file": Path(opts.data).name,
-            "data_sha256": table.sha256,
+            "data_sha256": d.sha256,
+            "data_format": d.dialect,
+            "row_counts": d.counts,
+            "time": span,
+            "holdout_kind": ("the most recent rows in time" if timed
+                             else "seeded random draw"),
             "holdout_fraction": opts.holdout,
             "holdout_rows": int(ho.size),
             "seed": opts.seed,
             "fit_seconds": round(fit_seconds, 3),
+            "method": "exact",
+            "method_reason": reason,
             "solver": "cholesky (scipy.linalg.cho_factor)",
             "final_fit": "refitted on all rows with the chosen parameters",
         },
@@ -224,13 +310,25 @@ def train(opts: TrainOptions, log=print) -> dict:
     if calib is not None:
         arrays["abs_residuals"] = np.sort(calib, axis=0)
 
+    report_args = (tuning_info, holdout_points, calib)
+    return publish_and_summarize(opts, store, manifest, arrays, report_args, t0,
+                                 spec=spec, ridge=ridge, features=features, rows=n,
+                                 metrics=metrics, tuning_info=tuning_info, check=check,
+                                 counts=d.counts, method=f"exact ({reason})")
+
+
+def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arrays: dict,
+                          report_args: tuple, t0: float, *, spec, ridge: float,
+                          features: list[str], rows: int, metrics: dict, tuning_info,
+                          check, counts: dict, method: str) -> dict:
+    """Publish the version (with its report), release it when asked; the train summary."""
     extra = None
     if opts.report:
         from trainer import report
 
         def extra(folder, version):
             report.write_report(folder / "report.html", dict(manifest, version=version,
-                                model=opts.name), tuning_info, holdout_points, calib)
+                                model=opts.name), *report_args)
     version = store.publish(opts.name, manifest, arrays, extra_files=extra)
     live = False
     if opts.release:
@@ -240,7 +338,9 @@ def train(opts: TrainOptions, log=print) -> dict:
         "name": opts.name,
         "version": version,
         "live": live,
-        "rows": int(n),
+        "rows": int(rows),
+        "data": counts["summary"],
+        "method": method,
         "features": features,
         "targets": list(opts.targets),
         "kernel": spec.describe(),

@@ -68,6 +68,12 @@ EXACT_MAX_ROWS = 4000
 #: Fallback: subsample size and number of folds (4 decompositions of 1,800 rows ≈ 3 s).
 FALLBACK_ROWS = 2400
 FALLBACK_FOLDS = 4
+#: Blocked cross-validation in time order (``--time``): forward-chaining folds as in
+#: scikit-learn's ``TimeSeriesSplit``, with a gap of this fraction of a fold between the end
+#: of the training rows and the validation block, so that rows right before a validation
+#: block (near-copies of it in an autocorrelated series) do not leak into its fit.
+TIME_FOLDS = 5
+TIME_GAP_FRACTION = 0.2
 #: Ridge grid, relative to the mean diagonal of K.
 RIDGE_RELATIVE = (1e-7, 1e3)
 RIDGE_GRID_SIZE = 30
@@ -200,7 +206,7 @@ class Problem:
     y_c: np.ndarray  # centered targets
     inv_var: np.ndarray  # (t,) 1 / Var(y_t)
     ridge_fixed: float | None
-    folds: list[np.ndarray] | None = None  # fallback: validation index sets
+    folds: list[tuple[np.ndarray, np.ndarray]] | None = None  # k-fold: (train, validation)
     evaluated: int = 0
     seconds: float = 0.0
     extra: dict = field(default_factory=dict)
@@ -251,16 +257,16 @@ def evaluate(problem: Problem, spec: KernelSpec, ridges: np.ndarray | None = Non
 
 
 def _kfold_residuals(k, y_c, folds, ridges, psd):
-    """k-fold validation residuals for all ridges, one decomposition per fold.
+    """Validation residuals of every fold for all ridges, one decomposition per fold.
 
     For training part T and validation part V: ŷ_V(λ) = K_VT Q diag(1/(w + λ)) Qᵀ y_T.
+    Returns (R, Σ|V|, t) residuals in fold order and the feasible-ridge mask.
     """
-    n, t = y_c.shape
-    out = np.empty((ridges.size, n, t))
+    t = y_c.shape[1]
+    out = np.empty((ridges.size, sum(len(v) for _, v in folds), t))
     ok = np.ones(ridges.size, dtype=bool)
-    everything = np.arange(n)
-    for val in folds:
-        tr = np.setdiff1d(everything, val, assume_unique=True)
+    at = 0
+    for tr, val in folds:
         w, q = eigen_kernel(np.ascontiguousarray(k[np.ix_(tr, tr)]), psd=False)
         ok &= feasible_ridges(w, ridges)
         if psd:
@@ -269,8 +275,34 @@ def _kfold_residuals(k, y_c, folds, ridges, psd):
         qy = q.T @ y_c[tr]  # (m, t)
         inv = 1.0 / (w[:, None] + ridges[None, :])  # (m, R)
         pred = a @ (inv[:, :, None] * qy[:, None, :]).reshape(len(tr), -1)
-        out[:, val, :] = y_c[val][None] - np.moveaxis(pred.reshape(len(val), ridges.size, t), 1, 0)
+        out[:, at:at + len(val), :] = (y_c[val][None]
+                                       - np.moveaxis(pred.reshape(len(val), ridges.size, t), 1, 0))
+        at += len(val)
     return out, ok
+
+
+def time_series_folds(n: int, n_splits: int = TIME_FOLDS,
+                      gap: int | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Forward-chaining folds over rows in time order: (training rows, validation block).
+
+    Validation blocks are the last ``n_splits`` contiguous blocks of ⌊n / (n_splits + 1)⌋ rows;
+    each is fitted on every row before it except the ``gap`` rows right before it. This is
+    the split of scikit-learn's ``TimeSeriesSplit(n_splits, gap=gap)``; ``gap`` defaults to
+    :data:`TIME_GAP_FRACTION` of a block.
+    """
+    size = n // (n_splits + 1)
+    if size < 1:
+        raise UserError(f"{n} rows are too few for {n_splits} time-ordered folds")
+    gap = int(round(TIME_GAP_FRACTION * size)) if gap is None else gap
+    rows = np.arange(n)
+    out = []
+    for start in range(n - n_splits * size, n, size):
+        train = rows[: max(start - gap, 0)]
+        if train.size < 2:
+            raise UserError(f"{n} rows are too few for {n_splits} time-ordered folds with a gap "
+                            f"of {gap} rows")
+        out.append((train, rows[start:start + size]))
+    return out
 
 
 # ---------------------------------------------------------------------------------------------
@@ -425,7 +457,8 @@ def _refine_ridge(problem: Problem, curve: Curve) -> Curve:
     return fine if fine.best_score < curve.best_score else curve
 
 
-def _standardized_problem(x_tr, y_tr, ridge_fixed, seed) -> tuple[Problem, dict]:
+def _standardized_problem(x_tr, y_tr, ridge_fixed, seed,
+                          time_ordered: bool = False) -> tuple[Problem, dict]:
     n = x_tr.shape[0]
     x_s = Standardizer.fit(x_tr)(x_tr)
     y_c = y_tr - y_tr.mean(axis=0)
@@ -433,12 +466,29 @@ def _standardized_problem(x_tr, y_tr, ridge_fixed, seed) -> tuple[Problem, dict]
     var[var <= 0] = 1.0
     info: dict = {"fallback": False}
     folds = None
-    if n > EXACT_MAX_ROWS:
+    if time_ordered:
+        if n > EXACT_MAX_ROWS:  # every k-th row keeps the time order and the whole span
+            keep = np.unique(np.linspace(0, n - 1, FALLBACK_ROWS).round().astype(int))
+            x_s, y_c = x_s[keep], y_c[keep] - y_c[keep].mean(axis=0)
+            info["fallback"] = {
+                "reason": f"{n} training rows > {EXACT_MAX_ROWS}: folds on every "
+                          f"{n / keep.size:.1f}-th row in time order",
+                "subsample_rows": int(keep.size), "folds": TIME_FOLDS,
+            }
+        folds = time_series_folds(x_s.shape[0])
+        info["time_folds"] = {
+            "folds": len(folds), "validation_rows": int(len(folds[0][1])),
+            "gap_rows": int(folds[0][1][0] - folds[0][0][-1] - 1),
+            "how": "forward-chaining contiguous blocks in time order (TimeSeriesSplit with gap)",
+        }
+    elif n > EXACT_MAX_ROWS:
         rng = np.random.default_rng(seed)
         keep = np.sort(rng.choice(n, size=FALLBACK_ROWS, replace=False))
         x_s, y_c = x_s[keep], y_c[keep] - y_c[keep].mean(axis=0)
         perm = rng.permutation(FALLBACK_ROWS)
-        folds = [np.sort(f) for f in np.array_split(perm, FALLBACK_FOLDS)]
+        everything = np.arange(FALLBACK_ROWS)
+        folds = [(np.setdiff1d(everything, f), np.sort(f))
+                 for f in np.array_split(perm, FALLBACK_FOLDS)]
         info["fallback"] = {
             "reason": f"{n} training rows > {EXACT_MAX_ROWS}: exact LOO (n³ per candidate) "
                       "too slow",
@@ -448,7 +498,8 @@ def _standardized_problem(x_tr, y_tr, ridge_fixed, seed) -> tuple[Problem, dict]
     return Problem(x_s, y_c, 1.0 / var, ridge_fixed, folds), info
 
 
-def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print) -> tuple[KernelSpec, float, dict]:
+def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print,
+         time_ordered: bool = False) -> tuple[KernelSpec, float, dict]:
     """Choose the omitted kernel parameters and ridge on the training rows.
 
     Parameters
@@ -458,6 +509,9 @@ def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print) -> tuple[KernelSpe
     x_tr : (n, d) raw training features (standardized here, as the final fit does).
     y_tr : (n, t) training targets.
     log : one-line progress messages.
+    time_ordered : rows are in time order: blocked cross-validation in time order
+        (:func:`time_series_folds`) replaces leave-one-out, which is optimistic on an
+        autocorrelated series (a row's neighbours in time are near-copies of it).
 
     Returns
     -------
@@ -470,15 +524,21 @@ def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print) -> tuple[KernelSpe
     if opts.ridge is not None and not opts.ridge > 0:
         raise UserError(f"ridge must be positive for tuning, got {opts.ridge}")
     kernels = list(AUTO_KERNELS) if opts.kernel == "auto" else [opts.kernel]
-    problem, info = _standardized_problem(x_tr, y_tr, opts.ridge, opts.seed)
+    problem, info = _standardized_problem(x_tr, y_tr, opts.ridge, opts.seed, time_ordered)
     m = problem.x_s.shape[0]
     widths_searched = opts.gamma is None
     per_kernel_fits = (WIDTH_GRID_SIZE + WIDTH_EXTENSIONS + 2 * WIDTH_BISECTIONS)
     hint = sum((per_kernel_fits if "gamma" in KERNEL_PARAMS[k] and widths_searched else 1)
                * len(_kernel_candidates(k, opts)) for k in kernels)
     runner = _make_runner(m, opts.quiet, hint, log)
-    what = "exact leave-one-out" if not info["fallback"] else (
-        f"{FALLBACK_FOLDS}-fold cross-validation on a {FALLBACK_ROWS}-row subsample")
+    if time_ordered:
+        tf = info["time_folds"]
+        what = (f"blocked cross-validation in time order ({tf['folds']} forward-chaining folds "
+                f"of {tf['validation_rows']} rows, gap {tf['gap_rows']} rows)")
+    elif info["fallback"]:
+        what = f"{FALLBACK_FOLDS}-fold cross-validation on a {FALLBACK_ROWS}-row subsample"
+    else:
+        what = "exact leave-one-out"
     if info["fallback"]:
         log(f"tuning: {info['fallback']['reason']}; falling back to {what}")
     log(f"tuning {', '.join(kernels)} by {what} on {m} rows; {runner.how}")
@@ -515,7 +575,8 @@ def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print) -> tuple[KernelSpe
             "loo_rmse": [float(v) for v in b.rmse[b.best]],
         }
     targets = y_tr.shape[1]
-    crit_txt = ("LOO MSE" if not info["fallback"] else "CV MSE") + (
+    cv = problem.folds is not None
+    crit_txt = ("CV MSE" if cv else "LOO MSE") + (
         " / Var(target), averaged over the targets" if targets > 1 else "")
     searched = [p for p in ("gamma", "degree", "coef0")
                 if any(p in KERNEL_PARAMS[k] for k in kernels) and getattr(opts, p) is None]
@@ -524,10 +585,10 @@ def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print) -> tuple[KernelSpe
     rmse_txt = ", ".join(f"{v:.4g}" for v in chosen_rmse)
     summary = (f"{spec.describe()}, ridge={ridge:.4g} chosen by {what} "
                f"({problem.evaluated} decompositions, {len(curves)} settings × ridge grid; "
-               f"{'CV' if info['fallback'] else 'LOO'} RMSE {rmse_txt}; {seconds:.1f} s)")
+               f"{'CV' if cv else 'LOO'} RMSE {rmse_txt}; {seconds:.1f} s)")
     info.update({
-        "method": what + (" (closed form from one eigendecomposition per kernel setting)"
-                          if not info["fallback"] else ""),
+        "method": what + ("" if cv else
+                          " (closed form from one eigendecomposition per kernel setting)"),
         "criterion": crit_txt,
         "searched": searched,
         "fixed": {p: float(getattr(opts, p)) for p in ("gamma", "degree", "coef0", "ridge")
