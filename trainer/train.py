@@ -112,8 +112,9 @@ def library_versions() -> dict[str, str]:
     return out
 
 
-def precision_check(final: Fit, targets: list[str], y: np.ndarray) -> dict:
-    """Largest |float32 − float64| prediction difference on the model's own training rows.
+def precision_check(spec, x_train: np.ndarray, dual: np.ndarray, rows_s: np.ndarray,
+                    targets: list[str], y: np.ndarray) -> dict:
+    """Largest |float32 − float64| prediction difference on standardized rows ``rows_s``.
 
     Run when ``--precision float32`` is asked for, so the manifest states what single
     precision costs this model (it can be large when α is large and cancels, e.g. for a wide
@@ -121,15 +122,15 @@ def precision_check(final: Fit, targets: list[str], y: np.ndarray) -> dict:
     """
     from service.engine import Engine
 
-    exact = Engine(final.spec, final.x_s, final.dual).predict(final.x_s)
-    single = Engine(final.spec, final.x_s, final.dual, dtype=np.float32).predict(final.x_s)
+    exact = Engine(spec, x_train, dual).predict(rows_s)
+    single = Engine(spec, x_train, dual, dtype=np.float32).predict(rows_s)
     diff = np.abs(single - exact).max(axis=0)
     sd = y.std(axis=0)
     return {
-        "rows": int(final.x_s.shape[0]),
+        "rows": int(rows_s.shape[0]),
         "max_abs_error": {t: float(diff[j]) for j, t in enumerate(targets)},
         "relative_to_target_sd": {t: float(diff[j] / sd[j]) for j, t in enumerate(targets)},
-        "how": "float32 engine against float64 engine on every training row",
+        "how": "float32 engine against float64 engine on training rows",
     }
 
 
@@ -250,7 +251,9 @@ def train(opts: TrainOptions, log=print) -> dict:
         calib = None
         interval_how = None
 
-    check = precision_check(final, list(opts.targets), y) if opts.precision == "float32" else None
+    check = None
+    if opts.precision == "float32":
+        check = precision_check(spec, final.x_s, final.dual, final.x_s, list(opts.targets), y)
     if check and max(check["relative_to_target_sd"].values()) > 1e-3:
         log("warning: float32 changes predictions on training rows by up to "
             f"{max(check['relative_to_target_sd'].values()):.2g} target SD; consider float64")
