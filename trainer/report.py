@@ -116,7 +116,8 @@ def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
         ax.set_xlabel("ridge λ")
         ax.set_title(f"{name}" + ("" if not finite else f" (γ {lo:.3g} → {hi:.3g}, dark → light)"),
                      fontsize=9)
-    axes[0][0].set_ylabel(f"LOO RMSE ({targets[0]})" if single else "LOO RMSE / SD (mean)")
+    label = tuning.get("error_label", "LOO RMSE")
+    axes[0][0].set_ylabel(f"{label} ({targets[0]})" if single else f"{label} / SD (mean)")
     fig.tight_layout()
     return _png(fig)
 
@@ -242,7 +243,8 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
     if tuning:
         img = _curve_plot(tuning, targets)
         if img:
-            parts.append("<h2>Leave-one-out error against ridge</h2>")
+            label = tuning.get("error_label", "leave-one-out RMSE")
+            parts.append(f"<h2>Tuning: {_esc(label)} against ridge</h2>")
             parts.append(img)
             parts.append("<p class=note>One line per kernel parameter setting tried; "
                          "the star marks the choice.</p>")
