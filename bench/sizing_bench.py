@@ -196,6 +196,45 @@ def measure(store: Path, name: str, n: int, d: int, requests_n: int, big_rows: i
             "big_rows": big_rows, "cpu1": cpu1, "cpu64": cpu64}
 
 
+def measure_follow(store: Path, name: str, replicas: int = 2, changes: int = 20) -> list[float]:
+    """Seconds from a release (live.json replaced) until every replica answers with it."""
+    import time
+    from contextlib import ExitStack
+
+    import requests
+    from service_helpers import Gunicorn
+
+    from service.store import Store
+
+    st = Store(store)
+    if len(st.versions(name)) < 2:  # a second version to switch between (same data)
+        manifest = st.read_manifest(name, 1)
+        data = WORK / f"{name}.csv"
+        subprocess.run([sys.executable, "-m", "trainer.cli", "train", str(data), "--target",
+                        "y", "--name", name, "--kernel", "rbf", "--gamma",
+                        str(manifest["kernel"]["params"]["gamma"]), "--ridge", "2.0",
+                        "--holdout", "0", "--no-report", "--quiet", "--store", str(store)],
+                       check=True)
+    body = {"rows": [[0.0] * len(st.read_manifest(name, 1)["features"])]}
+    took = []
+    with ExitStack() as stack:
+        gs = [stack.enter_context(Gunicorn(store, workers=1)) for _ in range(replicas)]
+        url = f"/models/{name}/predict"
+        for i in range(changes):
+            target = 1 + (st.live_version(name) % 2)
+            t0 = time.monotonic()
+            st.release(name, target)
+            pending = set(range(replicas))
+            while pending:
+                for j in list(pending):
+                    r = requests.post(gs[j].base + url, json=body, timeout=30)
+                    if r.headers.get("X-Model-Version") == str(target):
+                        pending.discard(j)
+                assert time.monotonic() - t0 < 30, f"change {i} not followed"
+            took.append(time.monotonic() - t0)
+    return took
+
+
 def fit(points: list[dict]) -> Constants:
     """Non-negative least squares (scipy.optimize.nnls): no constant may come out below 0."""
     from scipy.optimize import nnls
@@ -253,6 +292,10 @@ def main() -> None:
     print("\nfitted constants (paste into RECORDED when they move):")
     for k, v in asdict(fitted).items():
         print(f"  {k:22s} {v:.4g}   recorded {getattr(RECORDED, k):.4g}")
+    took = sorted(measure_follow(store, f"m{sizes[-1][0]}x{sizes[-1][1]}"))
+    print(f"\nrelease → every one of 2 replicas serving it (KRIDGE_POLL_SECONDS 0.25, "
+          f"{len(took)} changes, model {sizes[-1][0]}x{sizes[-1][1]}): median "
+          f"{took[len(took) // 2]:.2f} s, max {took[-1]:.2f} s")
     ex = plan(20_000, 16, workers=2, rate=200, c=fitted)
     print(f"\nexample, n=20,000 d=16, 2 workers, 10,000-row limit, 200 single-row req/s: "
           f"{ex['memory_bytes'] / MIB:.0f} MiB, {ex['cores']:.2f} cores at 70 % utilisation")
