@@ -6,7 +6,10 @@ is measured from /proc while requests arrive:
 - the worker's anonymous (private) memory once the model is loaded;
 - the model's array files, memory-mapped: page cache shared by all workers of a host;
 - the rise of the worker's peak memory (VmHWM) during a request of many rows;
-- the worker's CPU seconds per request, for 1-row and 64-row requests.
+- the worker's CPU seconds per request, for 1-row and 64-row requests;
+- apart from HTTP, the engine's CPU per (query row, training row) pair: ``predict`` on a
+  1,024-row batch in this process, one thread, CPU time (clean of the HTTP noise, so the
+  kernel term's growth with n and d is fitted from it).
 
 The constants of the sizing formula (:func:`plan`) are fitted by least squares and printed
 beside the recorded ones (:data:`RECORDED`, which the README and the Kubernetes Deployment
@@ -48,19 +51,21 @@ class Constants:
     worker_per_value: float  # ... per training value (row × feature)
     request_per_row: float  # peak rise during a request, per request row
     request_per_value: float  # ... per request value (row × feature)
-    cpu_per_request: float  # CPU of one request apart from the kernel work
+    cpu_per_request: float  # CPU of one request apart from its rows
+    cpu_per_row: float  # CPU per request row apart from the kernel (parsing, envelope, answer)
     cpu_per_pair: float  # CPU per (request row, training row) pair
     cpu_per_pair_feature: float  # ... and per feature of that pair
 
 
 #: Fitted by this script on a 2-core x86-64 machine shared with other work (AVX-512,
-#: OpenBLAS Haswell kernels; load average about 3.5 during the run), 2026-12-02, with the
-#: default sizes and 300 requests. CPU figures moved by up to ±40 % between runs on the busy
-#: machine; memory figures by under 3 %.
+#: OpenBLAS Haswell kernels; load average about 6 during the run), 2026-12-02, with the
+#: default sizes and 300 requests. The HTTP CPU figures moved by up to ±40 % between runs on
+#: the busy machine; memory figures by under 3 %.
 RECORDED = Constants(
-    master=15.0e6, libraries=22.2e6, worker_base=39.4e6, worker_per_value=22.8,
-    request_per_row=6680.0, request_per_value=77.0,
-    cpu_per_request=2.0e-3, cpu_per_pair=4.1e-9, cpu_per_pair_feature=1.8e-11,
+    master=15.0e6, libraries=22.4e6, worker_base=39.2e6, worker_per_value=22.5,
+    request_per_row=6580.0, request_per_value=75.0,
+    cpu_per_request=1.85e-3, cpu_per_row=31e-6, cpu_per_pair=1.56e-9,
+    cpu_per_pair_feature=4.4e-11,
 )
 
 
@@ -85,15 +90,15 @@ def plan(n: int, d: int, *, targets: int = 1, workers: int = 2, max_rows: int = 
         training value, R the most rows one request may carry (every worker may hold such
         a request at once), the last term the memory-mapped arrays, counted once: the page
         cache is shared by the workers and charged once to a container.
-    cores  = rate·(c0 + r·n·(c1 + c2·d)) / u
+    cores  = rate·(c0 + r·(c1 + n·(c2 + c3·d))) / u
         rate requests per second of r rows each, u the utilisation to plan for (headroom
         for bursts and for the autoscaler to act before latency grows).
     """
     per_worker = (c.worker_base + c.worker_per_value * n * d
                   + max_rows * (c.request_per_row + c.request_per_value * d))
     memory = c.master + c.libraries + workers * per_worker + model_file_bytes(n, d, targets)
-    cpu_s = c.cpu_per_request + rows_per_request * n * (c.cpu_per_pair
-                                                        + c.cpu_per_pair_feature * d)
+    cpu_s = c.cpu_per_request + rows_per_request * (
+        c.cpu_per_row + n * (c.cpu_per_pair + c.cpu_per_pair_feature * d))
     return {"memory_bytes": memory, "cpu_seconds_per_request": cpu_s,
             "cores": rate * cpu_s / utilisation}
 
@@ -165,7 +170,10 @@ def measure(store: Path, name: str, n: int, d: int, requests_n: int, big_rows: i
 
     rng = np.random.default_rng(3)
     env = {"KRIDGE_MAX_ROWS": str(max(big_rows, 64)), "KRIDGE_MAX_BODY_BYTES": str(64 * MIB)}
-    files = sum(p.stat().st_size for p in (store / name).glob("versions/*/arrays/*.npy"))
+    from service.store import Store
+
+    live = Store(store).live_version(name)
+    files = sum(p.stat().st_size for p in (store / name).glob(f"versions/{live}/arrays/*.npy"))
     with Gunicorn(store, workers=1, env=env) as g:
         worker = worker_pid(g.proc.pid)
         url = f"{g.base}/models/{name}/predict"
@@ -235,6 +243,26 @@ def measure_follow(store: Path, name: str, replicas: int = 2, changes: int = 20)
     return took
 
 
+def engine_cpu_per_row(store: Path, name: str, d: int, rows: int = 1024) -> float:
+    """CPU seconds per query row of ``predict`` (kernel and product, no envelope or HTTP)."""
+    import time
+
+    from threadpoolctl import threadpool_limits
+
+    from service import load_model
+
+    model = load_model(store, name)
+    q = np.random.default_rng(5).uniform(-1, 1, (rows, d))
+    with threadpool_limits(1):
+        model.predict(q[:64])
+        best = math.inf
+        for _ in range(3):
+            t0 = time.process_time()
+            model.predict(q)
+            best = min(best, time.process_time() - t0)
+    return best / rows
+
+
 def fit(points: list[dict]) -> Constants:
     """Non-negative least squares (scipy.optimize.nnls): no constant may come out below 0."""
     from scipy.optimize import nnls
@@ -245,12 +273,15 @@ def fit(points: list[dict]) -> Constants:
     mem = solve([[1, p["n"] * p["d"]] for p in points], [p["private"] for p in points])
     rise = solve([[p["big_rows"], p["big_rows"] * p["d"]] for p in points],
                  [max(p["rise"], 0) for p in points])
+    pair, pair_feature = solve([[p["n"], p["n"] * p["d"]] for p in points],
+                               [p["engine_row"] for p in points])
     cpu_rows, cpu_y = [], []
-    for p in points:
+    for p in points:  # the HTTP figures less the engine's share
+        kernel = p["n"] * (pair + pair_feature * p["d"])
         for r, key in ((1, "cpu1"), (64, "cpu64")):
-            cpu_rows.append([1, r * p["n"], r * p["n"] * p["d"]])
-            cpu_y.append(p[key])
-    cpu = solve(cpu_rows, cpu_y)
+            cpu_rows.append([1, r])
+            cpu_y.append(p[key] - r * kernel)
+    cpu = (*solve(cpu_rows, cpu_y), pair, pair_feature)
     master = max(p["master"] for p in points)
     libraries = max(p["libraries"] for p in points)
     return Constants(master, libraries, *(float(v) for v in (*mem, *rise, *cpu)))
@@ -268,11 +299,17 @@ def main() -> None:
     print(f"BLAS: {blas}; cores: {os.cpu_count()}; one gunicorn worker per measurement")
     store = WORK / "store"
     sizes = [tuple(int(v) for v in s.split("x")) for s in args.sizes.split(",")]
-    points = [measure(store, train(store, n, d), n, d, args.requests, args.big_rows)
-              for n, d in sizes]
+    os.environ["KRIDGE_ENGINE_THREADS"] = "1"  # for the in-process engine figures
+    points = []
+    for n, d in sizes:
+        name = train(store, n, d)
+        point = measure(store, name, n, d, args.requests, args.big_rows)
+        point["engine_row"] = engine_cpu_per_row(store, name, d)
+        points.append(point)
     fitted = fit(points)
     print(f"\n{'n':>6s} {'d':>3s} {'worker MiB':>10s} {'files MiB':>9s} "
-          f"{'rise MiB':>8s} {'CPU µs 1 row':>12s} {'CPU µs 64 rows':>14s}   "
+          f"{'rise MiB':>8s} {'CPU µs 1 row':>12s} {'CPU µs 64 rows':>14s} "
+          f"{'engine µs/row':>13s}   "
           "measured / recorded formula: private, rise, CPU 1, CPU 64")
     for p in points:
         rec = plan(p["n"], p["d"], workers=1, max_rows=0)
@@ -284,7 +321,8 @@ def main() -> None:
         ratios = [p["private"] / private_f, p["rise"] / rise_f if rise_f else math.nan,
                   p["cpu1"] / c1, p["cpu64"] / c64]
         print(f"{p['n']:6d} {p['d']:3d} {p['private'] / MIB:10.1f} {p['files'] / MIB:9.2f} "
-              f"{p['rise'] / MIB:8.1f} {p['cpu1'] * 1e6:12.0f} {p['cpu64'] * 1e6:14.0f}   "
+              f"{p['rise'] / MIB:8.1f} {p['cpu1'] * 1e6:12.0f} {p['cpu64'] * 1e6:14.0f} "
+              f"{p['engine_row'] * 1e6:13.1f}   "
               + "  ".join(f"{r:5.2f}" for r in ratios))
         assert p["files"] <= model_file_bytes(p["n"], p["d"])
     print(f"master private {max(p['master'] for p in points) / MIB:.1f} MiB, worker shared "
