@@ -265,7 +265,7 @@ def test_bad_drain_setting_names_the_variable(monkeypatch, raw, words):
 # -- gunicorn ------------------------------------------------------------------------------
 def test_gunicorn_config_loads_with_gunicorns_own_parser(tmp_path):
     """`gunicorn --print-config` parses the config, imports the app and prints every
-    resolved setting (gunicorn ≥ 23)."""
+    resolved setting."""
     env = {"PATH": "/usr/bin:/bin", "KRIDGE_STORE": str(tmp_path), "KRIDGE_WORKERS": "3",
            "KRIDGE_BIND": "127.0.0.1:9", "PYTHONPATH": str(ROOT)}
     r = subprocess.run([sys.executable, "-m", "gunicorn", "-c", "deploy/gunicorn.conf.py",

@@ -99,6 +99,15 @@ def test_sigterm_drains_under_load_and_finishes_accepted_requests(tmp_path, smal
         load.start()
         wait_for(lambda: load.ok >= 30, 60, "the load to warm up")
 
+        # A request accepted before SIGTERM that is still arriving when the workers are told
+        # to stop: a slow client sends half its body now and the rest after the stop.
+        slow = socket.create_connection(("127.0.0.1", g.port), timeout=30)
+        payload = json.dumps({"rows": [TYPICAL_ROW]}).encode()
+        head = (f"POST /models/c/predict HTTP/1.1\r\nHost: localhost\r\n"
+                f"Content-Type: application/json\r\nContent-Length: {len(payload)}\r\n"
+                "Connection: close\r\n\r\n").encode()
+        slow.sendall(head + payload[:10])
+
         g.proc.send_signal(signal.SIGTERM)  # what the kubelet sends, by the master's pid
         try:
             for t in load.threads:
@@ -107,14 +116,7 @@ def test_sigterm_drains_under_load_and_finishes_accepted_requests(tmp_path, smal
             load.done.set()
         assert load.failures == [], load.failures[:5]
 
-        # A request accepted before the workers are told to stop, still arriving while
-        # they stop: a slow client sends half its body, waits, then the rest.
-        slow = socket.create_connection(("127.0.0.1", g.port), timeout=20)
-        payload = json.dumps({"rows": [TYPICAL_ROW]}).encode()
-        head = (f"POST /models/c/predict HTTP/1.1\r\nHost: localhost\r\n"
-                f"Content-Type: application/json\r\nContent-Length: {len(payload)}\r\n"
-                "Connection: close\r\n\r\n").encode()
-        slow.sendall(head + payload[:10])
+        # the other worker stopping means the drain is over and both were told to stop
         wait_for(lambda: "Worker exiting" in log_path.read_text(), DRAIN_SECONDS + 20,
                  "the idle worker to stop")
         slow.sendall(payload[10:])
