@@ -22,6 +22,7 @@ bench: $(STAMP)
 	$(PY) bench/engine_bench.py
 	$(PY) bench/http_bench.py
 	$(PY) bench/tuning_bench.py
+	$(PY) bench/sizing_bench.py
 
 lint: $(STAMP)
 	$(VENV)/bin/ruff check .

@@ -5,4 +5,4 @@ this folder runs with the same ones; override any of them here or on the command
 """
 
 from service.gunicorn_config import *  # noqa: F403
-from service.gunicorn_config import child_exit, on_starting  # noqa: F401  (hooks by name)
+from service.gunicorn_config import child_exit, on_starting, when_ready  # noqa: F401  (hooks)

@@ -16,7 +16,7 @@ from flask import Flask, Response, g, request
 from pydantic import ValidationError
 from werkzeug.exceptions import HTTPException
 
-from service import metrics
+from service import access_log, drain, metrics
 from service.bundle import verify
 from service.errors import ApiError
 from service.hub import ModelHub
@@ -54,6 +54,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
     else:
         hub.refresh()
     app.extensions["kridge"] = {"hub": hub, "store": store, "settings": settings}
+    access_log.install(app, settings.access_log)
     openapi_doc = orjson.dumps(build_openapi(settings.max_rows, settings.max_body_bytes))
 
     def model_name(name: str) -> str:
@@ -97,8 +98,10 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
     @app.get("/readyz")
     def readyz():
         ready, served, problems = hub.readiness()
-        return json_response({"ready": ready, "models": served, "problems": problems},
-                             200 if ready else 503)
+        draining = drain.active()  # after SIGTERM: the balancer should send no more
+        ready = ready and not draining
+        return json_response({"ready": ready, "draining": draining, "models": served,
+                              "problems": problems}, 200 if ready else 503)
 
     @app.get("/models")
     def list_models():
@@ -182,6 +185,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         req = parse_body(request.get_data(cache=False), settings.max_rows)
         t_parsed = time.perf_counter()
         body, compute = predict_response(model, req, t_start, t_parsed)
+        g.rows = len(body["results"])
         out_of_range = sum(1 for r in body["results"] if r["envelope"]["out_of_range"])
         novel = sum(1 for r in body["results"] if r["envelope"]["novel"])
         series = metrics.for_version(*labels)

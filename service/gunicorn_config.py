@@ -3,8 +3,15 @@
 Read by the gunicorn master before any worker starts, so the environment set here reaches
 every worker before numpy is imported there:
 
-- BLAS threads: each worker gets ``cores // workers`` engine threads and a single-threaded
-  BLAS, so workers × threads never exceed the cores;
+- workers: ``KRIDGE_WORKERS``, else one sync worker per usable core (at least two); a core
+  is what the affinity mask and a container's CPU quota allow (``settings.usable_cores``);
+- threads: each worker gets ``cores // workers`` engine threads for large batches and a
+  single-threaded BLAS, so workers × threads never exceed the cores;
+- drain: ``KRIDGE_DRAIN_SECONDS`` > 0 turns SIGTERM into "not ready, keep answering, then
+  stop" (:mod:`service.drain`); ``graceful_timeout`` then bounds how long a worker may take
+  to finish the request it holds;
+- logs: gunicorn's own messages stay plain text on stderr; the per-request access log is
+  the service's JSON-lines log (``KRIDGE_ACCESS_LOG``), so gunicorn's is off;
 - Prometheus multiprocess mode: a fresh metrics directory per master, cleaned at start and
   after each worker exits, so /metrics adds up every worker's figures.
 """
@@ -15,19 +22,27 @@ import os
 import shutil
 import tempfile
 
+from service import drain
+from service.settings import drain_seconds, usable_cores, worker_count
+
 bind = os.environ.get("KRIDGE_BIND") or "127.0.0.1:8000"
-workers = int(os.environ.get("KRIDGE_WORKERS") or 2)
+workers = worker_count()
 worker_class = "sync"
 timeout = 60
 graceful_timeout = 10
 keepalive = 5
-accesslog = os.environ.get("KRIDGE_ACCESS_LOG") or None
+accesslog = None
 errorlog = "-"
 loglevel = os.environ.get("KRIDGE_LOG_LEVEL", "info")
 wsgi_app = "service.wsgi:app"
+# gunicorn ≥ 25.1 opens a management socket at one fixed path per user by default: several
+# instances on a host would fight over it, and it is a way in that nobody here needs.
+control_socket_disable = True
 
-_cores = os.cpu_count() or 1
-os.environ.setdefault("KRIDGE_ENGINE_THREADS", str(max(1, _cores // workers)))
+#: Seconds between SIGTERM and the workers being told to stop (0: stop at once).
+DRAIN_SECONDS = drain_seconds()
+
+os.environ.setdefault("KRIDGE_ENGINE_THREADS", str(max(1, usable_cores() // workers)))
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 if not os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
@@ -39,6 +54,11 @@ def on_starting(server) -> None:
     path = os.environ["PROMETHEUS_MULTIPROC_DIR"]
     shutil.rmtree(path, ignore_errors=True)
     os.makedirs(path, exist_ok=True)
+
+
+def when_ready(server) -> None:
+    """Listeners are open: from now on SIGTERM drains first (when a drain is configured)."""
+    drain.install(server, DRAIN_SECONDS)
 
 
 def child_exit(server, worker) -> None:
