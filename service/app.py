@@ -54,7 +54,18 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
     else:
         hub.refresh()
     app.extensions["kridge"] = {"hub": hub, "store": store, "settings": settings}
-    openapi_doc = orjson.dumps(build_openapi(settings.max_rows, settings.max_body_bytes))
+    openapi_cache: dict[tuple, bytes] = {}
+
+    def openapi_doc() -> bytes:
+        """The document for the models served now (rebuilt when a live version changes)."""
+        served = {name: slot.model for name, slot in list(hub.slots.items()) if slot.model}
+        key = tuple(sorted((n, m.version) for n, m in served.items()))
+        if key not in openapi_cache:
+            openapi_cache.clear()
+            openapi_cache[key] = orjson.dumps(build_openapi(
+                settings.max_rows, settings.max_body_bytes,
+                {n: m.features for n, m in served.items()}))
+        return openapi_cache[key]
 
     def model_name(name: str) -> str:
         try:
@@ -80,7 +91,11 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         code = (exc.name or "error").lower().replace(" ", "_")
         message = {413: f"request body is larger than {settings.max_body_bytes} bytes "
                         "(KRIDGE_MAX_BODY_BYTES)"}.get(exc.code, exc.description or exc.name)
-        return api_error(ApiError(exc.code or 500, code, message))
+        response = api_error(ApiError(exc.code or 500, code, message))
+        allowed = getattr(exc, "valid_methods", None)
+        if exc.code == 405 and allowed:  # RFC 9110 §15.5.6: a 405 must list what is allowed
+            response.headers["Allow"] = ", ".join(allowed)
+        return response
 
     @app.errorhandler(Exception)
     def unexpected(exc: Exception):
@@ -148,7 +163,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
 
     @app.get("/openapi.json")
     def openapi():
-        return Response(openapi_doc, mimetype="application/json")
+        return Response(openapi_doc(), mimetype="application/json")
 
     @app.get("/metrics")
     def prometheus():
@@ -233,7 +248,8 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         except NotFound as exc:
             raise not_found(name, exc) from None
         except StoreError as exc:
-            raise ApiError(422, "version_refused", str(exc)) from None
+            log.warning("model %s: release of version %s refused: %s", name, body.version, exc)
+            raise ApiError(409, "version_refused", str(exc)) from None
         return json_response({"model": name, **rec})
 
     @app.post("/models/<name>/rollback")
@@ -244,8 +260,8 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
             rec = store.rollback(name, check=check(name))
         except NotFound as exc:
             raise not_found(name, exc) from None
-        except StoreError as exc:
-            raise ApiError(422, "rollback_refused", str(exc)) from None
+        except StoreError as exc:  # nothing earlier, damaged history, or a refused version
+            raise ApiError(409, "rollback_refused", str(exc)) from None
         return json_response({"model": name, **rec})
 
     return app

@@ -20,8 +20,25 @@ def _resp(desc: str, name: str | None = None) -> dict:
     return out
 
 
-def build_openapi(max_rows: int, max_body: int) -> dict:
-    """The whole document; limits are stated in the predict operation's description."""
+def _model_rows(features: list[str]) -> dict:
+    """Row schema of one model: every feature by name, or exactly that many numbers."""
+    number = {"type": "number"}
+    return {"anyOf": [
+        {"type": "object", "properties": {f: number for f in features},
+         "required": list(features), "additionalProperties": False},
+        {"type": "array", "items": number, "minItems": len(features),
+         "maxItems": len(features), "description": "In this order: " + ", ".join(features)},
+    ]}
+
+
+def build_openapi(max_rows: int, max_body: int, models: dict[str, list[str]] | None = None
+                  ) -> dict:
+    """The whole document; limits are stated in the predict operation's description.
+
+    ``models`` maps each model served now to its features: each gets its own predict path
+    with the exact row shape (OpenAPI matches a concrete path before a templated one), so
+    a request the document accepts is one the service answers with predictions.
+    """
     _, defs = models_json_schema(
         [(m, "validation") for m in (
             s.RowBatch, s.PredictionBatch, s.ErrorResponse, s.ReleaseRequest,
@@ -30,6 +47,8 @@ def build_openapi(max_rows: int, max_body: int) -> dict:
         )],
         ref_template=REF,
     )
+    defs = defs.get("$defs", {})
+    defs["RowBatch"]["properties"]["rows"]["maxItems"] = max_rows
     err = {code: _resp(text, "ErrorResponse") for code, text in (
         ("400", "Malformed JSON or a bad query parameter"),
         ("404", "No such model or version"),
@@ -43,7 +62,18 @@ def build_openapi(max_rows: int, max_body: int) -> dict:
         "401": _resp("Missing or wrong bearer token", "ErrorResponse"),
         "403": _resp("Admin routes disabled (no KRIDGE_ADMIN_TOKEN)", "ErrorResponse"),
         "404": err["404"], "422": err["422"],
+        "409": _resp("Valid, but the store's state does not allow it (the version fails "
+                     "verification, nothing earlier to roll back to, damaged history)",
+                     "ErrorResponse"),
     }
+    predicted = {"description": "Predictions", **_json("PredictionBatch"), "headers": {
+        "Server-Timing": {"description": "parse, compute and total milliseconds",
+                          "schema": {"type": "string"}},
+        "X-Model-Version": {"description": "The version that answered",
+                            "schema": {"type": "string", "pattern": "^[1-9][0-9]*$"}},
+    }}
+    version_query = {"name": "version", "in": "query", "required": False,
+                     "schema": {"type": "integer", "minimum": 1, "maximum": s.MAX_VERSION}}
     paths = {
         "/healthz": {"get": {"summary": "Process is up", "operationId": "health",
                              "responses": {"200": _resp("Up", "Health")}}},
@@ -67,10 +97,9 @@ def build_openapi(max_rows: int, max_body: int) -> dict:
                            "answer carries Server-Timing and X-Model-Version headers. Results "
                            "outside the training envelope are extrapolations.",
             "operationId": "predict",
-            "parameters": [name, {"name": "version", "in": "query", "required": False,
-                                  "schema": {"type": "integer", "minimum": 1}}],
+            "parameters": [name, version_query],
             "requestBody": {"required": True, **_json("RowBatch")},
-            "responses": {"200": _resp("Predictions", "PredictionBatch"), **err}}},
+            "responses": {"200": predicted, **err}}},
         "/models/{name}/release": {"post": {
             "summary": "Make a version live (admin)", "operationId": "release",
             "parameters": [name], "security": admin,
@@ -88,6 +117,16 @@ def build_openapi(max_rows: int, max_body: int) -> dict:
                                                         "content": {"application/json": {
                                                             "schema": {"type": "object"}}}}}}},
     }
+    for model, features in sorted((models or {}).items()):
+        rows = dict(defs["RowBatch"]["properties"]["rows"], items=_model_rows(features))
+        body = dict(defs["RowBatch"], properties=dict(defs["RowBatch"]["properties"], rows=rows))
+        paths[f"/models/{model}/predict"] = {"post": {
+            "summary": f"Predict with model {model}",
+            "description": paths["/models/{name}/predict"]["post"]["description"],
+            "operationId": f"predict_{model}", "parameters": [version_query],
+            "requestBody": {"required": True, "content": {"application/json": {
+                "schema": body}}},
+            "responses": {"200": predicted, **err}}}
     return {
         "openapi": "3.1.0",
         "info": {
@@ -99,7 +138,7 @@ def build_openapi(max_rows: int, max_body: int) -> dict:
         },
         "paths": paths,
         "components": {
-            "schemas": defs.get("$defs", {}),
+            "schemas": defs,
             "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer"}},
         },
     }
