@@ -160,10 +160,12 @@ class ModelHub:
     def readiness(self) -> tuple[bool, dict[str, int | None], dict[str, str]]:
         """Ready when every model with a live version is served at that version."""
         served, problems = {}, {}
-        for name, slot in self.slots.items():
+        for name, slot in list(self.slots.items()):
             served[name] = slot.model.version if slot.model else None
             behind = slot.model is None or slot.model.version != slot.wanted
-            if slot.wanted is not None and behind:
+            if slot.problem and slot.model is None:  # e.g. a damaged live.json at start
+                problems[name] = slot.problem
+            elif slot.wanted is not None and behind:
                 problems[name] = slot.problem or f"version {slot.wanted} is loading"
         return not problems, served, problems
 
