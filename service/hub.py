@@ -135,7 +135,9 @@ class ModelHub:
         slot = self.slots.get(name)
         if slot is None or slot.model is None:
             self.store.versions(name)  # NotFound when no such model
-            if slot is None:  # created after our last poll: wait for one refresh pass
+            if slot is None or slot.problem is None:
+                # created after our last poll, or being loaded by another thread right now:
+                # wait for one refresh pass (its lock makes this the only load)
                 self.refresh()
                 slot = self.slots.get(name)
             if slot is None or slot.model is None:

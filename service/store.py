@@ -117,8 +117,13 @@ def _write_temp(path: Path, data: bytes) -> str:
     return tmp
 
 
-def _append_line(path: Path, line: str) -> None:
-    """Append one line durably; on failure cut the file back to its old length."""
+def _append_line(path: Path, line: str, then: Callable[[], None] | None = None) -> None:
+    """Append one line, run ``then`` right after the write, then flush to disk.
+
+    On a failed write the file is cut back to its old length. ``then`` (the live.json swap)
+    follows the write with nothing slow between them, so a process killed in between is a
+    window of two system calls; what kill -9 leaves in the page cache stays in the file.
+    """
     fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_APPEND, 0o644)
     try:
         size = os.lseek(fd, 0, os.SEEK_END)
@@ -129,13 +134,33 @@ def _append_line(path: Path, line: str) -> None:
             view = memoryview(data)
             while view:
                 view = view[os.write(fd, view):]
-            os.fsync(fd)
+            if then is not None:
+                then()
         except BaseException:
             with contextlib.suppress(OSError):
                 os.ftruncate(fd, size)
             raise
+        os.fsync(fd)
     finally:
         os.close(fd)
+
+
+def _sweep_staging(staging: Path) -> None:
+    """Remove staging folders left by publishers that died (kill -9, power loss): each live
+    publisher holds a lock on its folder, so a folder whose lock can be taken is litter."""
+    for entry in staging.iterdir():
+        try:
+            fd = os.open(entry, os.O_RDONLY)
+        except OSError:
+            continue
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            continue  # a publisher at work
+        else:
+            shutil.rmtree(entry, ignore_errors=True)
+        finally:
+            os.close(fd)
 
 
 class Store:
@@ -341,9 +366,14 @@ class Store:
         staging = mdir / STAGING
         staging.mkdir(parents=True, exist_ok=True)
         (mdir / "versions").mkdir(exist_ok=True)
+        _sweep_staging(staging)
         work = staging / uuid.uuid4().hex
+        work.mkdir()
+        # held while writing: a sweeper that can take it knows the writer is gone
+        claim = os.open(work, os.O_RDONLY)
+        fcntl.flock(claim, fcntl.LOCK_EX)
         try:
-            (work / "arrays").mkdir(parents=True)
+            (work / "arrays").mkdir()
             listed = {}
             for key, arr in arrays.items():
                 if not ARRAY_NAME_RE.fullmatch(key):
@@ -381,13 +411,14 @@ class Store:
             return version
         finally:
             shutil.rmtree(work, ignore_errors=True)
+            os.close(claim)
 
     def _set_live(self, mdir: Path, name: str, version: int, action: str, previous,
                   repaired: str | None = None, restart: bool = False) -> dict:
-        """Append the history record, then swap live.json in: all or nothing.
+        """Append the history record and swap live.json in: all or nothing.
 
         The new pointer is written and flushed to a temp file first (where a full disk shows),
-        then the record appended (cut back on failure), then the pointer renamed into place.
+        then the record appended (cut back on failure) and the pointer renamed into place.
         """
         entry = {"version": version, "since": now_iso(), "previous": previous}
         record = {"time": entry["since"], "action": action, "version": version,
@@ -400,8 +431,8 @@ class Store:
         try:
             tmp = _write_temp(live, (json.dumps(entry) + "\n").encode())
             try:
-                _append_line(mdir / "history.jsonl", json.dumps(record))
-                os.replace(tmp, live)
+                _append_line(mdir / "history.jsonl", json.dumps(record),
+                             then=lambda: os.replace(tmp, live))
             except BaseException:
                 with contextlib.suppress(FileNotFoundError):
                     os.unlink(tmp)
@@ -440,6 +471,9 @@ class Store:
                 if previous is None and not notes and stack:
                     notes.append(f"live.json was missing although version {stack[-1]} was "
                                  "live; replaced")
+                elif previous is not None and stack and previous != stack[-1]:
+                    notes.append(f"live.json named version {previous} but the history last "
+                                 f"made version {stack[-1]} live; both agree again")
             return self._set_live(mdir, name, version, "release", previous,
                                   repaired="; ".join(notes) or None, restart=restart)
 
