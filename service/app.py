@@ -20,7 +20,7 @@ from service import metrics
 from service.bundle import verify
 from service.errors import ApiError
 from service.hub import ModelHub
-from service.openapi import build_openapi
+from service.openapi import build_openapi, describe_served
 from service.predict import parse_body, predict_response
 from service.schemas import ReleaseRequest
 from service.settings import Settings
@@ -57,14 +57,13 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
     openapi_cache: dict[tuple, bytes] = {}
 
     def openapi_doc() -> bytes:
-        """The document for the models served now (rebuilt when a live version changes)."""
-        served = {name: slot.model for name, slot in list(hub.slots.items()) if slot.model}
-        key = tuple(sorted((n, m.version) for n, m in served.items()))
+        """The document for the models served now (rebuilt when what is served changes)."""
+        served = describe_served(store, hub)
+        key = tuple(sorted(served.items()))
         if key not in openapi_cache:
             openapi_cache.clear()
             openapi_cache[key] = orjson.dumps(build_openapi(
-                settings.max_rows, settings.max_body_bytes,
-                {n: m.features for n, m in served.items()}))
+                settings.max_rows, settings.max_body_bytes, served))
         return openapi_cache[key]
 
     def model_name(name: str) -> str:

@@ -7,8 +7,13 @@ from typing import Annotated
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
 
+#: Largest magnitude of an input value. Far beyond any measurement, but small enough that
+#: standardized values, their squares and kernel sums stay finite in float64 and float32
+#: (a value near 1e308 made the novelty score overflow to a JSON null).
+MAX_INPUT = 1e12
+
 #: A finite JSON number; booleans and strings are refused (strict mode).
-Number = Annotated[float, Field(strict=True, allow_inf_nan=False)]
+Number = Annotated[float, Field(strict=True, allow_inf_nan=False, ge=-MAX_INPUT, le=MAX_INPUT)]
 
 ROW_DOC = (
     "One input row: an object keyed by feature name, or an array of numbers in the model's "
