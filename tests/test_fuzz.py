@@ -99,9 +99,9 @@ def _statuses(log: Path) -> list[int]:
 @pytest.mark.parametrize("token", [None, TOKEN], ids=["anonymous", "admin"])
 def test_schemathesis_finds_no_failure(fuzz_served, token, tmp_path):
     before = len(_statuses(fuzz_served.log_path))
-    res = run_schemathesis(fuzz_served.base, tmp_path, max_examples=12, seed=11, token=token)
+    res = run_schemathesis(fuzz_served.base, tmp_path, max_examples=8, seed=11, token=token)
     assert res["exit"] == 0 and res["clean"], res["output"][-6000:]
-    assert res["generated"] >= 150 and res["passed"] == res["generated"]
+    assert res["generated"] >= 100 and res["passed"] == res["generated"]
     statuses = _statuses(fuzz_served.log_path)[before:]
     assert len(statuses) >= res["generated"]
     assert [s for s in statuses if s >= 500] == []
