@@ -20,7 +20,7 @@ from service import access_log, drain, metrics
 from service.bundle import verify
 from service.errors import ApiError
 from service.hub import ModelHub
-from service.openapi import build_openapi
+from service.openapi import build_openapi, describe_served
 from service.predict import parse_body, predict_response
 from service.schemas import ReleaseRequest
 from service.settings import Settings
@@ -55,7 +55,17 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         hub.refresh()
     app.extensions["kridge"] = {"hub": hub, "store": store, "settings": settings}
     access_log.install(app, settings.access_log)
-    openapi_doc = orjson.dumps(build_openapi(settings.max_rows, settings.max_body_bytes))
+    openapi_cache: dict[tuple, bytes] = {}
+
+    def openapi_doc() -> bytes:
+        """The document for the models served now (rebuilt when what is served changes)."""
+        served = describe_served(store, hub)
+        key = tuple(sorted(served.items()))
+        if key not in openapi_cache:
+            openapi_cache.clear()
+            openapi_cache[key] = orjson.dumps(build_openapi(
+                settings.max_rows, settings.max_body_bytes, served))
+        return openapi_cache[key]
 
     def model_name(name: str) -> str:
         try:
@@ -81,7 +91,11 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         code = (exc.name or "error").lower().replace(" ", "_")
         message = {413: f"request body is larger than {settings.max_body_bytes} bytes "
                         "(KRIDGE_MAX_BODY_BYTES)"}.get(exc.code, exc.description or exc.name)
-        return api_error(ApiError(exc.code or 500, code, message))
+        response = api_error(ApiError(exc.code or 500, code, message))
+        allowed = getattr(exc, "valid_methods", None)
+        if exc.code == 405 and allowed:  # RFC 9110 §15.5.6: a 405 must list what is allowed
+            response.headers["Allow"] = ", ".join(allowed)
+        return response
 
     @app.errorhandler(Exception)
     def unexpected(exc: Exception):
@@ -151,7 +165,7 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
 
     @app.get("/openapi.json")
     def openapi():
-        return Response(openapi_doc, mimetype="application/json")
+        return Response(openapi_doc(), mimetype="application/json")
 
     @app.get("/metrics")
     def prometheus():
@@ -237,7 +251,8 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
         except NotFound as exc:
             raise not_found(name, exc) from None
         except StoreError as exc:
-            raise ApiError(422, "version_refused", str(exc)) from None
+            log.warning("model %s: release of version %s refused: %s", name, body.version, exc)
+            raise ApiError(409, "version_refused", str(exc)) from None
         return json_response({"model": name, **rec})
 
     @app.post("/models/<name>/rollback")
@@ -248,8 +263,8 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
             rec = store.rollback(name, check=check(name))
         except NotFound as exc:
             raise not_found(name, exc) from None
-        except StoreError as exc:
-            raise ApiError(422, "rollback_refused", str(exc)) from None
+        except StoreError as exc:  # nothing earlier, damaged history, or a refused version
+            raise ApiError(409, "rollback_refused", str(exc)) from None
         return json_response({"model": name, **rec})
 
     return app

@@ -2,10 +2,14 @@
 
 A daemon thread polls every model's ``live.json`` (a cheap ``stat``: a release replaces the
 file by rename, so its inode and mtime change). When the live version changes, the new
-version is loaded and verified on that thread — never on the request path — and swapped in
-with one reference assignment. A version that fails to load is never served: the old one
-keeps serving, the failure is logged and counted, and loading is retried only when live.json
-changes again. Versions pinned by ``?version=N`` load on demand into a small LRU cache.
+version is loaded and verified on that thread and swapped in with one reference assignment.
+A version that fails to load is never served: the old one keeps serving, the failure is
+logged and counted, and loading is retried only when live.json changes again.
+
+Two loads happen on a request thread, both under the hub's locks so that one bundle is never
+loaded twice at once: a model first seen after the last poll (the request waits for one
+refresh pass, which the watcher may be running already), and versions pinned by
+``?version=N``, which load on demand into a small LRU cache.
 """
 
 from __future__ import annotations
@@ -45,13 +49,36 @@ class ModelHub:
         self.pinned: OrderedDict[tuple[str, int], Model] = OrderedDict()
         self.pinned_cache = pinned_cache
         self.on_load_failure = on_load_failure
-        self._lock = threading.Lock()
+        self._lock = threading.Lock()  # guards the pinned cache
+        self._refreshing = threading.Lock()  # one refresh pass at a time
+        self._loading: dict[tuple[str, int], threading.Lock] = {}  # one load per bundle
+        self.loads = 0  # bundles loaded by this hub (live and pinned)
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
 
     # -- keeping in step with the store --------------------------------------------------
     def refresh(self) -> None:
         """One pass over the store: pick up new models and changed live pointers."""
+        with self._refreshing:
+            self._refresh()
+
+    def _load(self, name: str, version: int) -> Model:
+        """Load one bundle, or take it from the pinned cache; never the same one twice at
+        once (a second caller waits for the first and shares its result)."""
+        with self._lock:
+            gate = self._loading.setdefault((name, version), threading.Lock())
+        with gate:
+            model = self._cached_pinned(name, version)
+            if model is None:
+                model = load_model(self.store, name, version)
+                self.loads += 1
+                with self._lock:
+                    self.pinned[(name, version)] = model
+                    while len(self.pinned) > self.pinned_cache:
+                        self.pinned.popitem(last=False)
+            return model
+
+    def _refresh(self) -> None:
         for name in self.store.models():
             slot = self.slots.setdefault(name, LiveSlot())
             path = self.store.model_dir(name) / "live.json"
@@ -73,7 +100,7 @@ class ModelHub:
                 slot.problem = None
                 continue
             try:
-                model = self._cached_pinned(name, version) or load_model(self.store, name, version)
+                model = self._load(name, version)
             except (StoreError, OSError, ValueError) as exc:
                 slot.problem = f"version {version} was not loaded: {exc}"
                 log.error("model %s: live version %s refused: %s", name, version, exc)
@@ -108,7 +135,9 @@ class ModelHub:
         slot = self.slots.get(name)
         if slot is None or slot.model is None:
             self.store.versions(name)  # NotFound when no such model
-            if slot is None:  # created after our last poll: look once more
+            if slot is None or slot.problem is None:
+                # created after our last poll, or being loaded by another thread right now:
+                # wait for one refresh pass (its lock makes this the only load)
                 self.refresh()
                 slot = self.slots.get(name)
             if slot is None or slot.model is None:
@@ -128,23 +157,17 @@ class ModelHub:
         slot = self.slots.get(name)
         if slot is not None and slot.model is not None and slot.model.version == version:
             return slot.model
-        model = self._cached_pinned(name, version)
-        if model is not None:
-            return model
-        model = load_model(self.store, name, version)
-        with self._lock:
-            self.pinned[(name, version)] = model
-            while len(self.pinned) > self.pinned_cache:
-                self.pinned.popitem(last=False)
-        return model
+        return self._load(name, version)
 
     def readiness(self) -> tuple[bool, dict[str, int | None], dict[str, str]]:
         """Ready when every model with a live version is served at that version."""
         served, problems = {}, {}
-        for name, slot in self.slots.items():
+        for name, slot in list(self.slots.items()):
             served[name] = slot.model.version if slot.model else None
             behind = slot.model is None or slot.model.version != slot.wanted
-            if slot.wanted is not None and behind:
+            if slot.problem and slot.model is None:  # e.g. a damaged live.json at start
+                problems[name] = slot.problem
+            elif slot.wanted is not None and behind:
                 problems[name] = slot.problem or f"version {slot.wanted} is loading"
         return not problems, served, problems
 

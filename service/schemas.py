@@ -5,10 +5,15 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
+
+#: Largest magnitude of an input value. Far beyond any measurement, but small enough that
+#: standardized values, their squares and kernel sums stay finite in float64 and float32
+#: (a value near 1e308 made the novelty score overflow to a JSON null).
+MAX_INPUT = 1e12
 
 #: A finite JSON number; booleans and strings are refused (strict mode).
-Number = Annotated[float, Field(strict=True, allow_inf_nan=False)]
+Number = Annotated[float, Field(strict=True, allow_inf_nan=False, ge=-MAX_INPUT, le=MAX_INPUT)]
 
 ROW_DOC = (
     "One input row: an object keyed by feature name, or an array of numbers in the model's "
@@ -20,8 +25,13 @@ class Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True)
 
 
+#: A row names at least one feature (the model then says which are missing).
+ObjectRow = Annotated[dict[str, Number], Field(min_length=1)]
+ArrayRow = Annotated[list[Number], Field(min_length=1)]
+
+
 class RowBatch(Strict):
-    rows: list[dict[str, Number] | list[Number]] = Field(
+    rows: list[ObjectRow | ArrayRow] = Field(
         ..., min_length=1, description="Rows to predict. " + ROW_DOC
     )
     coverage: Annotated[float, Field(gt=0, lt=1, allow_inf_nan=False)] | None = Field(
@@ -83,8 +93,19 @@ class ErrorResponse(BaseModel):
     error: ErrorBody
 
 
+def _whole_number(value):
+    """JSON Schema counts 173469.0 as an integer; so does the service (never a bool)."""
+    if isinstance(value, float) and value.is_integer():
+        return int(value)
+    return value
+
+
+#: Version numbers as the store writes them: 1 to 999,999,999.
+MAX_VERSION = 999_999_999
+
+
 class ReleaseRequest(Strict):
-    version: Annotated[int, Field(ge=1)]
+    version: Annotated[int, Field(ge=1, le=MAX_VERSION), BeforeValidator(_whole_number)]
 
 
 class ReleaseResponse(BaseModel):

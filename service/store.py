@@ -46,6 +46,17 @@ class NotFound(StoreError):
     """A model or version that does not exist."""
 
 
+class Conflict(StoreError):
+    """A valid request that the store's present state does not allow (nothing to roll back
+    to, a damaged history): the message says what is unknown and how to go on."""
+
+
+def _reason(exc: OSError) -> str:
+    """An OS error without the file name: messages may reach HTTP answers and logs, which
+    must not show where the store lives."""
+    return exc.strerror or type(exc).__name__
+
+
 def now_iso() -> str:
     """Current UTC time, ISO 8601 with seconds."""
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
@@ -91,20 +102,65 @@ def _fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
-def _write_atomic(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` through a flushed temp file and a rename."""
+def _write_temp(path: Path, data: bytes) -> str:
+    """Write and flush ``data`` to a temp file beside ``path``; returns the temp's name."""
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
-        os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
-    _fsync_dir(path.parent)
+    return tmp
+
+
+def _append_line(path: Path, line: str, then: Callable[[], None] | None = None) -> None:
+    """Append one line, run ``then`` right after the write, then flush to disk.
+
+    On a failed write the file is cut back to its old length. ``then`` (the live.json swap)
+    follows the write with nothing slow between them, so a process killed in between is a
+    window of two system calls; what kill -9 leaves in the page cache stays in the file.
+    """
+    fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_APPEND, 0o644)
+    try:
+        size = os.lseek(fd, 0, os.SEEK_END)
+        data = line.encode() + b"\n"
+        if size and os.pread(fd, 1, size - 1) != b"\n":
+            data = b"\n" + data  # a torn last line (a writer killed mid-append)
+        try:
+            view = memoryview(data)
+            while view:
+                view = view[os.write(fd, view):]
+            if then is not None:
+                then()
+        except BaseException:
+            with contextlib.suppress(OSError):
+                os.ftruncate(fd, size)
+            raise
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _sweep_staging(staging: Path) -> None:
+    """Remove staging folders left by publishers that died (kill -9, power loss): each live
+    publisher holds a lock on its folder, so a folder whose lock can be taken is litter."""
+    for entry in staging.iterdir():
+        try:
+            fd = os.open(entry, os.O_RDONLY)
+        except OSError:
+            continue
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            continue  # a publisher at work
+        else:
+            shutil.rmtree(entry, ignore_errors=True)
+        finally:
+            os.close(fd)
 
 
 class Store:
@@ -131,6 +187,16 @@ class Store:
             finally:
                 fcntl.flock(lock, fcntl.LOCK_UN)
 
+    def _own_file(self, name: str, version: int, relative: str) -> Path:
+        """``relative`` inside the version's folder, refused when a symlink on the way leads
+        anywhere else: checksums prove content, not that the file belongs to the store."""
+        path = self.version_dir(name, version) / relative
+        expected = self.root.resolve() / name / "versions" / str(version) / relative
+        if os.path.lexists(path) and path.resolve() != expected:
+            raise StoreError(f"{name} v{version}: {relative} is a symbolic link to a file "
+                             "elsewhere; a version holds its own files")
+        return path
+
     # -- reading -------------------------------------------------------------------------
     def models(self) -> list[str]:
         """Names of models that have at least one version directory."""
@@ -150,40 +216,81 @@ class Store:
         return sorted(int(p.name) for p in vdir.iterdir() if p.name.isdigit())
 
     def live(self, name: str) -> dict | None:
-        """Contents of live.json, or None when nothing was released yet."""
+        """Contents of live.json, or None when nothing was released yet.
+
+        A damaged pointer (not JSON, no positive integer version) is a :class:`StoreError`
+        naming the model; ``kridge release`` writes a fresh one.
+        """
         path = self.model_dir(name) / "live.json"
         try:
-            return json.loads(path.read_text())
+            raw = path.read_bytes()
         except FileNotFoundError:
             return None
-        except (OSError, ValueError) as exc:
-            raise StoreError(f"{path} is unreadable: {exc}") from exc
+        except OSError as exc:
+            raise StoreError(f"{name}: live.json cannot be read ({_reason(exc)})") from None
+        try:
+            entry = json.loads(raw)
+        except ValueError:
+            raise StoreError(f"{name}: live.json is damaged (not valid JSON)") from None
+        version = entry.get("version") if isinstance(entry, dict) else None
+        if isinstance(version, bool) or not isinstance(version, int) or version < 1:
+            raise StoreError(f"{name}: live.json is damaged (it names no valid version)")
+        return entry
 
     def live_version(self, name: str) -> int | None:
+        """The version live.json names, None when nothing is live; StoreError when damaged."""
         entry = self.live(name)
-        return None if entry is None else int(entry["version"])
+        return None if entry is None else entry["version"]
+
+    def _history_lines(self, name: str) -> tuple[list[tuple[int, dict]], list[int]]:
+        """(line number, record) of every readable history line, and the damaged lines."""
+        path = self.model_dir(name) / "history.jsonl"
+        try:
+            text = path.read_text(errors="replace")
+        except FileNotFoundError:
+            return [], []
+        except OSError as exc:
+            raise StoreError(f"{name}: history.jsonl cannot be read ({_reason(exc)})") from None
+        good, bad = [], []
+        for number, line in enumerate(text.splitlines(), start=1):
+            if not line.strip():
+                continue
+            try:
+                rec = json.loads(line)
+            except ValueError:
+                rec = None
+            version = rec.get("version") if isinstance(rec, dict) else None
+            if (not isinstance(rec, dict) or rec.get("action") not in ("release", "rollback")
+                    or isinstance(version, bool) or not isinstance(version, int)):
+                bad.append(number)
+            else:
+                good.append((number, rec))
+        return good, bad
 
     def history(self, name: str) -> list[dict]:
-        """Every release and rollback, oldest first."""
-        path = self.model_dir(name) / "history.jsonl"
-        if not path.exists():
-            return []
-        return [json.loads(line) for line in path.read_text().splitlines() if line.strip()]
+        """Every release and rollback, oldest first; StoreError naming a damaged line."""
+        good, bad = self._history_lines(name)
+        if bad:
+            raise StoreError(f"{name}: history.jsonl line {bad[0]} is damaged")
+        return [rec for _, rec in good]
 
     def read_manifest(self, name: str, version: int) -> dict:
         """The manifest of one version, schema-checked (checksums are not read here)."""
         vdir = self.version_dir(name, version)
         if not vdir.is_dir():
             raise NotFound(f"model {name!r} has no version {version}")
-        path = vdir / "manifest.json"
+        path = self._own_file(name, version, "manifest.json")
         try:
-            manifest = json.loads(path.read_text())
-        except FileNotFoundError as exc:
+            manifest = json.loads(path.read_bytes())
+        except FileNotFoundError:
             raise StoreError(
                 f"{name} v{version}: manifest.json is missing (incomplete version)"
-            ) from exc
-        except ValueError as exc:
-            raise StoreError(f"{name} v{version}: manifest.json is not valid JSON") from exc
+            ) from None
+        except OSError as exc:
+            raise StoreError(f"{name} v{version}: manifest.json cannot be read "
+                             f"({_reason(exc)})") from None
+        except ValueError:
+            raise StoreError(f"{name} v{version}: manifest.json is not valid JSON") from None
         if not isinstance(manifest, dict) or manifest.get("schema") != SCHEMA:
             found = manifest.get("schema") if isinstance(manifest, dict) else None
             raise StoreError(
@@ -194,7 +301,6 @@ class Store:
 
     def load_arrays(self, name: str, version: int, manifest: dict) -> dict[str, np.ndarray]:
         """Verify every array's sha256, then memory-map it read-only (no pickle, ever)."""
-        vdir = self.version_dir(name, version)
         arrays = {}
         listed = manifest.get("arrays")
         if not isinstance(listed, dict) or not listed:
@@ -205,10 +311,14 @@ class Store:
                 raise StoreError(f"{name} v{version}: manifest lists an invalid array name {key!r}")
             if not isinstance(meta, dict):
                 raise StoreError(f"{name} v{version}: manifest entry of array {key!r} is malformed")
-            path = vdir / "arrays" / f"{key}.npy"
+            path = self._own_file(name, version, f"arrays/{key}.npy")
             if not path.is_file():
                 raise StoreError(f"{name} v{version}: array {key!r} is missing ({key}.npy)")
-            digest = sha256_file(path)
+            try:
+                digest = sha256_file(path)
+            except OSError as exc:
+                raise StoreError(f"{name} v{version}: array {key!r} cannot be read "
+                                 f"({_reason(exc)})") from None
             if digest != meta.get("sha256"):
                 raise StoreError(
                     f"{name} v{version}: array {key!r} fails its checksum "
@@ -219,7 +329,10 @@ class Store:
             except ValueError as exc:
                 raise StoreError(
                     f"{name} v{version}: array {key!r} is not a plain numeric array ({exc})"
-                ) from exc
+                ) from None
+            except OSError as exc:
+                raise StoreError(f"{name} v{version}: array {key!r} cannot be read "
+                                 f"({_reason(exc)})") from None
             if arr.dtype.kind not in "fiu" or arr.dtype.hasobject:
                 raise StoreError(f"{name} v{version}: array {key!r} has dtype {arr.dtype}")
             if list(arr.shape) != list(meta.get("shape", arr.shape)):
@@ -242,13 +355,25 @@ class Store:
         the directory renamed into ``versions/<N>``. ``extra_files(dir, version)`` may add
         files (the report) before the rename.
         """
+        try:
+            return self._publish(name, manifest, arrays, extra_files)
+        except OSError as exc:
+            raise StoreError(f"{name}: cannot write to the store ({_reason(exc)}); nothing "
+                             "was published") from None
+
+    def _publish(self, name, manifest, arrays, extra_files) -> int:
         mdir = self.model_dir(name)
         staging = mdir / STAGING
         staging.mkdir(parents=True, exist_ok=True)
         (mdir / "versions").mkdir(exist_ok=True)
+        _sweep_staging(staging)
         work = staging / uuid.uuid4().hex
+        work.mkdir()
+        # held while writing: a sweeper that can take it knows the writer is gone
+        claim = os.open(work, os.O_RDONLY)
+        fcntl.flock(claim, fcntl.LOCK_EX)
         try:
-            (work / "arrays").mkdir(parents=True)
+            (work / "arrays").mkdir()
             listed = {}
             for key, arr in arrays.items():
                 if not ARRAY_NAME_RE.fullmatch(key):
@@ -286,35 +411,88 @@ class Store:
             return version
         finally:
             shutil.rmtree(work, ignore_errors=True)
+            os.close(claim)
 
-    def _set_live(self, mdir: Path, name: str, version: int, action: str, previous) -> dict:
+    def _set_live(self, mdir: Path, name: str, version: int, action: str, previous,
+                  repaired: str | None = None, restart: bool = False) -> dict:
+        """Append the history record and swap live.json in: all or nothing.
+
+        The new pointer is written and flushed to a temp file first (where a full disk shows),
+        then the record appended (cut back on failure) and the pointer renamed into place.
+        """
         entry = {"version": version, "since": now_iso(), "previous": previous}
-        _write_atomic(mdir / "live.json", (json.dumps(entry) + "\n").encode())
         record = {"time": entry["since"], "action": action, "version": version,
                   "previous": previous}
-        with open(mdir / "history.jsonl", "a") as fh:
-            fh.write(json.dumps(record) + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
+        if repaired:
+            record["repaired"] = repaired
+        if restart:  # rollback replays the history from here on (earlier lines are damaged)
+            record["restart"] = True
+        live = mdir / "live.json"
+        try:
+            tmp = _write_temp(live, (json.dumps(entry) + "\n").encode())
+            try:
+                _append_line(mdir / "history.jsonl", json.dumps(record),
+                             then=lambda: os.replace(tmp, live))
+            except BaseException:
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(tmp)
+                raise
+            _fsync_dir(mdir)
+        except OSError as exc:
+            raise StoreError(f"{name}: cannot write to the store ({_reason(exc)}); live.json "
+                             "and the history are unchanged") from None
         return record
 
     def release(self, name: str, version: int, check: Callable[[int], None] | None = None) -> dict:
-        """Make ``version`` live. ``check(version)`` may refuse it first (e.g. verify)."""
+        """Make ``version`` live. ``check(version)`` may refuse it first (e.g. verify).
+
+        Release is also the repair: a damaged or lost live.json is replaced by a fresh
+        pointer, and a damaged history gets a record from which rollback starts anew; the
+        history record says what was repaired.
+        """
         version = check_version(version)
         if version not in self.versions(name):
             raise NotFound(f"model {name!r} has no version {version}")
         if check is not None:
             check(version)
         with self._locked(name) as mdir:
-            return self._set_live(mdir, name, version, "release", self.live_version(name))
+            notes, restart = [], False
+            try:
+                previous = self.live_version(name)
+            except StoreError as exc:
+                previous = None
+                notes.append(f"{str(exc).split(': ', 1)[-1]}; replaced")
+            try:
+                stack = self.live_stack(name)
+            except StoreError as exc:
+                restart = True
+                notes.append(f"{str(exc).split(': ', 1)[-1]}; rollback starts from this record")
+            else:
+                if previous is None and not notes and stack:
+                    notes.append(f"live.json was missing although version {stack[-1]} was "
+                                 "live; replaced")
+                elif previous is not None and stack and previous != stack[-1]:
+                    notes.append(f"live.json named version {previous} but the history last "
+                                 f"made version {stack[-1]} live; both agree again")
+            return self._set_live(mdir, name, version, "release", previous,
+                                  repaired="; ".join(notes) or None, restart=restart)
 
     def live_stack(self, name: str) -> list[int]:
         """Versions that were live, oldest first, with rolled-back ones popped off.
 
-        Replaying the history this way makes repeated rollbacks walk further back.
+        Replaying the history this way makes repeated rollbacks walk further back. The replay
+        starts at the last record marked ``restart`` (a release that repaired a damaged
+        history); a damaged line after it is a StoreError.
         """
+        good, bad = self._history_lines(name)
+        start = max((n for n, rec in good if rec.get("restart")), default=0)
+        damaged = [n for n in bad if n > start]
+        if damaged:
+            raise StoreError(f"{name}: history.jsonl line {damaged[0]} is damaged")
         stack: list[int] = []
-        for rec in self.history(name):
+        for n, rec in good:
+            if n < start:
+                continue
             if rec["action"] == "release":
                 if not stack or stack[-1] != rec["version"]:
                     stack.append(rec["version"])
@@ -323,15 +501,41 @@ class Store:
         return stack
 
     def rollback(self, name: str, check: Callable[[int], None] | None = None) -> dict:
-        """Make the previously live version live again (``check`` may refuse it first)."""
+        """Make the previously live version live again (``check`` may refuse it first).
+
+        :class:`Conflict` when there is nothing earlier, or when a damaged live.json or
+        history leaves unknown what is live now or what was live before.
+        """
         self.versions(name)  # NotFound for an unknown model
+        fix = f"make the version you want live with `kridge release {name} VERSION`"
         with self._locked(name) as mdir:
-            stack = self.live_stack(name)
+            try:
+                stack = self.live_stack(name)
+            except StoreError as exc:
+                raise Conflict(
+                    f"cannot roll back {name}: {str(exc).split(': ', 1)[-1]}, so the versions "
+                    f"live before are unknown; {fix} (this also repairs the history)") from None
+            try:
+                live = self.live_version(name)
+            except StoreError as exc:
+                last = f" (the history's last is version {stack[-1]})" if stack else ""
+                raise Conflict(
+                    f"cannot roll back {name}: {str(exc).split(': ', 1)[-1]}, so the version "
+                    f"live now is unknown{last}; {fix} (this also replaces live.json)"
+                ) from None
+            if live is None and stack:
+                raise Conflict(
+                    f"cannot roll back {name}: live.json is missing although the history "
+                    f"shows version {stack[-1]} live; {fix}")
+            if stack and live != stack[-1]:
+                raise Conflict(
+                    f"cannot roll back {name}: live.json names version {live} but the history "
+                    f"last made version {stack[-1]} live (changed by another tool?); {fix}")
             if len(stack) < 2:
                 current = stack[-1] if stack else None
                 what = f"version {current} is the first one released" if current else (
                     "nothing was released yet")
-                raise StoreError(f"cannot roll back {name}: {what}; nothing earlier to go back to")
+                raise Conflict(f"cannot roll back {name}: {what}; nothing earlier to go back to")
             if check is not None:
                 check(stack[-2])
             return self._set_live(mdir, name, stack[-2], "rollback", stack[-1])

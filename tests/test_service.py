@@ -171,7 +171,7 @@ def test_discovery_routes_and_openapi(served):
     doc = served.get("/openapi.json").json()
     validate(doc)  # reference: openapi-spec-validator, OpenAPI 3.1 schema
     assert doc["openapi"].startswith("3.1")
-    for path in ("/models/{name}/predict", "/models/{name}/release", "/metrics", "/readyz"):
+    for path in ("/models/coating/predict", "/models/{name}/release", "/metrics", "/readyz"):
         assert path in doc["paths"]
     req_schema = doc["components"]["schemas"]["RowBatch"]
     assert set(req_schema["properties"]) == {"rows", "coverage"}

@@ -1,6 +1,7 @@
 """The ``kridge`` command line.
 
-Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1.
+Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1;
+a bug in kridge itself shows its traceback and exits 70.
 Heavy imports (scipy, matplotlib) happen inside the commands that need them, so ``kridge
 serve`` works in a serving image without the trainer's extras.
 """
@@ -289,6 +290,32 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+#: Exit status for a bug in kridge itself (sysexits.h EX_SOFTWARE): distinct from a user
+#: error (2) and a failed verify (1), and shown with its traceback.
+EXIT_BUG = 70
+
+#: Functions whose ValueError means "this argument is not allowed": the user's to fix.
+#: Every other ValueError is a bug in kridge and keeps its traceback.
+ARGUMENT_CHECKS = {
+    ("kernels.py", "__post_init__"),  # KernelSpec: unknown kernel, bad gamma/degree/coef0
+    ("kernels.py", "default_spec"),
+    ("bundle.py", "half_width"),  # --coverage outside (0, 1)
+    ("settings.py", "_int"),  # KRIDGE_* environment variables
+    ("settings.py", "_float"),
+}
+
+
+def _is_argument_check(exc: BaseException) -> bool:
+    """True when ``exc`` was raised directly by one of :data:`ARGUMENT_CHECKS`."""
+    tb = exc.__traceback__
+    if tb is None:
+        return False
+    while tb.tb_next is not None:
+        tb = tb.tb_next
+    code = tb.tb_frame.f_code
+    return (os.path.basename(code.co_filename), code.co_name) in ARGUMENT_CHECKS
+
+
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
@@ -296,7 +323,9 @@ def main(argv: list[str] | None = None) -> int:
     except (UserError, StoreError) as exc:
         print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_USER
-    except ValueError as exc:  # e.g. bad kernel parameters from KernelSpec
+    except ValueError as exc:
+        if not _is_argument_check(exc):
+            return _bug(args.command)
         print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_USER
     except BrokenPipeError:
@@ -305,11 +334,23 @@ def main(argv: list[str] | None = None) -> int:
         devnull = os.open(os.devnull, os.O_WRONLY)
         os.dup2(devnull, sys.stdout.fileno())
         return 141
-    except OSError as exc:  # unreadable/unwritable paths: one line, no traceback
+    except OSError as exc:  # unreadable/unwritable paths the user named: one line
         print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_FAULT
+        return EXIT_USER
     except KeyboardInterrupt:
         return 130
+    except Exception:
+        return _bug(args.command)
+
+
+def _bug(command: str) -> int:
+    """A fault in kridge itself: the whole traceback, then a line saying so."""
+    import traceback
+
+    traceback.print_exc()
+    print(f"kridge {command}: internal error (a bug in kridge, not in your input); please "
+          "report it with the traceback above", file=sys.stderr)
+    return EXIT_BUG
 
 
 if __name__ == "__main__":

@@ -44,6 +44,7 @@ the whole ridge path through their own decompositions). The manifest says which 
 
 from __future__ import annotations
 
+import logging
 import math
 import os
 import sys
@@ -177,6 +178,7 @@ class Curve:
     ridges: np.ndarray  # (R,)
     score: np.ndarray  # (R,) mean over targets of MSE / Var(y_t); inf where not allowed
     rmse: np.ndarray  # (R, t)
+    failure: str | None = None  # why the candidate could not be evaluated at all
 
     @property
     def best(self) -> int:
@@ -245,10 +247,15 @@ def evaluate(problem: Problem, spec: KernelSpec, ridges: np.ndarray | None = Non
             res = loo_residuals(w, q, problem.y_c, ridges)
         else:
             res, ok = _kfold_residuals(k, problem.y_c, problem.folds, ridges, psd)
-    except (FloatingPointError, np.linalg.LinAlgError, ValueError):
+    except (FloatingPointError, np.linalg.LinAlgError) as exc:
+        # the numerical failures a candidate may meet (non-finite kernel matrix, eigh not
+        # converging): that candidate is unusable; anything else is a bug and propagates
+        logging.getLogger("kridge.tuning").warning(
+            "tuning: %s left out (%s: %s)", spec.describe(), type(exc).__name__, exc)
         ridges = np.asarray(ridges if ridges is not None else [np.nan])
         t = problem.y_c.shape[1]
-        return Curve(spec, ridges, np.full(ridges.size, np.inf), np.full((ridges.size, t), np.nan))
+        return Curve(spec, ridges, np.full(ridges.size, np.inf),
+                     np.full((ridges.size, t), np.nan), failure=f"{type(exc).__name__}: {exc}")
     score, rmse = _score(res, problem.inv_var)
     score[~ok] = np.inf
     problem.evaluated += 1
@@ -555,9 +562,14 @@ def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print,
             curves += got
     runner.close()
     best = min(curves, key=lambda c: c.best_score)
+    failures = [c for c in curves if c.failure]
+    if failures:
+        log(f"tuning: {len(failures)} of {len(curves)} candidates failed numerically "
+            f"(first: {failures[0].spec.describe()}, {failures[0].failure})")
     if not math.isfinite(best.best_score):
-        raise UserError("tuning found no usable parameters (every candidate was numerically "
-                        "singular); give --gamma and --ridge explicitly")
+        raise UserError(f"tuning found no usable parameters ({len(failures)} of {len(curves)} "
+                        "candidates failed numerically, the rest were ill-conditioned at every "
+                        "ridge); give --gamma and --ridge explicitly")
     if opts.ridge is None:
         best = _refine_ridge(problem, best)
     ridge = float(opts.ridge) if opts.ridge is not None else float(best.ridges[best.best])
@@ -612,6 +624,7 @@ def tune(opts, x_tr: np.ndarray, y_tr: np.ndarray, log=print,
         "per_kernel": per_kernel,
         "curves": [c.as_json() for c in curves],
         "decompositions": problem.evaluated,
+        "numerical_failures": len(failures),
         "parallel": runner.how,
         "seconds": round(seconds, 3),
         "summary": summary,

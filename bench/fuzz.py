@@ -1,0 +1,57 @@
+"""Long-form fuzzing: schemathesis against the served /openapi.json with many cases.
+
+Same setup as tests/test_fuzz.py (a real 2-worker gunicorn on a small coating store, every
+check, all phases), once without and once with the admin token; then the access log is
+searched for 5xx answers.
+
+    python bench/fuzz.py [--examples 400] [--seed 7]
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import sys
+import tempfile
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
+
+from service_helpers import Gunicorn  # noqa: E402
+from test_fuzz import TOKEN, run_schemathesis, small_store  # noqa: E402
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--examples", type=int, default=400, help="max examples per operation")
+    ap.add_argument("--seed", type=int, default=7)
+    args = ap.parse_args()
+    ok = True
+    with tempfile.TemporaryDirectory(prefix="kridge-fuzz-") as tmp:
+        root = Path(tmp)
+        store = small_store(root, ROOT / "demo_data" / "coating_line.csv")
+        log = root / "access.log"
+        env = {"KRIDGE_ADMIN_TOKEN": TOKEN, "KRIDGE_MAX_ROWS": "50",
+               "KRIDGE_MAX_BODY_BYTES": str(64 * 1024), "KRIDGE_POLL_SECONDS": "0.1",
+               "PROMETHEUS_MULTIPROC_DIR": str(root / "metrics"), "KRIDGE_ACCESS_LOG": "-",
+               "KRIDGE_TEST_LOG": str(log)}
+        with Gunicorn(store, workers=2, env=env) as g:
+            for who, token in (("anonymous", None), ("admin", TOKEN)):
+                res = run_schemathesis(g.base, root, args.examples, args.seed, token)
+                failed = res["generated"] - res["passed"]
+                print(f"schemathesis {who}: {res['generated']} cases generated, "
+                      f"{failed} failed, exit {res['exit']}")
+                ok &= res["exit"] == 0 and res["clean"] and failed == 0
+                if not res["clean"]:
+                    print(res["output"][-4000:])
+        statuses = [int(m[1]) for m in re.finditer(r'" (\d{3}) ', log.read_text())]
+        errors = sum(s >= 500 for s in statuses)
+        print(f"requests answered: {len(statuses)}, 5xx: {errors}")
+        ok &= errors == 0
+    print("PASS" if ok else "FAIL")
+    return 0 if ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
