@@ -258,7 +258,7 @@ def _tiny_model(rng: np.random.Generator):
 @pytest.mark.slow
 def test_scoring_a_large_csv_streams(tmp_path):
     """kridge predict's scorer holds one chunk at a time: the traced peak while scoring
-    120,000 rows in blocks of 128 KiB (about 2,000 rows) stays far below what the whole file would need."""
+    120,000 rows in 128 KiB blocks (~2,000 rows) stays far below what the whole file would need."""
     from trainer.score_file import score_csv
 
     rng = _rng(8)

@@ -50,7 +50,8 @@ def test_semicolon_and_decimal_comma_equal_their_comma_twin(tmp_path, small_csv)
 def test_wrong_separator_is_explained(tmp_path):
     path = tmp_path / "x.csv"
     path.write_text("a;b;y\n1,5;2;3\n2,5;3;4\n3,5;1;5\n")
-    with pytest.raises(UserError, match=r"line 1 has one column with the separator ',', but the lines contain ';'; give --sep ';'"):
+    with pytest.raises(UserError, match=r"line 1 has one column with the separator ','"
+                                        r", but the lines contain ';'; give --sep ';'"):
         read_table(path, sep=",")
 
 
