@@ -93,7 +93,8 @@ def fuzz_served(tmp_path_factory, demo_csv):
 
 
 def _statuses(log: Path) -> list[int]:
-    return [int(m[1]) for m in re.finditer(r'" (\d{3}) ', log.read_text())]
+    """Statuses from the JSON-lines access log (one object per request)."""
+    return [int(m[1]) for m in re.finditer(r'"status":\s*(\d{3})', log.read_text())]
 
 
 @pytest.mark.parametrize("token", [None, TOKEN], ids=["anonymous", "admin"])
