@@ -74,7 +74,7 @@ def object_array(vdir: Path, outside: Path) -> None:
     shape = np.load(path).shape
     payload = np.empty(shape, dtype=object)
     payload[:] = Canary(outside / "pickle-ran")
-    np.save(path, payload, allow_pickle=True)
+    np.save(path, payload)  # numpy's default writes the objects as a pickle: the forgery
     m = _manifest(vdir)  # a forger who also fixes the checksum
     m["arrays"]["dual"]["sha256"] = hashlib.sha256(path.read_bytes()).hexdigest()
     _write_manifest(vdir, m)
