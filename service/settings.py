@@ -46,14 +46,19 @@ def _int(name: str, default: int) -> int:
     return value
 
 
-def _float(name: str, default: float) -> float:
+def _number(name: str, default: float) -> float:
+    """The variable as a float, or ``default`` when it is unset or empty."""
     raw = os.environ.get(name)
     if not raw:
         return default
     try:
-        value = float(raw)
+        return float(raw)
     except ValueError:
         raise ValueError(f"environment variable {name}={raw!r} is not a number") from None
+
+
+def _float(name: str, default: float) -> float:
+    value = _number(name, default)
     if not value > 0:
         raise ValueError(f"environment variable {name} must be positive, got {value}")
     return value
@@ -61,13 +66,7 @@ def _float(name: str, default: float) -> float:
 
 def _seconds(name: str, default: float) -> float:
     """A duration that may be zero (feature off)."""
-    raw = os.environ.get(name)
-    if not raw:
-        return default
-    try:
-        value = float(raw)
-    except ValueError:
-        raise ValueError(f"environment variable {name}={raw!r} is not a number") from None
+    value = _number(name, default)
     if not 0 <= value < 3600:
         raise ValueError(f"environment variable {name} must be in [0, 3600) s, got {value}")
     return value
