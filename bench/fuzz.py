@@ -19,7 +19,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
 
 from service_helpers import Gunicorn  # noqa: E402
-from test_fuzz import TOKEN, run_schemathesis, small_store  # noqa: E402
+from test_fuzz import TOKEN, run_schemathesis, served_env, small_store  # noqa: E402
 
 
 def main() -> int:
@@ -32,11 +32,7 @@ def main() -> int:
         root = Path(tmp)
         store = small_store(root, ROOT / "demo_data" / "coating_line.csv")
         log = root / "access.log"
-        env = {"KRIDGE_ADMIN_TOKEN": TOKEN, "KRIDGE_MAX_ROWS": "50",
-               "KRIDGE_MAX_BODY_BYTES": str(64 * 1024), "KRIDGE_POLL_SECONDS": "0.1",
-               "PROMETHEUS_MULTIPROC_DIR": str(root / "metrics"), "KRIDGE_ACCESS_LOG": "-",
-               "KRIDGE_TEST_LOG": str(log)}
-        with Gunicorn(store, workers=2, env=env) as g:
+        with Gunicorn(store, workers=2, env=served_env(root, log)) as g:
             for who, token in (("anonymous", None), ("admin", TOKEN)):
                 res = run_schemathesis(g.base, root, args.examples, args.seed, token)
                 failed = res["generated"] - res["passed"]

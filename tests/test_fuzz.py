@@ -78,16 +78,20 @@ def small_store(root: Path, csv_src: Path, versions: int = 2) -> Path:
     return store
 
 
+def served_env(root: Path, log: Path) -> dict[str, str]:
+    """The fuzzed service's settings: admin on, small limits, the access log in ``log``."""
+    return {"KRIDGE_ADMIN_TOKEN": TOKEN, "KRIDGE_MAX_ROWS": "50",
+            "KRIDGE_MAX_BODY_BYTES": str(64 * 1024), "KRIDGE_POLL_SECONDS": "0.1",
+            "PROMETHEUS_MULTIPROC_DIR": str(root / "metrics"), "KRIDGE_ACCESS_LOG": "-",
+            "KRIDGE_TEST_LOG": str(log)}
+
+
 @pytest.fixture(scope="module")
 def fuzz_served(tmp_path_factory, demo_csv):
     root = tmp_path_factory.mktemp("fuzz")
     store = small_store(root, demo_csv)
     log = root / "access.log"
-    env = {"KRIDGE_ADMIN_TOKEN": TOKEN, "KRIDGE_MAX_ROWS": "50",
-           "KRIDGE_MAX_BODY_BYTES": str(64 * 1024), "KRIDGE_POLL_SECONDS": "0.1",
-           "PROMETHEUS_MULTIPROC_DIR": str(root / "metrics"), "KRIDGE_ACCESS_LOG": "-",
-           "KRIDGE_TEST_LOG": str(log)}
-    with Gunicorn(store, workers=2, env=env) as g:
+    with Gunicorn(store, workers=2, env=served_env(root, log)) as g:
         g.root, g.store, g.log_path = root, store, log
         yield g
 
