@@ -101,7 +101,45 @@ def _chunks(src: Source, columns: list[str], block_bytes: int) -> Iterator[tuple
         done += chunk.values.shape[0]
 
 
-def _names(src: Source, targets: list[str], features: list[str] | None,
+def usable_rows(src: Source, chunk: Chunk, features: list[str], time: str | None,
+                first_row: int, drop_incomplete: bool
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(keep, has_target, incomplete-with-target) masks of a chunk of features + targets.
+
+    A row with every target but a missing input (or time) is refused by line and column
+    unless ``drop_incomplete``; rows without a target are simply not kept.
+    """
+    d = len(features)
+    v = chunk.values
+    has_target = ~np.isnan(v[:, d:]).any(axis=1)
+    incomplete = np.isnan(v[:, :d]).any(axis=1)
+    if chunk.time is not None:
+        incomplete |= np.isnan(chunk.time)
+    bad = has_target & incomplete
+    if bad.any() and not drop_incomplete:
+        i = int(np.flatnonzero(bad)[0])
+        cols = features + ([time] if time else [])
+        cells = np.append(v[i, :d], chunk.time[i] if chunk.time is not None else 0.0)
+        j = int(np.flatnonzero(np.isnan(cells))[0])
+        raise UserError(f"{src.where(chunk.block, i, first_row)}, column {cols[j]!r}: missing "
+                        "value (give --drop-incomplete to leave such rows out)")
+    return has_target & ~incomplete, has_target, bad
+
+
+def row_counts(read: int, with_target: int, dropped: int, used: int,
+               targets: list[str]) -> dict:
+    """The account of rows read, with a target, left out and used (manifest, inspect)."""
+    return {
+        "rows_read": read,
+        "rows_with_target": with_target,
+        "rows_dropped_incomplete": dropped,
+        "rows_used": used,
+        "summary": (f"{with_target} of {read} rows have a value for {' and '.join(targets)}"
+                    + (f"; {dropped} of them left out for a missing input" if dropped else "")),
+    }
+
+
+def feature_names(src: Source, targets: list[str], features: list[str] | None,
            time: str | None) -> list[str]:
     """Resolve and check feature names; the default is every other numeric column."""
     for group, names in (("target", targets), ("feature", features or [])):
@@ -139,26 +177,14 @@ def load_training(path, targets: list[str], features: list[str] | None = None,
     ``rows_dropped_incomplete`` and ``rows_used``.
     """
     src = Source(path, sep, decimal)
-    features = _names(src, targets, features, time)
+    features = feature_names(src, targets, features, time)
     d = len(features)
     xs, ys, ts = [], [], []
     read = with_target = dropped = 0
     for chunk in src.chunks(features + targets, time):
         m = chunk.values.shape[0]
         v = chunk.values
-        has_target = ~np.isnan(v[:, d:]).any(axis=1)
-        incomplete = np.isnan(v[:, :d]).any(axis=1)
-        if chunk.time is not None:
-            incomplete |= np.isnan(chunk.time)
-        bad = has_target & incomplete
-        if bad.any() and not drop_incomplete:
-            i = int(np.flatnonzero(bad)[0])
-            cols = features + ([time] if time else [])
-            cells = np.append(v[i, :d], chunk.time[i] if chunk.time is not None else 0.0)
-            j = int(np.flatnonzero(np.isnan(cells))[0])
-            raise UserError(f"{src.where(chunk.block, i, read)}, column {cols[j]!r}: missing "
-                            "value (give --drop-incomplete to leave such rows out)")
-        keep = has_target & ~incomplete
+        keep, has_target, bad = usable_rows(src, chunk, features, time, read, drop_incomplete)
         xs.append(v[keep, :d])
         ys.append(v[keep, d:])
         if chunk.time is not None:
@@ -179,16 +205,8 @@ def load_training(path, targets: list[str], features: list[str] | None = None,
     for j, name in enumerate(targets):
         if np.ptp(y[:, j]) == 0:
             raise UserError(f"{src.path}: target column {name!r} is constant ({y[0, j]:g})")
-    counts = {
-        "rows_read": read,
-        "rows_with_target": with_target,
-        "rows_dropped_incomplete": dropped,
-        "rows_used": n,
-        "summary": (f"{with_target} of {read} rows have a value for "
-                    f"{' and '.join(targets)}"
-                    + (f"; {dropped} of them left out for a missing input" if dropped else "")),
-    }
-    clock = bool(time) and _is_clock(src, time)
+    counts = row_counts(read, with_target, dropped, n, targets)
+    clock = bool(time) and is_clock(src, time)
     return TrainingData(features, list(targets), x, y, t, src.sha256, str(src.path), counts,
                         src.dialect(), time, clock)
 
@@ -201,7 +219,7 @@ def count_target_rows(path, targets: list[str], sep: str | None = None,
     return sum(int((~np.isnan(c.values).any(axis=1)).sum()) for c in src.chunks(targets))
 
 
-def _is_clock(src: Source, time: str) -> bool:
+def is_clock(src: Source, time: str) -> bool:
     """Whether the time column holds timestamps (ISO 8601 or a date type), not numbers."""
     return bool(src.numeric_probe([time]))
 

@@ -26,12 +26,14 @@ import os
 import sys
 import time
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 
-from service.kernels import KERNEL_PARAMS, KernelSpec, default_spec, kernel_block
+from service.kernels import KERNEL_PARAMS, KernelSpec, kernel_block
 from service.store import Store, now_iso
 from trainer import envelope_stats, nystrom
+from trainer.data import feature_names, is_clock, row_counts, usable_rows
 from trainer.errors import UserError
 from trainer.fit import scores
 from trainer.reader import BLOCK_BYTES, Block, Source
@@ -70,16 +72,6 @@ class Plan:
 class BlockResult:
     sums: nystrom.Sums
     kept: dict = field(default_factory=dict)  # part → (x_s, y, t)
-    rows: int = 0
-
-
-def _usable(chunk, d: int, drop: bool) -> np.ndarray:
-    """Rows with every target and (after pass 1's checks) every input."""
-    v = chunk.values
-    keep = ~np.isnan(v[:, d:]).any(axis=1) & ~np.isnan(v[:, :d]).any(axis=1)
-    if chunk.time is not None:
-        keep &= ~np.isnan(chunk.time)
-    return keep
 
 
 def _parts(plan: Plan, block: Block, n_rows: int, t: np.ndarray | None) -> np.ndarray:
@@ -109,7 +101,8 @@ def block_sums(plan: Plan, block: Block, first_row: int) -> BlockResult:
     src = Source(plan.path, plan.sep, plan.decimal)
     chunk = src.read_block(block, plan.features + plan.targets, plan.time, first_row)
     d = len(plan.features)
-    keep = _usable(chunk, d, plan.drop_incomplete)
+    keep = usable_rows(src, chunk, plan.features, plan.time, first_row,
+                       plan.drop_incomplete)[0]
     t_all = chunk.time
     part = _parts(plan, block, keep.size, t_all)[keep]
     v = chunk.values[keep]
@@ -123,7 +116,7 @@ def block_sums(plan: Plan, block: Block, first_row: int) -> BlockResult:
         sel = part == i
         if sel.any():
             kept[name] = (x_s[sel], y[sel], None if t is None else t[sel])
-    return BlockResult(sums, kept, int(keep.sum()))
+    return BlockResult(sums, kept)
 
 
 # -- pass 1 -----------------------------------------------------------------------------------
@@ -193,19 +186,7 @@ def scan(src: Source, features, targets, time_col, drop: bool, seed: int,
     for block in progress(blocks, "scanning"):
         chunk = src.read_block(block, features + targets, time_col, first_row)
         v = chunk.values
-        has_target = ~np.isnan(v[:, d:]).any(axis=1)
-        incomplete = np.isnan(v[:, :d]).any(axis=1)
-        if chunk.time is not None:
-            incomplete |= np.isnan(chunk.time)
-        bad = has_target & incomplete
-        if bad.any() and not drop:
-            i = int(np.flatnonzero(bad)[0])
-            cols = features + ([time_col] if time_col else [])
-            cells = np.append(v[i, :d], chunk.time[i] if chunk.time is not None else 0.0)
-            j = int(np.flatnonzero(np.isnan(cells))[0])
-            raise UserError(f"{src.where(block, i, first_row)}, column {cols[j]!r}: missing "
-                            "value (give --drop-incomplete to leave such rows out)")
-        keep = has_target & ~incomplete
+        keep, has_target, bad = usable_rows(src, chunk, features, time_col, first_row, drop)
         out.blocks.append((block, first_row))
         out.rows_read += v.shape[0]
         out.with_target += int(has_target.sum())
@@ -331,13 +312,16 @@ def run_pass2(plan: Plan, blocks: list, cluster: str | None, progress) -> list[B
 
 def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     """The Nyström job (see the module notes); returns the train summary."""
-    from trainer.train import library_versions, publish_and_summarize, time_text
+    from trainer.train import (
+        explicit_spec,
+        library_versions,
+        publish_and_summarize,
+        time_span,
+    )
     from trainer.tuning import COVERAGE_LEVELS, interval_coverage
 
     src = Source(opts.data, opts.sep, opts.decimal)
-    from trainer.data import _names
-
-    features = _names(src, opts.targets, opts.features, opts.time)
+    features = feature_names(src, opts.targets, opts.features, opts.time)
     targets = list(opts.targets)
     d = len(features)
     progress = _progress(opts.quiet)
@@ -377,12 +361,9 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     rng = np.random.default_rng([opts.seed, 4])
     landmarks = np.ascontiguousarray(tr_s[nystrom.pick_landmarks(tr_s, m, scheme, rng)])
 
-    explicit = opts.kernel != "auto" and opts.ridge is not None and all(
-        getattr(opts, p) is not None for p in ("gamma", "degree", "coef0")
-        if p in KERNEL_PARAMS.get(opts.kernel, ()))
     tuning_info = None
-    if explicit:
-        spec = default_spec(opts.kernel, d, opts.gamma, opts.degree, opts.coef0)
+    spec = explicit_spec(opts, d)
+    if spec is not None:
         ridge = float(opts.ridge)
     else:
         order = np.argsort(sc.sample_time[in_train], kind="stable") if cuts else \
@@ -464,23 +445,11 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     env["ranges"] = {f: {"min": float(sc.lo[j]), "max": float(sc.hi[j])}
                      for j, f in enumerate(features)}
     env["ranges_from"] = f"all {n} training-file rows used"
-    span = None
-    if times is not None:
-        clock = bool(src.numeric_probe([opts.time]))
-        span = {"column": opts.time, "start": time_text(times.min(), clock),
-                "end": time_text(times.max(), clock),
-                "kind": "ISO 8601, UTC" if clock else "number"}
+    span = time_span(opts.time, times, bool(opts.time) and is_clock(src, opts.time))
+    if span:
         env["time_span"] = span
-    counts = {
-        "rows_read": sc.rows_read, "rows_with_target": sc.with_target,
-        "rows_dropped_incomplete": sc.dropped, "rows_used": n,
-        "summary": (f"{sc.with_target} of {sc.rows_read} rows have a value for "
-                    f"{' and '.join(targets)}"
-                    + (f"; {sc.dropped} of them left out for a missing input"
-                       if sc.dropped else "")),
-    }
+    counts = row_counts(sc.rows_read, sc.with_target, sc.dropped, n, targets)
     parts = {"train": int(sums.count), **{p: int(v[0].shape[0]) for p, v in held_rows.items()}}
-    from pathlib import Path
 
     check = None
     if opts.precision == "float32":

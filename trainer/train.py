@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from service.bundle import verify
-from service.kernels import KERNEL_NAMES, default_spec
+from service.kernels import KERNEL_NAMES, KernelSpec, default_spec
 from service.store import Store, now_iso
 from trainer import data, envelope_stats
 from trainer.errors import UserError
@@ -87,13 +87,13 @@ def time_text(value: float, clock: bool) -> str | float:
     return datetime.fromtimestamp(value, tz=timezone.utc).isoformat(timespec="seconds")
 
 
-def time_span(d: data.TrainingData) -> dict | None:
+def time_span(column: str | None, times: np.ndarray | None, clock: bool) -> dict | None:
     """First and last time of the training rows, for the manifest and the envelope."""
-    if d.time is None:
+    if times is None:
         return None
-    return {"column": d.time_column, "start": time_text(d.time.min(), d.time_is_clock),
-            "end": time_text(d.time.max(), d.time_is_clock),
-            "kind": "ISO 8601, UTC" if d.time_is_clock else "number"}
+    return {"column": column, "start": time_text(times.min(), clock),
+            "end": time_text(times.max(), clock),
+            "kind": "ISO 8601, UTC" if clock else "number"}
 
 
 def _per_target(targets: list[str], y: np.ndarray, pred: np.ndarray) -> dict:
@@ -134,17 +134,21 @@ def precision_check(spec, x_train: np.ndarray, dual: np.ndarray, rows_s: np.ndar
     }
 
 
+def explicit_spec(opts: TrainOptions, n_features: int) -> KernelSpec | None:
+    """The kernel when the user gave it, every parameter it reads and the ridge; else None
+    (something is left to tune)."""
+    if opts.kernel == "auto" or opts.ridge is None or any(
+            getattr(opts, p) is None for p in ("gamma", "degree", "coef0")
+            if p in _params_of(opts.kernel)):
+        return None
+    return default_spec(opts.kernel, n_features, opts.gamma, opts.degree, opts.coef0)
+
+
 def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, log,
                       time_ordered: bool = False):
     """Explicit parameters as given; omitted ones tuned by :mod:`trainer.tuning`."""
-    wanted_kernel = opts.kernel
-    explicit = wanted_kernel != "auto" and opts.ridge is not None and all(
-        getattr(opts, p) is not None
-        for p in ("gamma", "degree", "coef0")
-        if p in _params_of(wanted_kernel)
-    )
-    if explicit:
-        spec = default_spec(wanted_kernel, x_tr.shape[1], opts.gamma, opts.degree, opts.coef0)
+    spec = explicit_spec(opts, x_tr.shape[1])
+    if spec is not None:
         return spec, float(opts.ridge), None
     from trainer import tuning
 
@@ -258,7 +262,7 @@ def train(opts: TrainOptions, log=print) -> dict:
         log("warning: float32 changes predictions on training rows by up to "
             f"{max(check['relative_to_target_sd'].values()):.2g} target SD; consider float64")
     env, reference = envelope_stats.envelope_stats(x, final.x_s, features, opts.seed)
-    span = time_span(d)
+    span = time_span(d.time_column, d.time, d.time_is_clock)
     if span:
         env["time_span"] = span
     manifest = {
