@@ -1,6 +1,6 @@
 """The Flask application factory: every route of the service on one screen.
 
-Routes and fields are fixed by the design notes. Handlers stay thin: request validation and
+Routes and fields are fixed by the README's HTTP API. Handlers stay thin: request validation and
 the answer's shape live in :mod:`service.predict`, models in :mod:`service.hub`, the store in
 :mod:`service.store`.
 """

@@ -1,7 +1,7 @@
 """A loaded, verified model version: the object behind ``load_model``.
 
 Prediction in raw units is f(x) = k(s(x), X_s)·α + mean, where s is the stored
-standardization (see the design notes). Arrays are memory-mapped read-only, so processes that
+standardization (README, "Concepts"). Arrays are memory-mapped read-only, so processes that
 load the same version share one copy in the page cache.
 """
 

@@ -1,6 +1,6 @@
 """The model store on a local file system: versions, live pointer, release history.
 
-Layout (fixed by the design notes)::
+Layout (fixed; other tools and scripts depend on it)::
 
     <store>/<model>/versions/<N>/manifest.json
     <store>/<model>/versions/<N>/arrays/<name>.npy

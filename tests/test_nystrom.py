@@ -45,6 +45,8 @@ def _write_csv(path: Path, x: np.ndarray, y: np.ndarray) -> Path:
 
 
 def test_all_rows_as_landmarks_equals_exact_krr():
+    # with L = X: (K² + λK)β = Ky gives Kβ = K(K + λI)⁻¹y, exact KRR's fit (Williams & Seeger
+    # 2001); the exact fit is itself checked against scikit-learn KernelRidge elsewhere
     x, y = _data(300)
     spec, ridge = KernelSpec("rbf", gamma=0.3), 0.5
     exact = fit_exact(x, y, spec, ridge)
@@ -120,6 +122,7 @@ def test_kmeans_plus_plus_spreads_landmarks():
 
 
 def test_streamed_standardization_equals_numpy(tmp_path):
+    # reference: numpy 2.4 mean and std (ddof=0) over the whole array at once
     from trainer.nystrom_train import scan
 
     x, y = _data(5000, d=4, seed=7)

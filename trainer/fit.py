@@ -1,6 +1,6 @@
 """Exact kernel ridge regression fit.
 
-The model (design notes, "Numerics"): features standardized with the training mean and
+The model (README, "Concepts"): features standardized with the training mean and
 population standard deviation; target centered on its training mean; dual coefficients
 
     α = (K + λI)⁻¹ (y − ȳ),
@@ -26,8 +26,8 @@ from trainer.errors import UserError
 RCOND_MIN = 1e-13
 #: From this size on, LAPACK factorizations run on one BLAS thread: the OpenBLAS bundled with
 #: the numpy/scipy wheels here crashes (SIGSEGV) in multi-threaded Cholesky at n ≥ 16,000 on
-#: AVX-512 CPUs (shared/platform-notes.md); 12,000 leaves a margin below the smallest size
-#: seen to crash. One thread costs about 25 % in time at n = 20,000.
+#: AVX-512 CPUs (measured here: README, "Large models on AVX-512 machines"); 12,000 leaves a
+#: margin below the smallest size seen to crash. One thread costs about 25 % in time at n = 20,000.
 SINGLE_THREAD_FROM = 12_000
 
 
