@@ -21,6 +21,7 @@ from service.bundle import verify
 from service.errors import ApiError
 from service.hub import ModelHub
 from service.openapi import build_openapi, describe_served
+from service.pages import pages
 from service.predict import parse_body, predict_response
 from service.schemas import ReleaseRequest
 from service.settings import Settings
@@ -267,4 +268,5 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
             raise ApiError(409, "rollback_refused", str(exc)) from None
         return json_response({"model": name, **rec})
 
+    app.register_blueprint(pages)
     return app

@@ -21,6 +21,7 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
+from datetime import datetime, timezone
 
 from service import drain
 from service.settings import drain_seconds, usable_cores, worker_count
@@ -54,6 +55,8 @@ def on_starting(server) -> None:
     path = os.environ["PROMETHEUS_MULTIPROC_DIR"]
     shutil.rmtree(path, ignore_errors=True)
     os.makedirs(path, exist_ok=True)
+    # workers inherit it: the page says from when its request counts run
+    os.environ["KRIDGE_METRICS_SINCE"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
 def when_ready(server) -> None:

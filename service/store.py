@@ -267,6 +267,11 @@ class Store:
                 good.append((number, rec))
         return good, bad
 
+    def readable_history(self, name: str) -> tuple[list[dict], list[int]]:
+        """Every readable record, oldest first, and the numbers of damaged lines."""
+        good, bad = self._history_lines(name)
+        return [rec for _, rec in good], bad
+
     def history(self, name: str) -> list[dict]:
         """Every release and rollback, oldest first; StoreError naming a damaged line."""
         good, bad = self._history_lines(name)
@@ -298,6 +303,14 @@ class Store:
                 f"(this kridge reads schema {SCHEMA})"
             )
         return manifest
+
+    def report_path(self, name: str, version: int) -> Path | None:
+        """The version's training report (the layout's one report file), None when it has
+        none; name and version are validated, so the path stays inside the store."""
+        if not self.version_dir(name, version).is_dir():
+            raise NotFound(f"model {name!r} has no version {version}")
+        path = self._own_file(name, version, "report.html")
+        return path if path.is_file() else None
 
     def load_arrays(self, name: str, version: int, manifest: dict) -> dict[str, np.ndarray]:
         """Verify every array's sha256, then memory-map it read-only (no pickle, ever)."""
