@@ -137,12 +137,15 @@ class VersionCard:
     has_report: bool = False
     problem: str | None = None
 
+    def score(self, target: str, kind: str) -> Score | None:
+        return next((s for s in self.scores if (s.target, s.kind) == (target, kind)), None)
+
 
 def _intervals(manifest: dict) -> tuple[str, list[str]]:
     """(method in words, measured coverage per nominal level) of a version's intervals.
 
     The coverage lines are the trainer's check on rows neither the fit nor the calibration
-    saw: "90 % nominal: 91.0 % measured on 400 rows" (per target when there are several).
+    saw: "90 %: 91.0 % on 400 rows" (per target when there are several).
     """
     info = manifest.get("intervals")
     if not isinstance(info, dict):
@@ -155,8 +158,8 @@ def _intervals(manifest: dict) -> tuple[str, list[str]]:
             measured = [f"{100 * float(v):.1f} %" for v in level["empirical"]]
             if len(measured) == len(targets) > 1:
                 measured = [f"{t} {m}" for t, m in zip(targets, measured, strict=True)]
-            lines.append(f"{100 * float(level['nominal']):g} % nominal: "
-                         f"{', '.join(measured)} measured on {int(level['rows'])} rows")
+            lines.append(f"{100 * float(level['nominal']):g} %: {', '.join(measured)} "
+                         f"on {int(level['rows'])} rows")
         except (KeyError, TypeError, ValueError):
             continue
     return method, lines
@@ -180,6 +183,17 @@ def versions(store: Store, name: str, live: int | None) -> list[VersionCard]:
             card.problem = safe_message(store, exc)
         cards.append(card)
     return cards
+
+
+def score_keys(cards: list[VersionCard]) -> list[tuple[str, str]]:
+    """(target, kind) of every score some version has, in first-seen order: the rows of
+    the side-by-side table."""
+    keys: list[tuple[str, str]] = []
+    for card in cards:
+        for s in card.scores:
+            if (s.target, s.kind) not in keys:
+                keys.append((s.target, s.kind))
+    return keys
 
 
 @dataclass

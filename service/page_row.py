@@ -70,10 +70,11 @@ def read_numbers(fields: list[FeatureField]) -> dict[str, float] | None:
 class Outcome:
     """What the page shows after a row was tried."""
 
-    values: list[tuple[str, str]] = field(default_factory=list)  # (target, value)
-    intervals: list[tuple[str, str, str]] = field(default_factory=list)  # (target, lo, hi)
+    values: list[tuple[str, str, str | None]] = field(default_factory=list)  # target, value,
+    # interval text
     coverage: str = ""  # the intervals' nominal coverage, "90 %"
     inside: bool = True
+    outside: set[str] = field(default_factory=set)  # features out of their training range
     verdict: list[str] = field(default_factory=list)
     caution: str | None = None
     error: str | None = None
@@ -93,16 +94,22 @@ def try_row(model: Model, row: dict[str, float], coverage: float | None,
     except ApiError as exc:
         return Outcome(error=exc.message)
     result = resp["results"][0]
-    targets = model.targets
-    values = result["value"] if isinstance(result["value"], list) else [result["value"]]
-    out = Outcome(values=[(t, number(v, 5)) for t, v in zip(targets, values, strict=True)])
-    if "interval" in result and coverage is not None:
+    several = len(model.targets) > 1
+    values = result["value"] if several else [result["value"]]
+    bounds = result.get("interval")
+    if bounds is not None and not several:
+        bounds = [bounds]
+    out = Outcome()
+    for j, target in enumerate(model.targets):
+        interval = None
+        if bounds is not None:
+            interval = f"{number(bounds[j][0], 5)} to {number(bounds[j][1], 5)}"
+        out.values.append((target, number(values[j], 5), interval))
+    if bounds is not None and coverage is not None:
         out.coverage = f"{100 * coverage:g} %"
-        bounds = result["interval"] if len(targets) > 1 else [result["interval"]]
-        out.intervals = [(t, number(lo, 5), number(hi, 5))
-                         for t, (lo, hi) in zip(targets, bounds, strict=True)]
     env = result["envelope"]
     out.inside = env["inside"]
+    out.outside = set(env["out_of_range"])
     out.verdict = verdict(env, int(model.neighbours.k))
     out.caution = resp.get("caution")
     return out

@@ -28,7 +28,7 @@ from flask import Blueprint, Response, current_app, render_template, request
 
 from service import metrics
 from service.errors import ApiError
-from service.page_data import overview, safe_message, timeline, versions
+from service.page_data import overview, safe_message, score_keys, timeline, versions
 from service.page_row import DEFAULT_COVERAGE, form_fields, read_numbers, try_row
 from service.store import NotFound, StoreError, check_name, check_version
 
@@ -146,7 +146,8 @@ def model_page(name: str):
     return render_template("model.html", name=name, live=live,
                            since=entry.get("since") if entry else None,
                            served=served.model.version if served and served.model else None,
-                           cards=cards, events=events, history_problem=history_problem)
+                           cards=cards, score_keys=score_keys(cards), events=events,
+                           history_problem=history_problem)
 
 
 @pages.get("/page/<name>/try")
