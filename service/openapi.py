@@ -155,6 +155,18 @@ def build_openapi(max_rows: int, max_body: int, models: dict[str, ServedModel] |
             "summary": "Versions with created time, metrics and live marker",
             "operationId": "listVersions", "parameters": [name],
             "responses": {"200": _resp("Versions", "VersionsResponse"), "404": err["404"]}}},
+        "/models/{name}/versions/{version}/report": {"get": {
+            "summary": "A version's training report (read-only HTML from the store)",
+            "description": "The report file the trainer wrote beside the version's manifest; "
+                           "the request names a model and a version, never a file.",
+            "operationId": "versionReport",
+            "parameters": [name, {"name": "version", "in": "path", "required": True,
+                                  "schema": {"type": "integer", "minimum": 1,
+                                             "maximum": s.MAX_VERSION}}],
+            "responses": {"200": {"description": "The report", "content": {
+                "text/html": {"schema": {"type": "string"}}}},
+                "404": _resp("No such model or version, or the version has no report",
+                             "ErrorResponse")}}},
         "/models/{name}/predict": {"post": {
             "summary": "Predict with the live version (or a pinned one)",
             "description": predict_text,

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import subprocess
 import sys
 import time
@@ -292,6 +293,10 @@ def test_demo_smoke(tmp_path):
     assert "interval" in answers[0]["results"][0]
     assert all(not res["envelope"]["inside"] for res in answers[1]["results"])
     assert "curl -s -X POST" in r.stdout
+    first = r.stdout.splitlines()[0]  # the page's address comes first
+    assert first.startswith("Page for people: http://127.0.0.1:") and first.endswith("3/3)")
+    assert re.search(r"page http://127\.0\.0\.1:\d+/: HTTP 200, coating listed: True",
+                     r.stdout)
 
 
 def test_gunicorn_config_loads_before_numpy():

@@ -102,6 +102,10 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         raise UserError(f"cannot listen on {bind}: address in use or invalid; "
                         "pass --bind 127.0.0.1:PORT")
 
+    base = f"http://{bind}"
+    # the first line: where a person looks once the service is up
+    print(f"Page for people: {base}/  (models, versions, history, try a row; up after 3/3)",
+          flush=True)
     with tempfile.TemporaryDirectory() as tmp:
         csv_path = Path(tmp) / "coating_line.csv"
         gen.write_csv(csv_path, gen.generate())
@@ -114,7 +118,6 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
     for t, m in summary["metrics"].get("holdout", {}).items():
         print(f"    holdout {t}: RMSE {m['rmse']:.3g}, R² {m['r2']:.3f}")
 
-    base = f"http://{bind}"
     env = serve_env(bind, 2, store)
     proc = subprocess.Popen(gunicorn_argv(bind, 2), env=env)
     try:
@@ -122,6 +125,7 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         inside = {"rows": [gen.TYPICAL_ROW], "coverage": 0.9}
         outside = {"rows": [gen.EMPTY_REGION_ROW, dict(gen.TYPICAL_ROW, oven_temp_c=245.0)]}
         print(f"3/3 serving on {base} (store {store})\n")
+        print(f"# in a browser: {base}/  and  {base}/page/{MODEL}\n")
         for label, body in (("a typical operating point", inside),
                             ("the never-run region and a too-hot oven", outside)):
             print(f"# {label}:")
@@ -131,6 +135,9 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         print("# Predictions outside the training envelope are extrapolations: check them "
               "against site procedures before acting on them.\n")
         if smoke:
+            with urllib.request.urlopen(base + "/", timeout=10) as r:
+                print(f"page {base}/: HTTP {r.status}, {MODEL} listed: "
+                      f"{f'>{MODEL}</a>' in r.read().decode()}")
             for body in (inside, outside):
                 status, answer = post(base, f"/models/{MODEL}/predict", body)
                 print(f"HTTP {status}: {json.dumps(answer)}")
