@@ -28,7 +28,9 @@ from service.settings import drain_seconds, usable_cores, worker_count
 
 bind = os.environ.get("KRIDGE_BIND") or "127.0.0.1:8000"
 workers = worker_count()
-worker_class = "sync"
+# the sync worker, closing connections that send nothing for a few seconds (browsers open
+# some ahead of need): see service/sync_worker.py
+worker_class = "service.sync_worker.PromptSyncWorker"
 timeout = 60
 graceful_timeout = 10
 keepalive = 5

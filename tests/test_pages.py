@@ -82,10 +82,6 @@ def driver(tmp_path_factory):
         opts.add_argument(flag)
     opts.add_argument(f"--user-data-dir={tmp_path_factory.mktemp('chromium-profile')}")
     opts.add_argument("--window-size=1280,900")
-    # No speculative connections: gunicorn's sync workers each hold one connection until its
-    # request arrives, and a socket the browser opens "just in case" would keep a worker
-    # from this module's own requests (see the README's note on browsers and sync workers).
-    opts.add_experimental_option("prefs", {"net.network_prediction_options": 2})
     d = webdriver.Chrome(service=Service(CHROMEDRIVER), options=opts)
     d.set_page_load_timeout(30)
     ARTIFACTS.mkdir(exist_ok=True)
