@@ -181,6 +181,10 @@ def test_report_link_opens_the_training_report(site, driver):
     report = site.get("/models/coating/versions/2/report")
     assert report.status_code == 200 and report.headers["Content-Type"].startswith("text/html")
     assert report.content == (site.store / "coating/versions/2/report.html").read_bytes()
+    doc = site.get("/openapi.json").json()  # the file route is part of the API document
+    op = doc["paths"]["/models/{name}/versions/{version}/report"]["get"]
+    assert set(op["responses"]) == {"200", "404"} and "text/html" in op["responses"]["200"][
+        "content"]
 
 
 @browser
