@@ -124,7 +124,10 @@ def test_report_route_serves_only_the_versions_own_report(client, tmp_path):
     assert str(tmp_path) not in r.get_data(True)
 
 
-def test_row_counts_follow_predictions(client):
+def test_row_counts_follow_predictions(client, monkeypatch):
+    # this process counts in its own registry (importing the gunicorn config elsewhere in the
+    # suite sets a multiprocess directory that this process never wrote to)
+    monkeypatch.delenv("PROMETHEUS_MULTIPROC_DIR", raising=False)
     before = row_counts().get("coating")
     rows = [dict(zip(FEATURES, [190, 20, 60, 50, 600], strict=True)),
             dict(zip(FEATURES, [400, 20, 60, 50, 600], strict=True))]
