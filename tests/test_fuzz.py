@@ -28,8 +28,8 @@ from hypothesis import strategies as st
 from service_helpers import Gunicorn
 
 from service import load_model
+from service.answers import parse_body, predict_response
 from service.errors import ApiError
-from service.predict import parse_body, predict_response
 from trainer.data import read_table
 from trainer.errors import UserError
 from trainer.train import TrainOptions, train

@@ -19,8 +19,8 @@ import numpy as np
 import pytest
 
 from service import load_model
-from service.bundle import verify
 from service.kernels import KernelSpec
+from service.model import verify
 from service.store import SCHEMA, NotFound, Store, StoreError, check_name, check_version
 from trainer.cli import main
 from trainer.data import read_table, split_columns
