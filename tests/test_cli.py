@@ -10,29 +10,21 @@ import csv
 import io
 import json
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
+from cli_helpers import KRIDGE, run_cli
 
 from service import load_model
 from service.kernels import KernelSpec
 from service.store import Store
-from trainer.cli import main
 from trainer.data import read_table, split_columns
 from trainer.fit import fit_exact
 
-KRIDGE = str(Path(sys.executable).with_name("kridge"))
 FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "viscosity_mpas"]
 RBF = ["--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report"]
 
-
-
-def run_cli(capsys, *argv):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 def tree(root: Path) -> set[str]:
@@ -240,7 +232,7 @@ def test_console_script_reports_without_traceback(tmp_path, store_dir):
     # The real entry point, in its own process: exit status, one stderr line, empty store.
     data = tmp_path / "in.csv"
     data.write_text(lines_with("4,abc,7.5"))
-    cmd = [KRIDGE, "train", str(data), *_train_args([])]
+    cmd = [*KRIDGE, "train", str(data), *_train_args([])]
     proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2
     assert proc.stderr.strip().splitlines() == [

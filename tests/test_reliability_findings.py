@@ -16,6 +16,7 @@ import time
 
 import numpy as np
 import pytest
+from cli_helpers import run_cli
 from jsonschema import Draft202012Validator
 from make_coating_data import TYPICAL_ROW
 from service_helpers import Gunicorn
@@ -24,7 +25,7 @@ from service import live_models, model
 from service.live_models import LiveModels
 from service.store import Conflict, Store, StoreError
 from trainer import tuning
-from trainer.cli import EXIT_BUG, main
+from trainer.cli import EXIT_BUG
 from trainer.train import TrainOptions, train
 
 TOKEN = "findings-token-5d1c"
@@ -36,12 +37,6 @@ def publish(root, csv, name="coat", ridge=0.5) -> int:
                         kernel="rbf", gamma=0.2, ridge=ridge, store=str(root), quiet=True,
                         report=False)
     return train(opts, log=lambda *a, **k: None)["version"]
-
-
-def run_cli(capsys, *argv):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 @pytest.fixture(scope="module")

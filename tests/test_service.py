@@ -7,10 +7,10 @@ import os
 import subprocess
 import sys
 import time
-from pathlib import Path
 
 import numpy as np
 import pytest
+from cli_helpers import KRIDGE, kridge
 from make_coating_data import EMPTY_REGION_ROW, TYPICAL_ROW
 from prometheus_client.parser import text_string_to_metric_families
 from service_helpers import Gunicorn
@@ -21,14 +21,8 @@ from service.settings import Settings
 from service.store import Store
 
 TOKEN = "test-token-7f3a"
-KRIDGE = [sys.executable, "-m", "trainer.cli"]
 TRAIN_ARGS = ["--target", "hardness_s,gloss_gu", "--gamma", "0.2", "--ridge", "0.1",
               "--no-report", "--quiet"]
-
-
-def kridge(*args: str, store: Path) -> subprocess.CompletedProcess:
-    return subprocess.run([*KRIDGE, *args, "--store", str(store)], capture_output=True,
-                          text=True, timeout=300)
 
 
 @pytest.fixture(scope="module")
