@@ -19,7 +19,7 @@ import pytest
 from cli_helpers import run_cli
 from jsonschema import Draft202012Validator
 from make_coating_data import TYPICAL_ROW
-from service_helpers import Gunicorn
+from service_helpers import Gunicorn, holds_for
 
 from service import live_models, model
 from service.live_models import LiveModels
@@ -220,10 +220,12 @@ def test_admin_release_repairs_a_garbled_pointer(served):
     saved = live.read_bytes()
     live.write_bytes(b'{"version": ')
     try:
-        time.sleep(0.5)
-        # the workers keep serving the last good version meanwhile
-        r = served.post("/models/coat/predict", json={"rows": [TYPICAL_ROW]})
-        assert r.status_code == 200 and r.headers["X-Model-Version"] == "1"
+        # the workers keep serving the last good version while they read the damaged pointer
+        def serves_v1() -> bool:
+            r = served.post("/models/coat/predict", json={"rows": [TYPICAL_ROW]})
+            return r.status_code == 200 and r.headers["X-Model-Version"] == "1"
+
+        assert holds_for(serves_v1, 0.5, "serving version 1") >= 1
         back = served.post("/models/coat/rollback", headers=AUTH)
         assert back.status_code == 409 and "live now is unknown" in back.text
         assert str(served.store) not in back.text
