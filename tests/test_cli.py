@@ -122,6 +122,26 @@ def test_predict_columns_and_numbers_equal_load_model(trained, small_csv, tmp_pa
     assert float(rows[10][8]) > 1.0
 
 
+def test_predict_counts_extrapolations_on_stderr(trained, small_csv, tmp_path, capsys):
+    """The count of rows outside the envelope, with the caution, whatever the output goes to."""
+    data = tmp_path / "new.csv"
+    lines = small_csv.read_text().splitlines()
+    far = ["400,10,60,50,600,100,80", "-50,10,60,50,600,100,80", "150,99,60,50,600,100,80"]
+    data.write_text("\n".join(lines[:8] + far) + "\n")
+    code, out, err = run_cli(capsys, "predict", "coat", data)
+    assert code == 0, err
+    _, rows = read_output(out)
+    outside = sum(r[7] == "false" for r in rows)
+    assert outside >= 3  # the three far rows at least
+    assert f"{outside} of 10 rows outside the training envelope: extrapolations" in err
+    assert "site procedures" in err and "qualified" in err
+
+    out_file = tmp_path / "pred.csv"
+    code, out, err = run_cli(capsys, "predict", "coat", data, "--out", out_file)
+    assert code == 0 and out == ""
+    assert f"{outside} of 10 rows outside the training envelope: extrapolations" in err
+
+
 def test_predict_with_coverage_adds_bounds(trained, small_csv, tmp_path, capsys):
     out_file = tmp_path / "pred.csv"
     code, out, err = run_cli(capsys, "predict", "coat", small_csv, "--coverage", "0.9",
