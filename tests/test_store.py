@@ -1,6 +1,6 @@
 """The model store: round trip, faults, no pickle, concurrent publishing, release/rollback.
 
-Reference for the layout and rules: service/store.py and the README, "Concepts". The fault
+Reference for the layout and rules: service/store/ and the README, "Concepts". The fault
 tests damage a published version the way a disk, a crash or a hostile file would, then check that
 ``kridge verify`` names the fault and that ``load_model`` refuses it, while the neighbouring
 version stays usable.
