@@ -23,7 +23,7 @@ KEY = "kridge"
 class AppState:
     settings: Settings
     store: Store
-    live: LiveModels
+    models: LiveModels
     _openapi: dict[tuple, bytes] = field(default_factory=dict, repr=False)
 
     @classmethod
@@ -31,16 +31,16 @@ class AppState:
         """Open the store and load what is live; ``watch`` keeps following live.json on a
         daemon thread (off in unit tests, which refresh once)."""
         store = Store(settings.store)
-        live = LiveModels(store, settings.pinned_cache, on_load_failure=count_load_failure)
+        models = LiveModels(store, settings.pinned_cache, on_load_failure=count_load_failure)
         if watch:
-            live.start(settings.poll_seconds)
+            models.start(settings.poll_seconds)
         else:
-            live.refresh()
-        return cls(settings, store, live)
+            models.refresh()
+        return cls(settings, store, models)
 
     def openapi_doc(self) -> bytes:
         """The document for the models served now (rebuilt when what is served changes)."""
-        served = describe_served(self.store, self.live)
+        served = describe_served(self.store, self.models)
         key = tuple(sorted(served.items()))
         if key not in self._openapi:
             self._openapi.clear()

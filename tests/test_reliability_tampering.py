@@ -12,7 +12,6 @@ from __future__ import annotations
 import hashlib
 import json
 import shutil
-import time
 from pathlib import Path
 
 import numpy as np
@@ -154,14 +153,13 @@ def test_forgery_is_refused_at_verify_release_and_load(forged, kind, capsys):
 def every_worker_serving(g, metrics_dir: Path, workers: int, row=TYPICAL_ROW,
                          model="coat", seconds: float = 60.0) -> None:
     """Predict until every worker has answered one (each writes its own metrics file)."""
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
+    def all_answered() -> bool:
         r = g.post(f"/models/{model}/predict", json={"rows": [row]})
         pids = {p.stem.rsplit("_", 1)[-1] for p in metrics_dir.glob("counter_*.db")}
-        if r.status_code == 200 and len(pids) >= workers:
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"not every one of {workers} workers came up serving {model}")
+        return r.status_code == 200 and len(pids) >= workers
+
+    wait_for(all_answered, seconds, f"every one of {workers} workers serving {model}",
+             interval=0.05)
 
 
 def test_service_keeps_serving_counts_and_logs_every_refusal(forged, tmp_path):

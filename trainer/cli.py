@@ -14,6 +14,7 @@ import os
 import sys
 
 from service.model import PRECISIONS, verifier
+from service.settings import DEFAULT_STORE
 from service.store import NotFound, Store, StoreError, check_version
 from trainer.errors import UserError
 
@@ -204,7 +205,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     def add(name, func, help_):
         sp = sub.add_parser(name, help=help_, description=help_)
-        sp.add_argument("--store", help="store root (default: $KRIDGE_STORE or ./kridge-store)")
+        sp.add_argument("--store", help=f"store root (default: $KRIDGE_STORE or ./{DEFAULT_STORE})")
         sp.set_defaults(func=func)
         return sp
 

@@ -23,7 +23,7 @@ def healthz():
 
 @bp.get("/readyz")
 def readyz():
-    ready, served, problems = state().live.readiness()
+    ready, served, problems = state().models.readiness()
     draining = drain.active()  # after SIGTERM: the balancer should send no more
     ready = ready and not draining
     return json_response({"ready": ready, "draining": draining, "models": served,
@@ -46,7 +46,7 @@ def list_models():
 @bp.get("/models/<name>")
 def describe(name: str):
     try:
-        m = state().live.live(model_name(name))
+        m = state().models.live(model_name(name))
     except StoreError as exc:
         raise not_found(name, exc) from None
     man = m.manifest

@@ -26,16 +26,16 @@ def sends_json(environ: dict) -> bool:
 
 def chosen_model(name: str) -> Model:
     """The live version, or the one ``?version=N`` pins."""
-    live = state().live
+    models = state().models
     # request.args parses even an empty query string; most calls have none
     pinned = request.args.get("version") if request.environ.get("QUERY_STRING") else None
     try:
         if pinned is None:
-            return live.live(name)
+            return models.live(name)
         if not pinned.isdigit() or int(pinned) < 1:
             raise ApiError(400, "invalid_version",
                            f"version must be a positive integer, got {pinned!r}")
-        return live.pinned_version(name, int(pinned))
+        return models.pinned_version(name, int(pinned))
     except NotFound as exc:
         raise not_found(name, exc) from None
     except StoreError as exc:
