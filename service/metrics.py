@@ -63,6 +63,22 @@ def for_version(model: str, version: str) -> VersionSeries:
     )
 
 
+def count_request(labels: tuple[str, str], results: list[dict], compute: float,
+                  seconds: float) -> None:
+    """Count one answered predict request of model version ``labels``: its rows, the rows
+    flagged out of range or novel, the compute time and the whole request time (seconds)."""
+    series = for_version(*labels)
+    series.rows.inc(len(results))
+    out_of_range = sum(1 for r in results if r["envelope"]["out_of_range"])
+    novel = sum(1 for r in results if r["envelope"]["novel"])
+    if out_of_range:
+        series.out_of_range.inc(out_of_range)
+    if novel:
+        series.novel.inc(novel)
+    series.compute.observe(compute)
+    series.request.observe(seconds)
+
+
 #: When this process started counting; under gunicorn the master's start (see
 #: :func:`counted_since`).
 _IMPORTED = datetime.now(timezone.utc).isoformat(timespec="seconds")

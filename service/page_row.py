@@ -1,8 +1,8 @@
 """"Try a row" on a model's page: form fields, the prediction, and its verdict in words.
 
 The prediction goes through the predict route's own code: the form's numbers become the same
-JSON body a client would send, :func:`service.predict.parse_body` validates it and
-:func:`service.predict.predict_response` computes value, interval and envelope. Only the
+JSON body a client would send, :func:`service.answers.parse_body` validates it and
+:func:`service.answers.predict_response` computes value, interval and envelope. Only the
 wording is added here. Nothing is counted in the request metrics: a person trying rows is not
 traffic from the systems the overview's figures describe.
 """
@@ -15,11 +15,11 @@ from dataclasses import dataclass, field
 
 import orjson
 
-from service.bundle import Model
+from service.answers import parse_body, predict_response
 from service.envelope import NOVELTY_QUANTILE
 from service.errors import ApiError
+from service.model import Model
 from service.page_data import number
-from service.predict import parse_body, predict_response
 
 #: Coverage offered in the form when the version stores interval calibration.
 DEFAULT_COVERAGE = 0.9

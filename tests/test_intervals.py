@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from sklearn.datasets import make_friedman1
 
-from service.bundle import load_model
+from service.model import load_model
 from trainer.train import TrainOptions, train
 from trainer.tuning import conformal_half_width, interval_coverage
 

@@ -11,11 +11,11 @@ from pathlib import Path
 import orjson
 import pytest
 
+from service.answers import parse_body
 from service.app import create_app
 from service.errors import ApiError
 from service.metrics import counted_since, row_counts
 from service.page_row import ordinal, verdict
-from service.predict import parse_body
 from service.settings import Settings
 from trainer.train import TrainOptions, train
 

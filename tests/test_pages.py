@@ -12,14 +12,12 @@ tests are skipped when Chromium is not installed.
 from __future__ import annotations
 
 import os
-import subprocess
-import sys
-import time
 from pathlib import Path
 
 import html5lib
 import pytest
-from service_helpers import Gunicorn
+from cli_helpers import kridge
+from service_helpers import Gunicorn, metric_count, metric_samples, wait_for
 
 from service.page_data import number
 
@@ -29,7 +27,6 @@ CHROMEDRIVER = "/usr/bin/chromedriver"
 FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
          "--disable-background-networking", "--disable-component-update", "--disable-sync")
 ARTIFACTS = Path(__file__).resolve().parent / "artifacts"
-KRIDGE = str(Path(sys.executable).with_name("kridge"))
 FEATURES = "oven_temp_c,line_speed_m_min,wet_film_um,humidity_pct,viscosity_mpas"
 SECRET = "page-test-token-7c1f0e"
 TYPICAL = {"oven_temp_c": 190.0, "line_speed_m_min": 22.0, "wet_film_um": 60.0,
@@ -42,10 +39,9 @@ if not have_browser and os.environ.get("CI"):
 browser = pytest.mark.skipif(not have_browser, reason="Chromium and chromedriver not installed")
 
 
-def kridge(*args: str) -> subprocess.CompletedProcess:
-    r = subprocess.run([KRIDGE, *args], capture_output=True, text=True, timeout=300)
+def run(*args, store: Path) -> None:
+    r = kridge(*args, store=store)
     assert r.returncode == 0, r.stderr
-    return r
 
 
 @pytest.fixture(scope="module")
@@ -56,9 +52,9 @@ def site(tmp_path_factory, demo_csv):
     csv.write_text("\n".join(demo_csv.read_text().splitlines()[:301]) + "\n")
     store = root / "store"
     for ridge in ("0.1", "0.3"):
-        kridge("train", str(csv), "--target", "hardness_s,gloss_gu", "--name", "coating",
-               "--features", FEATURES, "--kernel", "rbf", "--gamma", "0.2", "--ridge", ridge,
-               "--release", "--store", str(store))
+        run("train", csv, "--target", "hardness_s,gloss_gu", "--name", "coating",
+            "--features", FEATURES, "--kernel", "rbf", "--gamma", "0.2", "--ridge", ridge,
+            "--release", store=store)
     env = {"KRIDGE_POLL_SECONDS": "0.1", "KRIDGE_ADMIN_TOKEN": SECRET,
            "PROMETHEUS_MULTIPROC_DIR": str(root / "metrics")}
     with Gunicorn(store, workers=2, env=env) as g:
@@ -106,17 +102,6 @@ def screenshot(driver, name: str, width: int) -> None:
     viewport(driver, width)
 
 
-def wait_for(check, seconds: float = 10.0, what: str = "condition"):
-    deadline = time.monotonic() + seconds
-    while True:
-        value = check()
-        if value:
-            return value
-        if time.monotonic() > deadline:
-            raise AssertionError(f"no {what} within {seconds:.0f} s")
-        time.sleep(0.2)
-
-
 def page_urls(site) -> list[str]:
     return ["/", "/page/coating", "/page/coating/try", "/page/coating/try?version=1",
             "/page/coating/try?f0=300&f1=22&f2=60&f3=45&f4=600&coverage=0.9",
@@ -148,14 +133,14 @@ def test_rollback_on_the_command_line_shows_on_reload(site, driver):
     driver.get(site.base + "/page/coating")
     live_column = driver.find_element("css selector", "table.compare thead th.is-live")
     assert live_column.text == "v2 live"
-    kridge("rollback", "coating", "--store", str(site.store))
+    run("rollback", "coating", store=site.store)
 
     def shows_v1():
         driver.get(site.base + "/page/coating")
         return driver.find_element("css selector", "table.compare thead th.is-live").text == (
             "v1 live")
 
-    wait_for(shows_v1, what="v1 marked live after the rollback")
+    wait_for(shows_v1, seconds=10, what="v1 marked live after the rollback", interval=0.2)
     lead = driver.find_element("css selector", ".lead").text
     assert lead.startswith("Live: v1 since")
     timeline = driver.find_elements("css selector", ".timeline li")
@@ -165,7 +150,8 @@ def test_rollback_on_the_command_line_shows_on_reload(site, driver):
     screenshot(driver, "pages-model", 1280)
     screenshot(driver, "pages-model", 390)
     # the service answers with v1 too: the page and the JSON route agree
-    wait_for(lambda: site.get("/models/coating").json()["version"] == 1, what="served v1")
+    wait_for(lambda: site.get("/models/coating").json()["version"] == 1, seconds=10,
+             what="served v1")
     driver.get(site.base + "/")
     assert "v1" in driver.find_element("xpath", "//tr[th/a[text()='coating']]").text
 
@@ -175,7 +161,8 @@ def test_report_link_opens_the_training_report(site, driver):
     viewport(driver, 1280)
     driver.get(site.base + "/page/coating")
     driver.find_element("link text", "Training report (v2)").click()
-    wait_for(lambda: "/versions/2/report" in driver.current_url, what="report page")
+    wait_for(lambda: "/versions/2/report" in driver.current_url, seconds=10,
+             what="the report page", interval=0.2)
     assert "training report" in driver.title
     assert driver.find_elements("css selector", "img[src^='data:image/png']")
     report = site.get("/models/coating/versions/2/report")
@@ -200,7 +187,7 @@ def test_try_a_row_out_of_range_names_the_feature(site, driver):
     field.send_keys("300")
     driver.find_element("css selector", "form.row-form button[type='submit']").click()
     result = wait_for(lambda: driver.find_elements("css selector", "section.outcome"),
-                      what="a result")[0].text
+                      seconds=10, what="a result", interval=0.2)[0].text
     assert "Out of range: oven_temp_c = 300 is above its training range" in result
     assert "novelty" in result and "Caution." in result and "extrapolation" in result
     # the same row through the JSON predict route gives the same value and interval
@@ -278,8 +265,8 @@ def test_pages_show_no_store_path_or_secret_and_unknown_is_404(site):
 
 
 def _rows_predicted(site) -> float:
-    return sum(float(line.rsplit(" ", 1)[1]) for line in site.get("/metrics").text.splitlines()
-               if line.startswith("kridge_rows_predicted_total{"))
+    samples = metric_samples(site.get("/metrics").text)
+    return metric_count(samples, "kridge_rows_predicted_total", model="coating")
 
 
 def test_pages_change_nothing(site):

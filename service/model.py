@@ -8,6 +8,7 @@ load the same version share one copy in the page cache.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 
@@ -15,6 +16,24 @@ from service import envelope
 from service.engine import Engine
 from service.kernels import KernelSpec
 from service.store import Store, StoreError
+
+#: Serving precisions a manifest (and ``kridge train --precision``) may name.
+PRECISIONS = ("float64", "float32")
+
+
+def check_precision(precision: str) -> str:
+    """``precision`` if it is one of :data:`PRECISIONS`, else ValueError."""
+    if precision not in PRECISIONS:
+        raise ValueError(f"precision must be float64 or float32, not {precision!r}")
+    return precision
+
+
+def check_coverage(coverage: float) -> float:
+    """``coverage`` if it lies strictly between 0 and 1, else ValueError (a coverage of 0
+    would make the quantile rank 0, which silently indexes the largest residual)."""
+    if not 0 < coverage < 1:
+        raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
+    return coverage
 
 
 class Model:
@@ -39,9 +58,7 @@ class Model:
         self.intercept = np.asarray(manifest["intercept"], dtype=np.float64)
         kern = manifest["kernel"]
         self.spec = KernelSpec.from_params(kern["name"], kern.get("params", {}))
-        precision = manifest.get("precision", "float64")
-        if precision not in ("float64", "float32"):
-            raise ValueError(f"unknown precision {precision!r}")
+        precision = check_precision(manifest.get("precision", "float64"))
         self.engine = Engine(self.spec, arrays["x_train"], arrays["dual"], dtype=precision)
         env = manifest["envelope"]
         self.lo = np.array([env["ranges"][f]["min"] for f in self.features])
@@ -69,6 +86,15 @@ class Model:
         """(m, t) predictions for rows already standardized (service path, no re-checks)."""
         return self.engine.predict(xs) + self.intercept
 
+    def score(self, x: np.ndarray) -> tuple[np.ndarray, list[dict]]:
+        """Raw rows ``x`` (m, d), already checked, → ((m, t) predictions, envelope per row).
+
+        The one path from rows to answers: standardize once, predict and judge the envelope
+        on the same standardized rows (the service and ``kridge predict`` both use it).
+        """
+        xs = self.standardize(x)
+        return self.predict_standardized(xs), self.envelope(x, xs)
+
     def novelty(self, xs: np.ndarray) -> np.ndarray:
         """Novelty score of standardized rows: k-th neighbour distance / τ (see envelope)."""
         return self.neighbours.distances(xs) / self.novelty_tau
@@ -93,8 +119,7 @@ class Model:
         """
         if self.residuals is None:
             raise StoreError(f"{self.name} v{self.version} stores no interval calibration")
-        if not 0 < coverage < 1:  # rank 0 would silently index the largest residual
-            raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
+        check_coverage(coverage)
         c = self.residuals.shape[0]
         rank = math.ceil((c + 1) * coverage)
         if rank > c:
@@ -149,4 +174,14 @@ def verify(store, name: str, version: int) -> Model:
     return model
 
 
-__all__ = ["Model", "load_model", "verify"]
+def verifier(store, name: str) -> Callable[[int], None]:
+    """The check a release or rollback of ``name`` runs first: :func:`verify` the version."""
+
+    def check(version: int) -> None:
+        verify(store, name, version)
+
+    return check
+
+
+__all__ = ["PRECISIONS", "Model", "check_coverage", "check_precision", "load_model", "verify",
+           "verifier"]

@@ -1,8 +1,8 @@
 """Pages for people: the overview, a model's page, "try a row", and the training report.
 
-One blueprint (``pages``), registered by the application factory next to the JSON routes. It
-reads what the factory keeps in ``app.extensions["kridge"]`` (store, loaded models, settings)
-and never changes anything: every route is a GET, release and rollback stay on the command
+One blueprint, registered by the application factory next to the JSON routes. It reads the
+worker's state (store, live models, settings) through :func:`service.app_state.state` and
+never changes anything: every route is a GET, release and rollback stay on the command
 line and the admin routes. Pages are server-rendered HTML (Jinja templates in
 ``service/templates``, one stylesheet in ``service/static``), need no JavaScript and load
 nothing from the network; the Content-Security-Policy header says so to the browser too.
@@ -23,10 +23,12 @@ from __future__ import annotations
 import functools
 import logging
 from datetime import datetime, timezone
+from pathlib import Path
 
-from flask import Blueprint, Response, current_app, render_template, request
+from flask import Blueprint, Response, render_template, request
 
 from service import metrics
+from service.app_state import state
 from service.errors import ApiError
 from service.page_data import overview, safe_message, score_keys, timeline, versions
 from service.page_row import DEFAULT_COVERAGE, form_fields, read_numbers, try_row
@@ -34,8 +36,10 @@ from service.store import NotFound, StoreError, check_name, check_version
 
 log = logging.getLogger("kridge.pages")
 
-pages = Blueprint("pages", __name__, template_folder="templates", static_folder="static",
-                  static_url_path="/page/static")
+#: Templates and stylesheet live in service/templates and service/static (package data).
+bp = Blueprint("pages", __name__, root_path=str(Path(__file__).resolve().parents[1]),
+               template_folder="templates", static_folder="static",
+               static_url_path="/page/static")
 
 #: Pages load their stylesheet from this service and nothing else; no script runs.
 PAGE_POLICY = ("default-src 'none'; style-src 'self'; img-src 'self'; form-action 'self'; "
@@ -46,12 +50,12 @@ REPORT_POLICY = ("default-src 'none'; style-src 'unsafe-inline'; img-src data:; 
 
 
 def _services():
-    """(store, hub, settings) as the factory keeps them."""
-    ext = current_app.extensions["kridge"]
-    return ext["store"], ext["hub"], ext["settings"]
+    """(store, live models, settings) of this worker."""
+    st = state()
+    return st.store, st.models, st.settings
 
 
-@pages.after_request
+@bp.after_request
 def _headers(response: Response) -> Response:
     if request.endpoint != "pages.report":
         response.headers.setdefault("Content-Security-Policy", PAGE_POLICY)
@@ -62,7 +66,7 @@ def _headers(response: Response) -> Response:
     return response
 
 
-@pages.app_template_filter("when")
+@bp.app_template_filter("when")
 def when(iso: str | None) -> str:
     """``2026-12-02T12:41:03+00:00`` → ``2026-12-02 12:41:03 UTC``."""
     try:
@@ -74,7 +78,7 @@ def when(iso: str | None) -> str:
     return moment.strftime("%Y-%m-%d %H:%M:%S") + (" UTC" if moment.tzinfo else "")
 
 
-@pages.app_template_filter("ago")
+@bp.app_template_filter("ago")
 def ago(iso: str | None) -> str:
     """How long ago, coarse: ``3 min ago``, ``5 h ago``, ``12 days ago``."""
     try:
@@ -125,24 +129,24 @@ def page_view(view):
     return wrapped
 
 
-@pages.get("/")
+@bp.get("/")
 @page_view
 def overview_page():
-    store, hub, _ = _services()
-    _, served, _ = hub.readiness()
+    store, models, _ = _services()
+    _, served, _ = models.readiness()
     lines = overview(store, served, metrics.row_counts())
     return render_template("overview.html", models=lines, counted_since=metrics.counted_since())
 
 
-@pages.get("/page/<name>")
+@bp.get("/page/<name>")
 @page_view
 def model_page(name: str):
-    store, hub, _ = _services()
+    store, models, _ = _services()
     entry = store.live(name)
     live = entry["version"] if entry else None
     cards = versions(store, name, live)
     events, history_problem = timeline(store, name)
-    served = hub.slots.get(name)
+    served = models.slots.get(name)
     return render_template("model.html", name=name, live=live,
                            since=entry.get("since") if entry else None,
                            served=served.model.version if served and served.model else None,
@@ -150,19 +154,19 @@ def model_page(name: str):
                            history_problem=history_problem)
 
 
-@pages.get("/page/<name>/try")
+@bp.get("/page/<name>/try")
 @page_view
 def try_page(name: str):
-    store, hub, settings = _services()
+    store, models, settings = _services()
     live = store.live_version(name)
     asked = request.args.get("version")
     if asked is not None:
         try:
-            model = hub.pinned_version(name, check_version(asked))
+            model = models.pinned_version(name, check_version(asked))
         except StoreError as exc:
             return _problem_page(f"Model {name}", safe_message(store, exc), 404)
     else:
-        model = hub.live(name)
+        model = models.live(name)
     fields = form_fields(model, request.args)
     outcome, coverage_error = None, None
     coverage_text = request.args.get("coverage", f"{DEFAULT_COVERAGE:g}").strip()
@@ -181,7 +185,7 @@ def try_page(name: str):
                            coverage_text=coverage_text, coverage_error=coverage_error)
 
 
-@pages.get("/models/<name>/versions/<version>/report")
+@bp.get("/models/<name>/versions/<version>/report")
 def report(name: str, version: str):
     """The version's training report, read-only; JSON 404 like the other /models routes."""
     store, _, _ = _services()
