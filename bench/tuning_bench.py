@@ -26,8 +26,11 @@ from sklearn.kernel_ridge import KernelRidge
 from sklearn.model_selection import GridSearchCV
 
 from service.kernels import KernelSpec
-from trainer import tuning
 from trainer.fit import Standardizer, fit_exact
+from trainer.tuning import WIDTH_GRID_SIZE
+from trainer.validation import RIDGE_GRID_SIZE, RIDGE_RELATIVE, Problem
+from trainer.widths import width_range
+from trainer.workers import Runner
 
 
 def main() -> None:
@@ -43,12 +46,13 @@ def main() -> None:
     t0 = time.perf_counter()
     scaler = Standardizer.fit(x)
     x_s = scaler(x)
-    lo, hi = tuning.width_range("rbf", x_s)
-    gammas = np.geomspace(lo, hi, tuning.WIDTH_GRID_SIZE)
-    ridges = np.geomspace(*tuning.RIDGE_RELATIVE, tuning.RIDGE_GRID_SIZE)  # mean diag K = 1
-    problem = tuning.Problem(x_s, y2 - y2.mean(axis=0), 1.0 / y2.var(axis=0), None)
-    runner = tuning._make_runner(len(x), True, len(gammas), print)
+    lo, hi = width_range("rbf", x_s)
+    gammas = np.geomspace(lo, hi, WIDTH_GRID_SIZE)
+    ridges = np.geomspace(*RIDGE_RELATIVE, RIDGE_GRID_SIZE)  # mean diag K = 1
+    problem = Problem(x_s, y2 - y2.mean(axis=0), 1.0 / y2.var(axis=0), None)
+    runner = Runner(len(x), True, len(gammas))
     curves = runner(problem, [KernelSpec("rbf", gamma=float(g)) for g in gammas])
+    runner.close()
     best = min(curves, key=lambda c: c.best_score)
     ours_ridge = float(best.ridges[best.best])
     ours_fit = fit_exact(x, y2, best.spec, ours_ridge)

@@ -9,8 +9,8 @@ import pytest
 from sklearn.datasets import make_friedman1
 
 from service.bundle import load_model
+from trainer.calibration import conformal_half_width, interval_coverage
 from trainer.train import TrainOptions, train
-from trainer.tuning import conformal_half_width, interval_coverage
 
 
 def test_conformal_rank_rule():

@@ -6,6 +6,7 @@ import base64
 import re
 
 import pytest
+from make_coating_data import TYPICAL_ROW
 
 from trainer.cli import main
 
@@ -40,7 +41,8 @@ def test_train_auto_writes_self_contained_report(csv_300, store_dir, capsys):
 
 
 def test_inspect_prints_headline_numbers(csv_300, store_dir, capsys):
-    main(["train", str(csv_300), "--target", "hardness_s", "--name", "c", "--quiet"])
+    main(["train", str(csv_300), "--target", "hardness_s", "--features", ",".join(TYPICAL_ROW),
+          "--name", "c", "--quiet"])
     capsys.readouterr()
     assert main(["inspect", "c"]) == 0
     out = capsys.readouterr().out

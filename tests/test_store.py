@@ -264,6 +264,7 @@ def test_good_names_pass():
 
 def test_four_trainers_publishing_at_once_get_four_versions(store_dir, small_csv):
     cmd = [KRIDGE, "train", str(small_csv), "--target", "hardness_s", "--name", "same",
+           "--features", "oven_temp_c,line_speed_m_min,wet_film_um,humidity_pct,viscosity_mpas",
            "--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report", "--quiet",
            "--store", str(store_dir)]
     procs = [subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
