@@ -9,6 +9,7 @@ import pytest
 from sklearn.datasets import make_friedman1
 
 from service.bundle import load_model
+from service.intervals import conformal_rank, half_width, largest_coverage
 from trainer.calibration import conformal_half_width, interval_coverage
 from trainer.train import TrainOptions, train
 
@@ -48,6 +49,33 @@ def test_friedman1_fresh_point_coverage(tmp_path, store_dir):
         hw = float(model.half_width(coverage)[0])
         got = float(np.mean(np.abs(y_new - pred) <= hw))
         assert abs(got - coverage) <= 0.03, (coverage, got)
-    # the manifest describes the method and the stored calibration is the final model's LOO
-    assert "leave-one-out" in model.manifest["intervals"]["method"]
-    assert model.manifest["intervals"]["calibration_rows"] == 1500
+    # the manifest names the method — the jackknife, without a finite-sample guarantee — and
+    # the stored calibration is the final model's LOO
+    intervals = model.manifest["intervals"]
+    assert intervals["name"] == "jackknife" and intervals["method"].startswith("jackknife:")
+    assert "leave-one-out" in intervals["method"] and "No finite-sample" in intervals["method"]
+    assert "split-conformal" not in intervals["method"]
+    assert intervals["calibration_rows"] == 1500
+    assert intervals["holdout_coverage"] is None  # --holdout 0: nothing to measure it on
+
+
+def test_one_quantile_rule_for_trainer_loaded_model_and_document():
+    # the rank ⌈(c+1)·coverage⌉ (Lei et al., JASA 2018) computed once, in service.intervals
+    rng = np.random.default_rng(0)
+    res = np.abs(rng.standard_normal((37, 2)))
+    srt = np.sort(res, axis=0)
+    for coverage in (0.05, 0.5, 0.9, 0.95, 0.97):
+        rank = int(np.ceil(38 * coverage))
+        want = srt[rank - 1] if rank <= 37 else np.full(2, np.inf)
+        np.testing.assert_array_equal(conformal_half_width(res, coverage), want)
+        np.testing.assert_array_equal(half_width(srt, coverage), want)
+    # the largest coverage the document offers: c / (c + 1), rounded down until the rank
+    # computation agrees; anything clearly above it has no finite half-width
+    for c in (1, 9, 37, 1500, 8000):
+        top = largest_coverage(c)
+        assert conformal_rank(c, top) == c
+        assert 0 <= c / (c + 1) - top < 1e-15
+        assert conformal_rank(c, (c + 0.5) / (c + 1)) is None
+    for bad in (0.0, 1.0, -0.1, 1.5, float("nan")):
+        with pytest.raises(ValueError, match="coverage"):
+            conformal_rank(10, bad)

@@ -69,7 +69,7 @@ def test_round_trip_predictions_are_identical(store_dir, small_csv):
     assert isinstance(arrays["x_train"], np.memmap)  # memory-mapped, shared between workers
 
 
-def test_manifest_holds_what_the_design_requires(store_dir, small_csv):
+def test_manifest_holds_what_the_readme_describes(store_dir, small_csv):
     version = publish(store_dir, small_csv)
     m = json.loads((vdir(store_dir, version) / "manifest.json").read_text())
     for key in ("schema", "model", "version", "created", "features", "targets", "kernel",
