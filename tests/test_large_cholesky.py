@@ -79,6 +79,10 @@ def _clean_env() -> dict[str, str]:
     return {k: v for k, v in os.environ.items() if not k.startswith(prefixes)}
 
 
+def _blas_threads() -> list[int]:
+    return [lib["num_threads"] for lib in threadpool_info() if lib["user_api"] == "blas"]
+
+
 def test_the_guard_covers_the_crashing_size_at_the_factorization(monkeypatch):
     # At the smallest size measured to crash, and from the threshold on, the factorization
     # inside solve_dual runs on one BLAS thread; below the threshold it keeps the library's
@@ -91,15 +95,13 @@ def test_the_guard_covers_the_crashing_size_at_the_factorization(monkeypatch):
     from trainer.fit import solve_dual
 
     with safe_lapack(N_CRASHED):
-        assert all(lib["num_threads"] == 1 for lib in threadpool_info()
-                   if lib["user_api"] == "blas")
-    default = [lib["num_threads"] for lib in threadpool_info() if lib["user_api"] == "blas"]
+        assert set(_blas_threads()) == {1}
+    default = _blas_threads()
     seen = []
     factor = trainer.fit.sla.cho_factor
 
-    def spy(*args, **kwargs):
-        seen.append([lib["num_threads"] for lib in threadpool_info()
-                     if lib["user_api"] == "blas"])
+    def spy(*args, **kwargs):  # BLAS thread counts at the moment the factorization runs
+        seen.append(_blas_threads())
         return factor(*args, **kwargs)
 
     monkeypatch.setattr(trainer.fit.sla, "cho_factor", spy)
