@@ -4,7 +4,8 @@ A prediction interval is ŷ ± h, where h is a quantile of c absolute calibratio
 |r| — of rows the fitted model never saw (split conformal) or of its exact leave-one-out
 fits (the jackknife); the manifest says which. The quantile is the ⌈(c + 1)·coverage⌉-th
 smallest |r|, the finite-sample rank of split conformal prediction (Lei, G'Sell, Rinaldo,
-Tibshirani & Wasserman, "Distribution-free predictive inference for regression", JASA 2018).
+Tibshirani & Wasserman, "Distribution-free predictive inference for regression", JASA 2018;
+cited from memory).
 When that rank exceeds c the interval is unbounded: c residuals cannot support the coverage.
 """
 

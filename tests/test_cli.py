@@ -147,7 +147,8 @@ def test_predict_with_coverage_adds_bounds(trained, small_csv, tmp_path, capsys)
     model = load_model(trained, "coat")
     half = model.half_width(0.9)
     # reference: split-conformal quantile, the ⌈(c+1)·0.9⌉-th smallest |residual| (Lei,
-    # G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018), here of the exact LOO residuals
+    # G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018, from memory), here of the exact LOO
+    # residuals
     _, x, y = split_columns(read_table(small_csv), ["hardness_s", "gloss_gu"], FEATURES)
     loo = fit_exact(x, y, KernelSpec("rbf", gamma=0.2), 0.5, want_loo=True).loo_residuals
     rank = int(np.ceil(61 * 0.9))

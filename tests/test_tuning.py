@@ -46,8 +46,9 @@ def test_closed_form_loo_equals_brute_force(spec):
 
 def test_diabetes_holdout_rmse_close_to_gridsearch():
     # reference: diabetes data bundled with scikit-learn (Efron, Hastie, Johnstone &
-    # Tibshirani 2004, "Least Angle Regression"); scikit-learn 1.9 GridSearchCV(KernelRidge,
-    # cv=5) over the same 8 widths of the γ range and 15 ridge values, on the same split
+    # Tibshirani 2004, "Least Angle Regression", from memory); scikit-learn 1.9
+    # GridSearchCV(KernelRidge, cv=5) over the same 8 widths of the γ range and 15 ridge
+    # values, on the same split
     x, y = load_diabetes(return_X_y=True)
     tr, ho = split_holdout(len(x), 0.2, 0)
     spec, ridge, info = _tune(x[tr], y[tr, None], _quiet)

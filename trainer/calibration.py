@@ -9,11 +9,11 @@ Every interval is ŷ ± h with h a quantile of absolute calibration residuals
   final model. This is the **jackknife**. It has no finite-sample coverage guarantee — the
   leave-one-out models are not the served model, and the served model has seen every row
   (Barber, Candès, Ramdas & Tibshirani, "Predictive inference with the jackknife+",
-  Ann. Statist. 2021) — so its coverage is *measured*: the training-part model's own
+  Ann. Statist. 2021, from memory) — so its coverage is *measured*: the training-part model's own
   jackknife half-widths are applied to its predictions on the holdout, rows that neither
   the fit nor the calibration saw, and the manifest stores what came out;
 * larger models and ``--time`` models: the holdout residuals of the model fitted on the
-  training part (split conformal, Lei et al., JASA 2018). The finite-sample guarantee holds
+  training part (split conformal, Lei et al., JASA 2018, from memory). The guarantee holds
   for that model; the served model is refitted on all rows, holdout included, so for it
   the guarantee is approximate.
 

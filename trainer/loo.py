@@ -8,11 +8,12 @@ of row i (standardization and intercept held fixed) is the PRESS identity
     r_i(λ) = (y_i − ŷ_i) / (1 − H_ii)
 
 (Allen 1974; Golub, Heath & Wahba, "Generalized cross-validation as a method for choosing a
-good ridge parameter", Technometrics 1979). With g_k = λ / (λ_k + λ) both parts are written
-without cancellation, since y − ŷ = Q diag(g) Qᵀ y and 1 − H_ii = Σ_k Q_ik² g_k (the rows of Q
-have unit norm). One O(n³) decomposition thus buys the whole ridge path at O(n²) per λ, done
-as two matrix products over all ridge values at once. k-fold validation residuals follow the
-same way from one decomposition per fold (:func:`kfold_residuals`).
+good ridge parameter", Technometrics 1979; citations from memory). With g_k = λ / (λ_k + λ)
+both parts are written without cancellation, since y − ŷ = Q diag(g) Qᵀ y and
+1 − H_ii = Σ_k Q_ik² g_k (the rows of Q have unit norm). One O(n³) decomposition thus buys
+the whole ridge path at O(n²) per λ, done as two matrix products over all ridge values at
+once. k-fold validation residuals follow the same way from one decomposition per fold
+(:func:`kfold_residuals`).
 """
 
 from __future__ import annotations
