@@ -16,12 +16,18 @@ import math
 import numpy as np
 
 
+def check_coverage(coverage: float) -> float:
+    """``coverage`` if it lies strictly between 0 and 1, else ValueError (a coverage of 0
+    would make the quantile rank 0, which silently indexes the largest residual)."""
+    if not 0 < coverage < 1:
+        raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
+    return coverage
+
+
 def conformal_rank(c: int, coverage: float) -> int | None:
     """1-based rank ⌈(c + 1)·coverage⌉ of the half-width among c sorted residuals; None when
     it exceeds c (infinite half-width). Raises ValueError unless 0 < coverage < 1."""
-    if not 0 < coverage < 1:  # rank 0 would silently index the largest residual
-        raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
-    rank = math.ceil((c + 1) * coverage)
+    rank = math.ceil((c + 1) * check_coverage(coverage))
     return rank if rank <= c else None
 
 

@@ -62,6 +62,22 @@ def for_version(model: str, version: str) -> VersionSeries:
     )
 
 
+def count_request(labels: tuple[str, str], results: list[dict], compute: float,
+                  seconds: float) -> None:
+    """Count one answered predict request of model version ``labels``: its rows, the rows
+    flagged out of range or novel, the compute time and the whole request time (seconds)."""
+    series = for_version(*labels)
+    series.rows.inc(len(results))
+    out_of_range = sum(1 for r in results if r["envelope"]["out_of_range"])
+    novel = sum(1 for r in results if r["envelope"]["novel"])
+    if out_of_range:
+        series.out_of_range.inc(out_of_range)
+    if novel:
+        series.novel.inc(novel)
+    series.compute.observe(compute)
+    series.request.observe(seconds)
+
+
 def exposition() -> tuple[bytes, str]:
     """The text exposition, aggregated across processes when in multiprocess mode."""
     if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):

@@ -33,10 +33,10 @@ class ServedModel:
     calibration: int | None  # calibration residuals behind ``coverage``; None: no intervals
 
 
-def describe_served(store, hub) -> dict[str, ServedModel]:
-    """Every model the hub serves, with the versions that share the live one's shape."""
+def describe_served(store, live) -> dict[str, ServedModel]:
+    """Every model this worker serves, with the versions that share the live one's shape."""
     out = {}
-    for name, slot in list(hub.slots.items()):
+    for name, slot in list(live.slots.items()):
         model = slot.model
         if model is None:
             continue

@@ -10,29 +10,21 @@ import csv
 import io
 import json
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
+from cli_helpers import KRIDGE, run_cli
 
 from service import load_model
 from service.kernels import KernelSpec
 from service.store import Store
-from trainer.cli import main
 from trainer.data import read_table, split_columns
 from trainer.fit import fit_exact
 
-KRIDGE = str(Path(sys.executable).with_name("kridge"))
 FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "viscosity_mpas"]
 RBF = ["--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report"]
 
-
-
-def run_cli(capsys, *argv):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 def tree(root: Path) -> set[str]:
@@ -131,6 +123,26 @@ def test_predict_columns_and_numbers_equal_load_model(trained, small_csv, tmp_pa
     assert [r[7] for r in rows[:10]] == ["true"] * 10
     assert rows[10][7] == "false" and rows[10][9] == "oven_temp_c"
     assert float(rows[10][8]) > 1.0
+
+
+def test_predict_counts_extrapolations_on_stderr(trained, small_csv, tmp_path, capsys):
+    """The count of rows outside the envelope, with the caution, whatever the output goes to."""
+    data = tmp_path / "new.csv"
+    lines = small_csv.read_text().splitlines()
+    far = ["400,10,60,50,600,100,80", "-50,10,60,50,600,100,80", "150,99,60,50,600,100,80"]
+    data.write_text("\n".join(lines[:8] + far) + "\n")
+    code, out, err = run_cli(capsys, "predict", "coat", data)
+    assert code == 0, err
+    _, rows = read_output(out)
+    outside = sum(r[7] == "false" for r in rows)
+    assert outside >= 3  # the three far rows at least
+    assert f"{outside} of 10 rows outside the training envelope: extrapolations" in err
+    assert "site procedures" in err and "qualified" in err
+
+    out_file = tmp_path / "pred.csv"
+    code, out, err = run_cli(capsys, "predict", "coat", data, "--out", out_file)
+    assert code == 0 and out == ""
+    assert f"{outside} of 10 rows outside the training envelope: extrapolations" in err
 
 
 def test_predict_with_coverage_adds_bounds(trained, small_csv, tmp_path, capsys):
@@ -244,7 +256,7 @@ def test_console_script_reports_without_traceback(tmp_path, store_dir):
     # The real entry point, in its own process: exit status, one stderr line, empty store.
     data = tmp_path / "in.csv"
     data.write_text(lines_with("4,abc,7.5"))
-    cmd = [KRIDGE, "train", str(data), *_train_args([])]
+    cmd = [*KRIDGE, "train", str(data), *_train_args([])]
     proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2
     assert proc.stderr.strip().splitlines() == [

@@ -4,18 +4,17 @@ from __future__ import annotations
 
 import signal
 import subprocess
-import sys
 import time
 
 import numpy as np
 import pytest
 import requests
+from cli_helpers import KRIDGE
 from service_helpers import free_port
 
 from service import load_model
 from trainer.cli import main
 
-KRIDGE = [sys.executable, "-m", "trainer.cli"]
 ARGS = ["--target", "hardness_s", "--gamma", "0.2", "--ridge", "0.5", "--no-report", "--quiet",
         "--features", "oven_temp_c,line_speed_m_min,wet_film_um,humidity_pct,viscosity_mpas"]
 

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from sklearn.datasets import make_friedman1
 
-from service.bundle import load_model
 from service.intervals import conformal_rank, half_width, largest_coverage
+from service.model import load_model
 from trainer.calibration import conformal_half_width, interval_coverage
 from trainer.train import TrainOptions, train
 

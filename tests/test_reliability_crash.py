@@ -24,7 +24,7 @@ from pathlib import Path
 
 import pytest
 
-from service.bundle import verify
+from service.model import verify
 from service.store import Store
 from trainer.cli import main
 

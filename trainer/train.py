@@ -20,8 +20,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.bundle import verify
 from service.kernels import KERNEL_NAMES, KernelSpec, default_spec
+from service.model import verifier
 from service.store import Store
 from trainer import calibration, cautions, data, envelope_stats
 from trainer.errors import UserError
@@ -255,7 +255,7 @@ def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arra
     version = store.publish(opts.name, manifest, arrays, extra_files=extra)
     live = False
     if opts.release:
-        store.release(opts.name, version, check=lambda v: verify(store, opts.name, v))
+        store.release(opts.name, version, check=verifier(store, opts.name))
         live = True
     return {
         "name": opts.name,

@@ -7,12 +7,25 @@ load the same version share one copy in the page cache.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
 from service import envelope, intervals
 from service.engine import Engine
+from service.intervals import check_coverage
 from service.kernels import KernelSpec
 from service.store import Store, StoreError
+
+#: Serving precisions a manifest (and ``kridge train --precision``) may name.
+PRECISIONS = ("float64", "float32")
+
+
+def check_precision(precision: str) -> str:
+    """``precision`` if it is one of :data:`PRECISIONS`, else ValueError."""
+    if precision not in PRECISIONS:
+        raise ValueError(f"precision must be float64 or float32, not {precision!r}")
+    return precision
 
 
 class Model:
@@ -37,9 +50,7 @@ class Model:
         self.intercept = np.asarray(manifest["intercept"], dtype=np.float64)
         kern = manifest["kernel"]
         self.spec = KernelSpec.from_params(kern["name"], kern.get("params", {}))
-        precision = manifest.get("precision", "float64")
-        if precision not in ("float64", "float32"):
-            raise ValueError(f"unknown precision {precision!r}")
+        precision = check_precision(manifest.get("precision", "float64"))
         self.engine = Engine(self.spec, arrays["x_train"], arrays["dual"], dtype=precision)
         env = manifest["envelope"]
         self.lo = np.array([env["ranges"][f]["min"] for f in self.features])
@@ -66,6 +77,15 @@ class Model:
     def predict_standardized(self, xs: np.ndarray) -> np.ndarray:
         """(m, t) predictions for rows already standardized (service path, no re-checks)."""
         return self.engine.predict(xs) + self.intercept
+
+    def score(self, x: np.ndarray) -> tuple[np.ndarray, list[dict]]:
+        """Raw rows ``x`` (m, d), already checked, → ((m, t) predictions, envelope per row).
+
+        The one path from rows to answers: standardize once, predict and judge the envelope
+        on the same standardized rows (the service and ``kridge predict`` both use it).
+        """
+        xs = self.standardize(x)
+        return self.predict_standardized(xs), self.envelope(x, xs)
 
     def novelty(self, xs: np.ndarray) -> np.ndarray:
         """Novelty score of standardized rows: k-th neighbour distance / τ (see envelope)."""
@@ -140,4 +160,14 @@ def verify(store, name: str, version: int) -> Model:
     return model
 
 
-__all__ = ["Model", "load_model", "verify"]
+def verifier(store, name: str) -> Callable[[int], None]:
+    """The check a release or rollback of ``name`` runs first: :func:`verify` the version."""
+
+    def check(version: int) -> None:
+        verify(store, name, version)
+
+    return check
+
+
+__all__ = ["PRECISIONS", "Model", "check_coverage", "check_precision", "load_model", "verify",
+           "verifier"]
