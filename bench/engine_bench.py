@@ -15,7 +15,7 @@ polynomial) done in place on one cache-sized block, plus the matrix products Q·
 cache-sized tiles, on as many threads as the engine uses for that batch. Peak memory is the
 tracemalloc peak of one call (numpy reports its buffers to tracemalloc).
 
-Targets (issue #5): rbf ≥ 10× scikit-learn at 1 row and ≥ 4× at 1,000 rows; within 2× of
+Targets: rbf ≥ 10× scikit-learn at 1 row and ≥ 4× at 1,000 rows; within 2× of
 the floor at 1,000 rows. The machine is shared, so ratios move between runs.
 """
 
@@ -210,7 +210,7 @@ def fmt(seconds: float) -> str:
 
 
 def check(results: dict) -> None:
-    """Print each issue #5 target with its measured value."""
+    """Print each target with its measured value."""
     targets = [
         ("rbf, 1 row: ≥ 10× scikit-learn", ("rbf", 1), lambda o, s, f: s / o, 10.0, True),
         ("rbf, 1,000 rows: ≥ 4× scikit-learn", ("rbf", 1000), lambda o, s, f: s / o, 4.0, True),

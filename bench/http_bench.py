@@ -6,7 +6,7 @@ Servers run one at a time, in alternating rounds; the best round of each is repo
 
     python bench/http_bench.py [--seconds 8] [--rounds 2] [--clients 4] [--workers 2]
 
-Targets (issue #3): ours ≥ 0.85 × (a) in requests/s with p99 ≤ 1.5 × (a)'s; (b) far below.
+Targets: ours ≥ 0.85 × (a) in requests/s with p99 ≤ 1.5 × (a)'s; (b) far below.
 """
 
 from __future__ import annotations

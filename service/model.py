@@ -7,13 +7,13 @@ load the same version share one copy in the page cache.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable
 
 import numpy as np
 
-from service import envelope
+from service import envelope, intervals
 from service.engine import Engine
+from service.intervals import check_coverage
 from service.kernels import KernelSpec
 from service.store import Store, StoreError
 
@@ -26,14 +26,6 @@ def check_precision(precision: str) -> str:
     if precision not in PRECISIONS:
         raise ValueError(f"precision must be float64 or float32, not {precision!r}")
     return precision
-
-
-def check_coverage(coverage: float) -> float:
-    """``coverage`` if it lies strictly between 0 and 1, else ValueError (a coverage of 0
-    would make the quantile rank 0, which silently indexes the largest residual)."""
-    if not 0 < coverage < 1:
-        raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
-    return coverage
 
 
 class Model:
@@ -113,18 +105,12 @@ class Model:
     def half_width(self, coverage: float) -> np.ndarray:
         """Interval half-width per target for a nominal ``coverage``.
 
-        The ⌈(c+1)·coverage⌉-th smallest of the c calibration residuals |r|, the finite-sample
-        split-conformal quantile (Lei, G'Sell, Rinaldo, Tibshirani & Wasserman, "Distribution-free
-        predictive inference for regression", JASA 2018). Infinite when c is too small.
+        The ⌈(c+1)·coverage⌉-th smallest of the c calibration residuals |r|
+        (:mod:`service.intervals`). Infinite when c is too small.
         """
         if self.residuals is None:
             raise StoreError(f"{self.name} v{self.version} stores no interval calibration")
-        check_coverage(coverage)
-        c = self.residuals.shape[0]
-        rank = math.ceil((c + 1) * coverage)
-        if rank > c:
-            return np.full(self.residuals.shape[1], np.inf)
-        return np.asarray(self.residuals[rank - 1], dtype=np.float64)
+        return intervals.half_width(self.residuals, coverage)
 
     def _check(self, x) -> np.ndarray:
         x = np.asarray(x, dtype=np.float64)

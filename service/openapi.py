@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 from pydantic.json_schema import models_json_schema
 
 from service import schemas as s
+from service.intervals import largest_coverage
 from service.store import NAME_RE, StoreError
 
 REF = "#/components/schemas/{model}"
@@ -31,16 +31,6 @@ class ServedModel:
     features: tuple[str, ...]
     versions: tuple[int, ...]  # versions taking the same rows and coverage as the live one
     calibration: int | None  # calibration residuals behind ``coverage``; None: no intervals
-
-
-def largest_coverage(c: int) -> float:
-    """Largest coverage with a finite split-conformal quantile from ``c`` residuals: the
-    ⌈(c + 1)·coverage⌉-th smallest must exist, so coverage ≤ c / (c + 1) (rounded down to
-    a float for which the service's own rank computation agrees)."""
-    cov = c / (c + 1)
-    while math.ceil((c + 1) * cov) > c:
-        cov = math.nextafter(cov, 0.0)
-    return cov
 
 
 def describe_served(store, live) -> dict[str, ServedModel]:

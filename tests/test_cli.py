@@ -44,6 +44,7 @@ def trained(store_dir, small_csv, capsys):
 
 def test_train_prints_a_summary(store_dir, small_csv, capsys):
     code, out, err = run_cli(capsys, "train", small_csv, "--target", "hardness_s",
+                             "--features", ",".join(FEATURES),
                              "--name", "coat", "--kernel", "polynomial", "--gamma", "0.2",
                              "--degree", "2", "--coef0", "1", "--ridge", "0.5", "--no-report")
     assert code == 0, err
@@ -51,28 +52,30 @@ def test_train_prints_a_summary(store_dir, small_csv, capsys):
     assert lines["model"].startswith("coat v1") and "not live" in lines["model"]
     assert lines["rows"] == "60 (60 of 60 rows have a value for hardness_s)"
     assert lines["method"].startswith("exact")
-    assert lines["features"].startswith("6: oven_temp_c")  # all columns but the target
+    assert lines["features"] == "5: " + ", ".join(FEATURES)
     assert lines["kernel"] == "polynomial(gamma=0.2, degree=2, coef0=1)"
     assert lines["ridge"] == "0.5"
     assert lines["time"].endswith(" s")
     assert "RMSE" in lines["holdout"] and "RMSE" in lines["LOO"]
 
-    code, out, _ = run_cli(capsys, "train", small_csv, "--target", "hardness_s", "--name",
-                           "coat", "--features", ",".join(FEATURES), "--release", *RBF)
+    # without --features: every column but the targets (both lab results are targets here)
+    code, out, _ = run_cli(capsys, "train", small_csv, "--target", "hardness_s,gloss_gu",
+                           "--name", "coat", "--release", *RBF)
     assert code == 0
-    assert "coat v2  (live)" in out and "5: oven_temp_c" in out
+    assert "coat v2  (live)" in out and "5: " + ", ".join(FEATURES) in out
 
 
 def test_train_json_summary(store_dir, small_csv, capsys):
     code, out, _ = run_cli(capsys, "train", small_csv, "--target", "hardness_s",
-                           "--name", "coat", "--json", *RBF)
+                           "--features", ",".join(FEATURES), "--name", "coat", "--json", *RBF)
     assert code == 0
     summary = json.loads(out)
     assert summary["version"] == 1 and summary["live"] is False and summary["rows"] == 60
 
 
 def test_versions_marks_the_live_one(trained, small_csv, capsys):
-    run_cli(capsys, "train", small_csv, "--target", "hardness_s", "--name", "coat", *RBF)
+    run_cli(capsys, "train", small_csv, "--target", "hardness_s", "--features",
+            ",".join(FEATURES), "--name", "coat", *RBF)
     code, out, _ = run_cli(capsys, "versions", "coat")
     assert code == 0
     rows = [line.split() for line in out.strip().splitlines()[2:]]
@@ -156,7 +159,8 @@ def test_predict_with_coverage_adds_bounds(trained, small_csv, tmp_path, capsys)
     model = load_model(trained, "coat")
     half = model.half_width(0.9)
     # reference: split-conformal quantile, the ⌈(c+1)·0.9⌉-th smallest |residual| (Lei,
-    # G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018), here of the exact LOO residuals
+    # G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018, from memory), here of the exact LOO
+    # residuals
     _, x, y = split_columns(read_table(small_csv), ["hardness_s", "gloss_gu"], FEATURES)
     loo = fit_exact(x, y, KernelSpec("rbf", gamma=0.2), 0.5, want_loo=True).loo_residuals
     rank = int(np.ceil(61 * 0.9))

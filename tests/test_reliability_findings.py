@@ -24,7 +24,7 @@ from service_helpers import Gunicorn, holds_for
 from service import live_models, model
 from service.live_models import LiveModels
 from service.store import Conflict, Store, StoreError
-from trainer import tuning
+from trainer import candidates, tuning
 from trainer.cli import EXIT_BUG
 from trainer.train import TrainOptions, train
 
@@ -355,22 +355,22 @@ def _tuning_data():
     return x, (np.sin(3 * x[:, 0]) + x[:, 1])[:, None]
 
 
-def _opts(**kw):
-    return TrainOptions(data="", targets=["y"], name="t", quiet=True, **kw)
+def _tune(x, y, log):
+    return tuning.tune(x, y, quiet=True, log=log)
 
 
 def test_a_coding_error_in_tuning_is_not_called_singular(monkeypatch):
     def broken(*_a, **_k):
         raise ValueError("operands could not be broadcast together")
 
-    monkeypatch.setattr(tuning, "kernel_matrix", broken)
+    monkeypatch.setattr(candidates, "kernel_matrix", broken)
     x, y = _tuning_data()
     with pytest.raises(ValueError, match="broadcast"):
-        tuning.tune(_opts(), x, y, lambda *a, **k: None)
+        _tune(x, y, lambda *a, **k: None)
 
 
 def test_numerical_failures_are_counted_and_logged(monkeypatch, caplog):
-    real = tuning.eigen_kernel
+    real = candidates.eigen_kernel
     calls = {"n": 0}
 
     def flaky(k, psd=True):
@@ -379,11 +379,11 @@ def test_numerical_failures_are_counted_and_logged(monkeypatch, caplog):
             raise np.linalg.LinAlgError("eigh did not converge")
         return real(k, psd)
 
-    monkeypatch.setattr(tuning, "eigen_kernel", flaky)
+    monkeypatch.setattr(candidates, "eigen_kernel", flaky)
     x, y = _tuning_data()
     said = []
     with caplog.at_level("WARNING", logger="kridge.tuning"):
-        _, _, info = tuning.tune(_opts(), x, y, lambda *a, **k: said.append(" ".join(a)))
+        info = _tune(x, y, lambda *a, **k: said.append(" ".join(a))).account
     failed = calls["n"] // 3
     assert failed >= 3
     assert info["numerical_failures"] == failed

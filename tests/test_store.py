@@ -60,7 +60,7 @@ def test_round_trip_predictions_are_identical(store_dir, small_csv):
     assert isinstance(arrays["x_train"], np.memmap)  # memory-mapped, shared between workers
 
 
-def test_manifest_holds_what_the_design_requires(store_dir, small_csv):
+def test_manifest_holds_what_the_readme_describes(store_dir, small_csv):
     version = publish(store_dir, small_csv)
     m = json.loads((vdir(store_dir, version) / "manifest.json").read_text())
     for key in ("schema", "model", "version", "created", "features", "targets", "kernel",
@@ -255,6 +255,7 @@ def test_good_names_pass():
 
 def test_four_trainers_publishing_at_once_get_four_versions(store_dir, small_csv):
     cmd = [*KRIDGE, "train", str(small_csv), "--target", "hardness_s", "--name", "same",
+           "--features", "oven_temp_c,line_speed_m_min,wet_film_um,humidity_pct,viscosity_mpas",
            "--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report", "--quiet",
            "--store", str(store_dir)]
     procs = [subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)

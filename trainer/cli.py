@@ -51,6 +51,8 @@ def cmd_train(args) -> int:
             print(*a, file=sys.stderr, **k)
 
     summary = train(opts, log=log)
+    for warning in summary["warnings"]:  # even with --quiet: they concern the model itself
+        print(f"warning: {warning}", file=sys.stderr)
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
@@ -293,7 +295,7 @@ EXIT_BUG = 70
 ARGUMENT_CHECKS = {
     ("kernels.py", "__post_init__"),  # KernelSpec: unknown kernel, bad gamma/degree/coef0
     ("kernels.py", "default_spec"),
-    ("model.py", "check_coverage"),  # --coverage outside (0, 1)
+    ("intervals.py", "check_coverage"),  # --coverage outside (0, 1)
     ("settings.py", "_int"),  # KRIDGE_* environment variables
     ("settings.py", "_float"),
 }
