@@ -278,7 +278,9 @@ def build_parser() -> argparse.ArgumentParser:
     s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
     s.add_argument("--bind", default=None,
                    help="HOST:PORT (default $KRIDGE_BIND or 127.0.0.1:8000)")
-    s.add_argument("--workers", type=int, default=None, help="worker processes (default 2)")
+    s.add_argument("--workers", type=int, default=None,
+                   help="worker processes (default $KRIDGE_WORKERS, else one per usable core, "
+                        "at least 2)")
 
     d = add("demo", cmd_demo, "demo data -> train -> release -> serve, with example calls")
     d.add_argument("--bind", default=None)
