@@ -123,7 +123,7 @@ def test_kmeans_plus_plus_spreads_landmarks():
 
 def test_streamed_standardization_equals_numpy(tmp_path):
     # reference: numpy 2.4 mean and std (ddof=0) over the whole array at once
-    from trainer.nystrom_train import scan
+    from trainer.nystrom_scan import scan
 
     x, y = _data(5000, d=4, seed=7)
     x = x[:, :3]

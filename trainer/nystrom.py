@@ -54,6 +54,13 @@ def default_landmarks(rows: int, memory_bytes: int | None = None) -> int:
     return max(1, min(rows, m))
 
 
+def describe_default(rows: int, memory_bytes: int | None = None) -> str:
+    """How :func:`default_landmarks` arrived at its m, for the manifest."""
+    m = default_landmarks(rows, memory_bytes)
+    return (f"default for {rows} training rows: min(n, clamp(4·√n, 500, 2000)), at most "
+            f"what five m × m matrices in 5 % of the memory allow → {m}")
+
+
 def pick_landmarks(x_s: np.ndarray, m: int, scheme: str, rng: np.random.Generator
                    ) -> np.ndarray:
     """Indices of m landmark rows of ``x_s``.
