@@ -109,7 +109,8 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     else:
         problem = sample_problem(tr_s, tr_y, sc.sample_time[in_train] if cuts else None,
                                  landmarks, opts.ridge, rng)
-        spec, ridge, tuning_info = tune_on_sample(opts, problem, log)
+        spec, ridge, tuning_info = tune_on_sample(opts, problem, log,
+                                                  np.random.default_rng([opts.seed, 6]))
 
     # -- pass 2: the sums -------------------------------------------------------------------
     plan = Plan(str(src.path), src.sep, src.decimal, features, targets, opts.time,

@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -18,8 +19,16 @@ from service.kernels import KERNEL_PARAMS, KernelSpec
 from trainer import nystrom
 from trainer.errors import UserError
 
+if TYPE_CHECKING:
+    from trainer.tuning import Curve
+
 #: Rows of the sample the width search fits on (the rest of the tuning rows validate).
-TUNE_ROWS = 12_000
+TUNE_ROWS = 24_000
+#: Landmarks of the first stage of the width search (see :func:`tune_on_sample`).
+COARSE_LANDMARKS = 1000
+#: Width ratio between the second stage's steps, and how often it may step outwards.
+FINE_STEP = math.sqrt(2.0)
+FINE_EXTENSIONS = 2
 
 
 @dataclass
@@ -71,35 +80,79 @@ def _evaluate(problem: SampleProblem, spec: KernelSpec, ridges: np.ndarray | Non
     return Curve(spec, np.asarray(ridges, dtype=np.float64), score, np.sqrt(mse))
 
 
-def tune_on_sample(opts, problem: SampleProblem, log) -> tuple[KernelSpec, float, dict]:
-    """Kernel parameters and a first ridge on the sample (same width range as exact tuning)."""
+def _refine_width(problem: SampleProblem, coarse: Curve, runner) -> list[Curve]:
+    """Width steps of :data:`FINE_STEP` around the coarse choice, with all m landmarks,
+    extended while the best lies on an edge (at most :data:`FINE_EXTENSIONS` times)."""
+    spec = coarse.spec
+    make = lambda g: replace(spec, gamma=float(g))  # noqa: E731
+    g0 = spec.gamma
+    curves = runner(problem, [make(g0 / FINE_STEP), spec, make(g0 * FINE_STEP)])
+    for _ in range(FINE_EXTENSIONS):
+        gammas = [c.spec.gamma for c in curves]
+        best = min(curves, key=lambda c: c.best_score).spec.gamma
+        if best == min(gammas):
+            curves += runner(problem, [make(best / FINE_STEP)])
+        elif best == max(gammas):
+            curves += runner(problem, [make(best * FINE_STEP)])
+        else:
+            break
+    return curves
+
+
+def tune_on_sample(opts, problem: SampleProblem, log,
+                   rng: np.random.Generator | None = None) -> tuple[KernelSpec, float, dict]:
+    """Kernel parameters and a first ridge on the sample (same width range as exact tuning).
+
+    With more than :data:`COARSE_LANDMARKS` landmarks the search runs in two stages: exact
+    tuning's whole width search (and the choice between kernels) on a uniform subset of
+    :data:`COARSE_LANDMARKS` landmarks, where a decomposition costs (m_c/m)³ of a full one;
+    then a few width steps around its choice with all m landmarks, which decide.
+    """
     from trainer import tuning
 
     t0 = time.perf_counter()
     kernels = list(tuning.AUTO_KERNELS) if opts.kernel == "auto" else [opts.kernel]
     runner = lambda p, specs: [_evaluate(p, s) for s in specs]  # noqa: E731
+    m = problem.landmarks.shape[0]
+    two_stage = m > COARSE_LANDMARKS and (opts.gamma is None) and any(
+        "gamma" in KERNEL_PARAMS[k] for k in kernels)
+    coarse = problem
+    if two_stage:
+        rng = rng or np.random.default_rng(0)
+        subset = np.sort(rng.choice(m, COARSE_LANDMARKS, replace=False))
+        coarse = replace(problem, landmarks=problem.landmarks[subset], evaluated=0)
     curves, ranges = [], {}
     for name in kernels:
         for base in tuning._kernel_candidates(name, opts):
             if "gamma" in KERNEL_PARAMS[name] and opts.gamma is None:
-                got, ranges[name] = tuning._search_widths(problem, base, name, runner,
+                got, ranges[name] = tuning._search_widths(coarse, base, name, runner,
                                                           opts.seed)
             else:
                 gamma = {"gamma": float(opts.gamma)} if "gamma" in KERNEL_PARAMS[name] else {}
-                got = runner(problem, [KernelSpec(name, **gamma, **base)])
+                got = runner(coarse, [KernelSpec(name, **gamma, **base)])
             curves += got
     best = min(curves, key=lambda c: c.best_score)
+    coarse_curves = curves
+    if two_stage and math.isfinite(best.best_score):
+        if "gamma" in KERNEL_PARAMS[best.spec.name]:
+            curves = _refine_width(problem, best, runner)
+        else:  # a kernel without a width won on the subset: score it with all landmarks
+            curves = runner(problem, [best.spec])
+        best = min(curves, key=lambda c: c.best_score)
     if not math.isfinite(best.best_score):
         raise UserError("tuning found no usable parameters on the sample; give --gamma and "
                         "--ridge explicitly")
     ridge = float(best.ridges[best.best])
     seconds = time.perf_counter() - t0
+    evaluated = coarse.evaluated + (problem.evaluated if two_stage else 0)
     what = (f"validation error on a sample ({problem.x_s.shape[0]} fit rows, "
-            f"{problem.x_val.shape[0]} validation rows, the same {problem.landmarks.shape[0]} "
-            "landmarks)")
+            f"{problem.x_val.shape[0]} validation rows, the same {m} landmarks)")
+    if two_stage:
+        what += (f", widths searched with a uniform subset of {COARSE_LANDMARKS} landmarks "
+                 f"and refined in steps of ×{FINE_STEP:.3g} with all {m}")
     rmse = ", ".join(f"{v:.4g}" for v in best.rmse[best.best])
     summary = (f"{best.spec.describe()}, ridge={ridge:.4g} chosen by {what} "
-               f"({problem.evaluated} decompositions; validation RMSE {rmse}; {seconds:.1f} s)")
+               f"({evaluated} decompositions; validation RMSE {rmse}; {seconds:.1f} s)")
     log(f"tuning: {summary}")
     info = {
         "method": what + "; one eigendecomposition per kernel setting serves every ridge",
@@ -111,7 +164,8 @@ def tune_on_sample(opts, problem: SampleProblem, log) -> tuple[KernelSpec, float
         "chosen": {"kernel": best.spec.name, "params": best.spec.params(), "ridge": ridge,
                    "score": best.best_score, "cv_rmse": [float(v) for v in best.rmse[best.best]]},
         "curves": [c.as_json() for c in curves],
-        "decompositions": problem.evaluated,
+        "coarse_curves": [c.as_json() for c in coarse_curves] if two_stage else None,
+        "decompositions": evaluated,
         "seconds": round(seconds, 3),
         "summary": summary,
         "fallback": False,
