@@ -10,6 +10,9 @@ A block's result depends only on the block, so blocks can be summed here or on D
 
 from __future__ import annotations
 
+import os
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -126,6 +129,41 @@ class HeldRows:
                    times)
 
 
+def cores() -> int:
+    """CPU cores this process may run on."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
+
+
+def in_threads(work: Callable, items: Iterable) -> Iterator:
+    """``work(item)`` for every item, one thread per core, results in the items' order.
+
+    Each thread runs single-threaded BLAS on its own items: two independent dsyrk calls keep
+    both cores busy without the synchronization of one two-thread call, which stalls whenever
+    another process takes a core, and the elementwise kernel work (one core per numpy call)
+    runs on both cores too. At most one item per thread is in flight, so memory stays that of
+    ``cores()`` items however many there are.
+    """
+    workers = cores()
+    if workers < 2:
+        yield from map(work, items)
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(1, user_api="blas"), ThreadPoolExecutor(workers) as pool:
+        pending: deque = deque()
+        for item in items:
+            pending.append(pool.submit(work, item))
+            if len(pending) >= workers:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
 def run_pass2(plan: Plan, blocks: list, cluster: str | None, progress
               ) -> tuple[nystrom.Sums, dict[str, HeldRows]]:
     """The training sums and the held-out parts, from this process or a Dask cluster.
@@ -147,8 +185,8 @@ def run_pass2(plan: Plan, blocks: list, cluster: str | None, progress
         for res in progress(map_blocks(cluster, plan, blocks), "fitting on the cluster"):
             add(res)
     else:
-        # one block at a time, so that only one block's m × m sums exist besides the total
-        for block, first in progress(blocks, "fitting"):
-            add(block_sums(plan, block, first))
+        for res in in_threads(lambda item: block_sums(plan, *item),
+                              progress(blocks, "fitting")):
+            add(res)
     d = len(plan.features)
     return sums, {p: HeldRows.stack(v, d, t) for p, v in held.items()}
