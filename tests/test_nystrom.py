@@ -167,9 +167,9 @@ def test_kmeans_plus_plus_spreads_landmarks():
     x = np.vstack([rng.normal(0, 0.1, (950, 2)), rng.normal(5, 0.1, (50, 2))])
     lm = pick_landmarks(x, 4, "kmeans++", np.random.default_rng(0))
     assert (x[lm, 0] > 2.5).any() and (x[lm, 0] < 2.5).any()
-    assert default_landmarks(1_000_000) == 3000 and default_landmarks(300) == 300
+    assert default_landmarks(1_000_000) == 2500 and default_landmarks(300) == 300
     assert default_landmarks(200_000) == 1789  # 4·√n
-    assert default_landmarks(1_000_000, 8 * 2**30) == memory_landmarks(8 * 2**30) == 2590
+    assert default_landmarks(1_000_000, 4 * 2**30) == memory_landmarks(4 * 2**30) == 1831
 
 
 def test_streamed_standardization_equals_numpy(tmp_path):

@@ -27,7 +27,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg as sla
-from scipy.linalg import blas
 
 from service.kernels import (
     KernelSpec,
@@ -49,20 +48,20 @@ SUB_ROWS = 4096
 
 
 #: Default landmarks: m = clamp(LANDMARKS_PER_ROOT·√n, LANDMARKS_MIN, LANDMARKS_MAX).
-LANDMARKS_PER_ROOT, LANDMARKS_MIN, LANDMARKS_MAX = 4, 500, 3000
+LANDMARKS_PER_ROOT, LANDMARKS_MIN, LANDMARKS_MAX = 4, 500, 2500
 #: m × m float64 matrices alive at once while solving (sums, K_mm, its eigenvectors, T,
 #: the normal matrix, its eigenvectors, their product), and the share of memory they may use.
 WORK_MATRICES, MEMORY_SHARE = 8, 0.05
 
 
 def default_landmarks(rows: int, memory_bytes: int | None = None) -> int:
-    """Default m from the row count and the memory: min(n, clamp(4√n, 500, 3000), m_mem).
+    """Default m from the row count and the memory: min(n, clamp(4√n, 500, 2500), m_mem).
 
     4√n grows with the data as the analysis of Nyström KRR suggests (m of order √n keeps the
     optimal learning rate for smooth targets: Rudi, Camoriano & Rosasco 2015, Thm. 1). The
-    cap of 3,000 bounds the time: pass 2 costs n·m² multiply-adds (a 1,000,000-row fit with
-    3,000 landmarks is about 4.5·10¹² flops of BLAS dsyrk, two to three minutes on two cores).
-    m_mem lets the :data:`WORK_MATRICES` m × m matrices of the solve use at most
+    cap of 2,500 bounds the time: pass 2 costs n·m² multiply-adds (a 1,000,000-row fit with
+    2,500 landmarks is about 6·10¹² flops of BLAS dsyrk, about a minute and a half on two
+    cores). m_mem lets the :data:`WORK_MATRICES` m × m matrices of the solve use at most
     :data:`MEMORY_SHARE` of ``memory_bytes``.
     """
     m = int(min(LANDMARKS_MAX, max(LANDMARKS_MIN, round(LANDMARKS_PER_ROOT * np.sqrt(rows)))))
@@ -118,7 +117,7 @@ def pick_landmarks(x_s: np.ndarray, m: int, scheme: str, rng: np.random.Generato
 class Sums:
     """Row sums of one set of rows: everything the Nyström solve needs from them."""
 
-    gram: np.ndarray  # (m, m) K_nmᵀ K_nm (lower triangle filled; see :meth:`full`)
+    gram: np.ndarray  # (m, m) K_nmᵀ K_nm
     k_sum: np.ndarray  # (m,) K_nmᵀ 1
     ky: np.ndarray  # (m, t) K_nmᵀ y
     y_sum: np.ndarray  # (t,)
@@ -126,7 +125,7 @@ class Sums:
 
     @classmethod
     def zeros(cls, m: int, t: int) -> Sums:
-        return cls(np.zeros((m, m), order="F"), np.zeros(m), np.zeros((m, t)), np.zeros(t), 0)
+        return cls(np.zeros((m, m)), np.zeros(m), np.zeros((m, t)), np.zeros(t), 0)
 
     def add(self, other: Sums) -> None:
         self.gram += other.gram
@@ -136,7 +135,8 @@ class Sums:
         self.count += other.count
 
     def full_gram(self) -> np.ndarray:
-        """G with both triangles (the accumulation fills the lower one only)."""
+        """G, exactly symmetric: its lower triangle mirrored (the sums of the two triangles
+        can differ in the last bit)."""
         g = np.tril(self.gram)
         return g + np.tril(g, -1).T
 
@@ -185,7 +185,8 @@ def accumulate(spec: KernelSpec, landmarks: np.ndarray, x_s: np.ndarray, y: np.n
 
     Per block of ``sub_rows`` rows: G += K_bmᵀK_bm by a symmetric rank-k update (BLAS dsyrk,
     half the flops of a general product), and [K_bmᵀ1, K_bmᵀy] = K_bmᵀ[1, y] by one product.
-    Memory beyond the sums is one (sub_rows × m) kernel block, reused from block to block.
+    Memory beyond the sums is one (sub_rows × m) kernel block, reused from block to block,
+    and one m × m product.
     """
     m, t = landmarks.shape[0], y.shape[1]
     sums = Sums.zeros(m, t) if sums is None else sums
@@ -195,14 +196,16 @@ def accumulate(spec: KernelSpec, landmarks: np.ndarray, x_s: np.ndarray, y: np.n
     scratch = None if spec.name in ("rbf", "linear") else np.empty((rows, m))
     ones_y = np.empty((rows, t + 1))
     ones_y[:, 0] = 1.0
+    prod = np.empty((m, m))
     for i in range(0, x_s.shape[0], sub_rows):
         xb = np.ascontiguousarray(x_s[i:i + sub_rows])
         b = xb.shape[0]
         k = kern.block(xb, buf, scratch)
-        # C = α·A·Aᵀ + β·C with A = kᵀ: kᵀ of a C-ordered block is Fortran-ordered, so
-        # BLAS reads it in place, and C (Fortran-ordered) is updated in place
-        sums.gram = blas.dsyrk(1.0, k.T, beta=1.0, c=sums.gram, trans=0, lower=1,
-                               overwrite_c=1)
+        # numpy computes a product with its own transpose by BLAS dsyrk (half the flops of a
+        # general product, the other triangle copied) and, unlike scipy's BLAS wrappers,
+        # releases the GIL meanwhile, so blocks in several threads run on several cores
+        np.matmul(k.T, k, out=prod)
+        sums.gram += prod
         ones_y[:b, 1:] = y[i:i + b]
         both = k.T @ ones_y[:b]
         sums.k_sum += both[:, 0]

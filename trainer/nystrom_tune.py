@@ -18,7 +18,6 @@ import numpy as np
 from service.kernels import KERNEL_PARAMS, KernelSpec
 from trainer import nystrom
 from trainer.errors import UserError
-from trainer.nystrom_parts import in_threads
 
 if TYPE_CHECKING:
     from trainer.tuning import Curve
@@ -81,11 +80,14 @@ def _evaluate(problem: SampleProblem, spec: KernelSpec, ridges: np.ndarray | Non
 
 
 def _run_specs(problem: SampleProblem, specs: list[KernelSpec]) -> list[Curve]:
-    """Curves of several kernel settings, evaluated side by side on the cores."""
+    """Curves of several kernel settings, one after another.
+
+    Not side by side in threads: scipy's LAPACK wrappers hold the GIL, so two threads'
+    eigendecompositions would run one at a time on one core each; one at a time, BLAS uses
+    every core.
+    """
     problem.evaluated += len(specs)
-    if len(specs) == 1:  # one decomposition: let BLAS use every core itself
-        return [_evaluate(problem, specs[0])]
-    return list(in_threads(lambda s: _evaluate(problem, s), specs))
+    return [_evaluate(problem, s) for s in specs]
 
 
 def _refine_width(problem: SampleProblem, coarse: Curve, runner) -> list[Curve]:
