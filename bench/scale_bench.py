@@ -6,8 +6,8 @@ so no model can score a fresh-row RMSE below 0.1. `kridge train` fits it with th
 `--method auto` (Nyström above 15,000 rows) in a child process whose wall time and peak RSS
 are measured. Exact KRR (`--method exact`, tuned the same way) is fitted on subsamples of
 5,000, 10,000, 15,000 and 20,000 rows, stopping after the first that takes longer than the
-Nyström fit: the largest exact fit within the same time is the fair comparison. Every model is scored on
-20,000 fresh rows, against the noisy target and against the noiseless response.
+Nyström fit: the largest exact fit within the same time is the fair comparison. Every model
+is scored on 20,000 fresh rows, against the noisy target and against the noiseless response.
 
 More data only helps where the response has structure a small sample cannot pin down. A
 smoother response (one interaction, low frequencies) left exact KRR on 5,000 rows within
