@@ -19,7 +19,14 @@ from service.kernels import KernelSpec, kernel_matrix
 from service.store import Store
 from trainer.cli import main
 from trainer.fit import fit_exact
-from trainer.nystrom import accumulate, default_landmarks, fit_in_memory, pick_landmarks
+from trainer.nystrom import (
+    LandmarkKernel,
+    accumulate,
+    default_landmarks,
+    fit_in_memory,
+    memory_landmarks,
+    pick_landmarks,
+)
 from trainer.reader import Source
 
 
@@ -112,18 +119,62 @@ def test_chunked_sums_equal_the_one_shot_product():
         assert s.count == 1000
 
 
+@pytest.mark.parametrize("spec", [
+    KernelSpec("rbf", gamma=0.3), KernelSpec("matern32", gamma=0.2),
+    KernelSpec("matern52", gamma=0.5), KernelSpec("laplacian", gamma=0.4),
+    KernelSpec("linear"), KernelSpec("polynomial", gamma=0.5, degree=3.0, coef0=1.0),
+    KernelSpec("sigmoid", gamma=0.1, coef0=0.5)], ids=lambda s: s.name)
+def test_prepared_landmark_kernel_equals_the_plain_kernel_matrix(spec):
+    # the augmented product sums the same d + 2 terms in another order: rounding only
+    x, _ = _data(300, d=5, seed=12)
+    lm = x[:40]
+    kern = LandmarkKernel(spec, lm)
+    buf = np.full((128, 40), np.nan)
+    want = kernel_matrix(spec, x, lm)
+    for i in range(0, 300, 128):  # the last block is shorter than the buffer
+        got = kern.block(np.ascontiguousarray(x[i:i + 128]), buf, np.empty((128, 40)))
+        np.testing.assert_allclose(got, want[i:i + 128], rtol=1e-12, atol=1e-13)
+
+
+def test_two_stage_width_search_decides_with_all_landmarks(monkeypatch):
+    """The first stage searches widths on a landmark subset; the width and ridge returned
+    are those that score best with every landmark, and their score is that of a fresh
+    evaluation with all of them."""
+    from trainer import nystrom_tune
+    from trainer.train import TrainOptions
+
+    monkeypatch.setattr(nystrom_tune, "COARSE_LANDMARKS", 30)
+    x, y = _data(2400, seed=13)
+    xs = (x - x.mean(0)) / x.std(0)
+    lm = xs[:120]
+    problem = nystrom_tune.sample_problem(xs, y, None, lm, None, np.random.default_rng(0))
+    opts = TrainOptions(data="-", targets=["y"], name="t", store="-")
+    spec, ridge, info = nystrom_tune.tune_on_sample(opts, problem, lambda *_: None,
+                                                    np.random.default_rng(1))
+    assert "subset of 30 landmarks" in info["method"]
+    assert len(info["coarse_curves"]) >= 8 and len(info["curves"]) >= 3
+    fresh = nystrom_tune._evaluate(problem, spec)  # all 120 landmarks
+    assert fresh.best_score == pytest.approx(info["chosen"]["score"], rel=1e-9)
+    assert ridge == fresh.ridges[fresh.best]
+    fine = [c["params"]["gamma"] for c in info["curves"]]
+    assert spec.gamma in fine and all(
+        c["score"] is not None for c in info["curves"])
+
+
 def test_kmeans_plus_plus_spreads_landmarks():
     # two clusters, 95 % of the rows in one: D² sampling reaches the small cluster
     rng = np.random.default_rng(6)
     x = np.vstack([rng.normal(0, 0.1, (950, 2)), rng.normal(5, 0.1, (50, 2))])
     lm = pick_landmarks(x, 4, "kmeans++", np.random.default_rng(0))
     assert (x[lm, 0] > 2.5).any() and (x[lm, 0] < 2.5).any()
-    assert default_landmarks(1_000_000) == 2000 and default_landmarks(300) == 300
+    assert default_landmarks(1_000_000) == 2500 and default_landmarks(300) == 300
+    assert default_landmarks(200_000) == 1789  # 4·√n
+    assert default_landmarks(1_000_000, 4 * 2**30) == memory_landmarks(4 * 2**30) == 1831
 
 
 def test_streamed_standardization_equals_numpy(tmp_path):
     # reference: numpy 2.4 mean and std (ddof=0) over the whole array at once
-    from trainer.nystrom_train import scan
+    from trainer.nystrom_scan import scan
 
     x, y = _data(5000, d=4, seed=7)
     x = x[:, :3]

@@ -8,17 +8,21 @@ imported only here, only when ``--cluster`` is given.
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+
 from trainer.errors import UserError
 
 
-def map_blocks(address: str, plan, blocks: list) -> list:
-    """Results of :func:`trainer.nystrom_train.block_sums` for every (block, first row)."""
+def map_blocks(address: str, plan, blocks: list) -> Iterator:
+    """Results of :func:`trainer.nystrom_parts.block_sums` for every (block, first row), in
+    block order, each fetched when the caller asks for it (one block's m × m sums at a time
+    here, however many blocks there are)."""
     try:
         from distributed import Client
     except ImportError:
         raise UserError("--cluster needs dask.distributed "
                         "(pip install 'kridge[cluster]')") from None
-    from trainer.nystrom_train import block_sums
+    from trainer.nystrom_parts import block_sums
 
     try:
         client = Client(address, timeout="10s")
@@ -29,6 +33,8 @@ def map_blocks(address: str, plan, blocks: list) -> list:
         shared = client.scatter(plan, broadcast=True)
         futures = [client.submit(block_sums, shared, block, first, pure=False)
                    for block, first in blocks]
-        return client.gather(futures)
+        for future in futures:
+            yield future.result()
+            future.release()
     finally:
         client.close()

@@ -27,9 +27,17 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg as sla
-from scipy.linalg import blas
 
-from service.kernels import KernelSpec, kernel_block, kernel_matrix
+from service.kernels import (
+    KernelSpec,
+    augmented_columns,
+    augmented_rows,
+    kernel_block,
+    kernel_matrix,
+    kernel_tile,
+    prepare_columns,
+    prepare_rows,
+)
 from trainer.fit import safe_lapack
 
 #: Eigenvalues of K_mm below this fraction of the largest are dropped (pseudo-inverse): they
@@ -39,19 +47,41 @@ RANK_RTOL = 1e-10
 SUB_ROWS = 4096
 
 
-def default_landmarks(rows: int, memory_bytes: int | None = None) -> int:
-    """Default m from the row count and the memory: m = min(n, clamp(4√n, 500, 2000)).
+#: Default landmarks: m = clamp(LANDMARKS_PER_ROOT·√n, LANDMARKS_MIN, LANDMARKS_MAX).
+LANDMARKS_PER_ROOT, LANDMARKS_MIN, LANDMARKS_MAX = 4, 500, 2500
+#: m × m float64 matrices alive at once while solving (sums, K_mm, its eigenvectors, T,
+#: the normal matrix, its eigenvectors, their product), and the share of memory they may use.
+WORK_MATRICES, MEMORY_SHARE = 8, 0.05
 
-    4√n grows with the data as the statistical analysis of Nyström KRR suggests (m of order
-    √n keeps the optimal learning rate for smooth targets: Rudi et al. 2015, Thm. 1); the cap
-    of 2,000 keeps a 1,000,000-row fit near two minutes on two cores (the n·m² product
-    dominates), and ``memory_bytes`` caps m so that the five m × m work matrices use at most
-    5 % of it.
+
+def default_landmarks(rows: int, memory_bytes: int | None = None) -> int:
+    """Default m from the row count and the memory: min(n, clamp(4√n, 500, 2500), m_mem).
+
+    4√n grows with the data as the analysis of Nyström KRR suggests (m of order √n keeps the
+    optimal learning rate for smooth targets: Rudi, Camoriano & Rosasco 2015, Thm. 1). The
+    cap of 2,500 bounds the time: pass 2 costs n·m² multiply-adds (a 1,000,000-row fit with
+    2,500 landmarks is about 6·10¹² flops of BLAS dsyrk, about a minute and a half on two
+    cores). m_mem lets the :data:`WORK_MATRICES` m × m matrices of the solve use at most
+    :data:`MEMORY_SHARE` of ``memory_bytes``.
     """
-    m = int(min(2000, max(500, round(4 * np.sqrt(rows)))))
+    m = int(min(LANDMARKS_MAX, max(LANDMARKS_MIN, round(LANDMARKS_PER_ROOT * np.sqrt(rows)))))
     if memory_bytes:
-        m = min(m, int(np.sqrt(0.05 * memory_bytes / (5 * 8))))
+        m = min(m, memory_landmarks(memory_bytes))
     return max(1, min(rows, m))
+
+
+def memory_landmarks(memory_bytes: int) -> int:
+    """The largest m whose solve's m × m matrices fit in MEMORY_SHARE of the memory."""
+    return int(np.sqrt(MEMORY_SHARE * memory_bytes / (WORK_MATRICES * 8)))
+
+
+def describe_default(rows: int, memory_bytes: int | None = None) -> str:
+    """How :func:`default_landmarks` arrived at its m, for the manifest."""
+    m = default_landmarks(rows, memory_bytes)
+    mem = (f", at most {memory_landmarks(memory_bytes)} for {memory_bytes / 2**30:.0f} GiB "
+           "of memory" if memory_bytes else "")
+    return (f"default for {rows} training rows: min(n, clamp({LANDMARKS_PER_ROOT}·√n, "
+            f"{LANDMARKS_MIN}, {LANDMARKS_MAX})){mem} → {m}")
 
 
 def pick_landmarks(x_s: np.ndarray, m: int, scheme: str, rng: np.random.Generator
@@ -87,7 +117,7 @@ def pick_landmarks(x_s: np.ndarray, m: int, scheme: str, rng: np.random.Generato
 class Sums:
     """Row sums of one set of rows: everything the Nyström solve needs from them."""
 
-    gram: np.ndarray  # (m, m) K_nmᵀ K_nm (lower triangle filled; see :meth:`full`)
+    gram: np.ndarray  # (m, m) K_nmᵀ K_nm
     k_sum: np.ndarray  # (m,) K_nmᵀ 1
     ky: np.ndarray  # (m, t) K_nmᵀ y
     y_sum: np.ndarray  # (t,)
@@ -95,7 +125,7 @@ class Sums:
 
     @classmethod
     def zeros(cls, m: int, t: int) -> Sums:
-        return cls(np.zeros((m, m), order="F"), np.zeros(m), np.zeros((m, t)), np.zeros(t), 0)
+        return cls(np.zeros((m, m)), np.zeros(m), np.zeros((m, t)), np.zeros(t), 0)
 
     def add(self, other: Sums) -> None:
         self.gram += other.gram
@@ -105,7 +135,8 @@ class Sums:
         self.count += other.count
 
     def full_gram(self) -> np.ndarray:
-        """G with both triangles (the accumulation fills the lower one only)."""
+        """G, exactly symmetric: its lower triangle mirrored (the sums of the two triangles
+        can differ in the last bit)."""
         g = np.tril(self.gram)
         return g + np.tril(g, -1).T
 
@@ -115,23 +146,70 @@ class Sums:
         return mean, self.ky - np.outer(self.k_sum, mean)
 
 
+class LandmarkKernel:
+    """k(·, L) for blocks of rows, with the landmark side prepared once.
+
+    Distance kernels use the augmented operands of :mod:`service.kernels`
+    ([2c x, −c‖x‖², 1]·[l; 1; −c‖l‖²] = −c‖x − l‖²), so one matrix product gives the exponent
+    and no pass over the (rows × m) block is spent on the norms; the other kernels get their
+    column terms computed once. Results equal :func:`service.kernels.kernel_block` up to the
+    order of the d + 2 terms of each product.
+    """
+
+    def __init__(self, spec: KernelSpec, landmarks: np.ndarray):
+        self.spec = spec
+        self.augmented = spec.uses == "sqdist"
+        if self.augmented:
+            self.xt, self.col = augmented_columns(spec, landmarks), None
+        else:
+            self.xt = np.ascontiguousarray(landmarks.T)
+            self.col = prepare_columns(spec, landmarks)
+
+    def block(self, rows: np.ndarray, out: np.ndarray | None = None,
+              scratch: np.ndarray | None = None) -> np.ndarray:
+        """(rows, m) kernel values, written into ``out[:rows]`` when given."""
+        b = rows.shape[0]
+        out = np.empty((b, self.xt.shape[1])) if out is None else out[:b]
+        if scratch is not None:
+            scratch = scratch[:b]
+        if self.augmented:
+            qs, row = augmented_rows(self.spec, rows), None
+        else:
+            qs, row = prepare_rows(self.spec, rows)
+        return kernel_tile(self.spec, qs, row, self.xt, self.col, out, scratch)
+
+
 def accumulate(spec: KernelSpec, landmarks: np.ndarray, x_s: np.ndarray, y: np.ndarray,
                sums: Sums | None = None, sub_rows: int = SUB_ROWS) -> Sums:
-    """Add the rows (x_s, y) to the sums: G += K_bmᵀK_bm by a symmetric rank-k update
-    (BLAS dsyrk, half the work of a general product), plus the vector sums.
+    """Add the rows (x_s, y) to the sums.
 
-    Memory beyond the sums is one (sub_rows × m) kernel block.
+    Per block of ``sub_rows`` rows: G += K_bmᵀK_bm by a symmetric rank-k update (BLAS dsyrk,
+    half the flops of a general product), and [K_bmᵀ1, K_bmᵀy] = K_bmᵀ[1, y] by one product.
+    Memory beyond the sums is one (sub_rows × m) kernel block, reused from block to block,
+    and one m × m product.
     """
     m, t = landmarks.shape[0], y.shape[1]
     sums = Sums.zeros(m, t) if sums is None else sums
+    kern = LandmarkKernel(spec, landmarks)
+    rows = min(sub_rows, max(x_s.shape[0], 1))
+    buf = np.empty((rows, m))
+    scratch = None if spec.name in ("rbf", "linear") else np.empty((rows, m))
+    ones_y = np.empty((rows, t + 1))
+    ones_y[:, 0] = 1.0
+    prod = np.empty((m, m))
     for i in range(0, x_s.shape[0], sub_rows):
-        k = kernel_block(spec, np.ascontiguousarray(x_s[i:i + sub_rows]), landmarks)
-        # C = α·A·Aᵀ + β·C with A = kᵀ: kᵀ of a C-ordered block is Fortran-ordered, so
-        # BLAS reads it in place, and C (Fortran-ordered) is updated in place
-        sums.gram = blas.dsyrk(1.0, k.T, beta=1.0, c=sums.gram, trans=0, lower=1,
-                               overwrite_c=1)
-        sums.k_sum += k.sum(axis=0)
-        sums.ky += k.T @ y[i:i + sub_rows]
+        xb = np.ascontiguousarray(x_s[i:i + sub_rows])
+        b = xb.shape[0]
+        k = kern.block(xb, buf, scratch)
+        # numpy computes a product with its own transpose by BLAS dsyrk (half the flops of a
+        # general product, the other triangle copied) and, unlike scipy's BLAS wrappers,
+        # releases the GIL meanwhile, so blocks in several threads run on several cores
+        np.matmul(k.T, k, out=prod)
+        sums.gram += prod
+        ones_y[:b, 1:] = y[i:i + b]
+        both = k.T @ ones_y[:b]
+        sums.k_sum += both[:, 0]
+        sums.ky += both[:, 1:]
     sums.y_sum += y.sum(axis=0)
     sums.count += x_s.shape[0]
     return sums

@@ -52,9 +52,8 @@ WIDTH_BISECTIONS = 2
 #: Kernels compared by ``kernel="auto"`` (sigmoid is indefinite in general: asked-for only).
 AUTO_KERNELS = ("linear", "polynomial", "rbf", "laplacian", "matern32", "matern52")
 
-# RIDGE_* and Curve are re-exported: the Nyström job's sample tuning scores its own curves.
-__all__ = ["AUTO_KERNELS", "RIDGE_GRID_SIZE", "RIDGE_RELATIVE", "Curve", "Given", "Tuned",
-           "tune"]
+# search_widths and kernel_candidates also drive the Nyström job's sample tuning.
+__all__ = ["AUTO_KERNELS", "Given", "Tuned", "kernel_candidates", "search_widths", "tune"]
 
 
 @dataclass(frozen=True)
@@ -76,7 +75,7 @@ class Tuned:
     account: dict  # JSON-ready account of the search, stored as the manifest's "tuning"
 
 
-def _search_widths(problem, base: dict, name: str, runner, seed: int) -> tuple[list[Curve], list]:
+def search_widths(problem, base: dict, name: str, runner, seed: int) -> tuple[list[Curve], list]:
     """Coarse log grid of γ, edge extensions, then log bisection around the best."""
     lo, hi = width_range(name, problem.x_s, seed)
     grid = list(np.geomspace(lo, hi, WIDTH_GRID_SIZE))
@@ -102,7 +101,7 @@ def _search_widths(problem, base: dict, name: str, runner, seed: int) -> tuple[l
     return curves, [float(lo), float(hi)]
 
 
-def _kernel_candidates(name: str, given) -> list[dict]:
+def kernel_candidates(name: str, given) -> list[dict]:
     """Fixed non-width parameters to try for one kernel (explicit ones honoured).
 
     ``given`` has ``degree`` and ``coef0`` attributes (:class:`Given` or the train options).
@@ -160,7 +159,7 @@ def tune(x_tr: np.ndarray, y_tr: np.ndarray, *, kernel: str = "rbf",
     widths_searched = given.gamma is None
     per_kernel_fits = (WIDTH_GRID_SIZE + WIDTH_EXTENSIONS + 2 * WIDTH_BISECTIONS)
     hint = sum((per_kernel_fits if "gamma" in KERNEL_PARAMS[k] and widths_searched else 1)
-               * len(_kernel_candidates(k, given)) for k in kernels)
+               * len(kernel_candidates(k, given)) for k in kernels)
     runner = Runner(problem.x_s.shape[0], quiet, hint)
     what = scheme_text(info)
     if info["fallback"]:
@@ -171,9 +170,9 @@ def tune(x_tr: np.ndarray, y_tr: np.ndarray, *, kernel: str = "rbf",
     ranges: dict[str, list[float]] = {}
     try:
         for name in kernels:
-            for base in _kernel_candidates(name, given):
+            for base in kernel_candidates(name, given):
                 if "gamma" in KERNEL_PARAMS[name] and widths_searched:
-                    got, ranges[name] = _search_widths(problem, base, name, runner, seed)
+                    got, ranges[name] = search_widths(problem, base, name, runner, seed)
                 else:
                     gamma = {"gamma": float(given.gamma)} if "gamma" in KERNEL_PARAMS[name] else {}
                     got = runner(problem, [KernelSpec(name, **gamma, **base)])
