@@ -168,7 +168,8 @@ def test_kmeans_plus_plus_spreads_landmarks():
     lm = pick_landmarks(x, 4, "kmeans++", np.random.default_rng(0))
     assert (x[lm, 0] > 2.5).any() and (x[lm, 0] < 2.5).any()
     assert default_landmarks(1_000_000) == 2500 and default_landmarks(300) == 300
-    assert default_landmarks(200_000) == 1789  # 4·√n
+    assert default_landmarks(200_000) == 2000  # the floor (4·√n is 1,789)
+    assert default_landmarks(300_000) == 2191  # 4·√n
     assert default_landmarks(1_000_000, 4 * 2**30) == memory_landmarks(4 * 2**30) == 1831
 
 

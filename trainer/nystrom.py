@@ -48,21 +48,23 @@ SUB_ROWS = 4096
 
 
 #: Default landmarks: m = clamp(LANDMARKS_PER_ROOT·√n, LANDMARKS_MIN, LANDMARKS_MAX).
-LANDMARKS_PER_ROOT, LANDMARKS_MIN, LANDMARKS_MAX = 4, 500, 2500
+LANDMARKS_PER_ROOT, LANDMARKS_MIN, LANDMARKS_MAX = 4, 2000, 2500
 #: m × m float64 matrices alive at once while solving (sums, K_mm, its eigenvectors, T,
 #: the normal matrix, its eigenvectors, their product), and the share of memory they may use.
 WORK_MATRICES, MEMORY_SHARE = 8, 0.05
 
 
 def default_landmarks(rows: int, memory_bytes: int | None = None) -> int:
-    """Default m from the row count and the memory: min(n, clamp(4√n, 500, 2500), m_mem).
+    """Default m from the row count and the memory: min(n, clamp(4√n, 2000, 2500), m_mem).
 
     4√n grows with the data as the analysis of Nyström KRR suggests (m of order √n keeps the
     optimal learning rate for smooth targets: Rudi, Camoriano & Rosasco 2015, Thm. 1). The
     cap of 2,500 bounds the time: pass 2 costs n·m² multiply-adds (a 1,000,000-row fit with
     2,500 landmarks is about 6·10¹² flops of BLAS dsyrk, about a minute and a half on two
     cores). m_mem lets the :data:`WORK_MATRICES` m × m matrices of the solve use at most
-    :data:`MEMORY_SHARE` of ``memory_bytes``.
+    :data:`MEMORY_SHARE` of ``memory_bytes``. The floor of 2,000 is measured: just above the
+    exact/Nyström switch, 566 landmarks (4√n) cost twice the error of 2,000 for a few seconds
+    saved (README, "Large data: Nyström"; ``bench/scale_bench.py --rows 20000 --landmarks 566``).
     """
     m = int(min(LANDMARKS_MAX, max(LANDMARKS_MIN, round(LANDMARKS_PER_ROOT * np.sqrt(rows)))))
     if memory_bytes:
