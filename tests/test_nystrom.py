@@ -227,7 +227,12 @@ def test_streamed_fit_publishes_a_bundle_served_like_any_other(tmp_path, capsys,
         man["intercept"])
     np.testing.assert_allclose(model.predict(q), want[:, 0], rtol=1e-10)
     assert main(["inspect", "big", "--store", str(store)]) == 0
-    assert "nystrom" in capsys.readouterr().out
+    shown = capsys.readouterr().out
+    assert "nystrom" in shown
+    lm = man["training"]["landmarks"]
+    assert [line.split(None, 1)[1] for line in shown.splitlines()
+            if line.startswith("landmarks ")] == [
+        f"{lm['count']} ({lm['scheme']}; {lm['how_many']})"]
 
 
 def test_method_choice_is_explained(tmp_path, capsys):

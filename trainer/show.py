@@ -55,6 +55,9 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     counts = tr.get("row_counts")
     if counts:
         lines.insert(7, ("data", counts.get("summary", "")))
+    lm = tr.get("landmarks")
+    if lm:
+        lines.insert(7, ("landmarks", f"{lm['count']} ({lm['scheme']}; {lm['how_many']})"))
     if tr.get("method"):
         lines.insert(7, ("method", f"{tr['method']}: {tr.get('method_reason', '')}"))
     span = env.get("time_span")
