@@ -56,6 +56,27 @@ class NeighbourIndex:
         return np.sqrt(out, out=out)
 
 
+def rows_within(rows: np.ndarray, x: np.ndarray) -> np.ndarray | None:
+    """Indices i_r with x[i_r] bit-for-bit equal to rows[r], distinct; None if any is missing.
+
+    The trainer keeps training rows as the novelty reference, so the prediction's distances
+    to the training rows already hold the reference's.
+    """
+    rows, x = np.asarray(rows), np.asarray(x)
+    if rows.ndim != 2 or x.ndim != 2 or rows.shape[1] != x.shape[1] or rows.dtype != x.dtype:
+        return None
+    where: dict[bytes, list[int]] = {}
+    for i, row in enumerate(np.ascontiguousarray(x)):
+        where.setdefault(row.tobytes(), []).append(i)
+    found = np.empty(rows.shape[0], dtype=np.intp)
+    for r, row in enumerate(np.ascontiguousarray(rows)):
+        free = where.get(row.tobytes())
+        if not free:  # not a training row, or more copies than the training rows have
+            return None
+        found[r] = free.pop()
+    return found
+
+
 def check_ranges(x_raw: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
     """Boolean (m, d) mask of cells outside their feature's training range [lo, hi]."""
     return (x_raw < lo) | (x_raw > hi)
