@@ -10,16 +10,21 @@ searched for 5xx answers.
 from __future__ import annotations
 
 import argparse
-import re
 import sys
 import tempfile
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
+sys.path.insert(0, str(ROOT))
 
-from service_helpers import Gunicorn  # noqa: E402
-from test_fuzz import TOKEN, run_schemathesis, served_env, small_store  # noqa: E402
+from bench.fuzz_harness import (  # noqa: E402
+    TOKEN,
+    run_schemathesis,
+    served_env,
+    small_store,
+    statuses,
+)
+from service.launch import Gunicorn  # noqa: E402
 
 
 def main() -> int:
@@ -32,7 +37,8 @@ def main() -> int:
         root = Path(tmp)
         store = small_store(root, ROOT / "demo_data" / "coating_line.csv")
         log = root / "access.log"
-        with Gunicorn(store, workers=2, env=served_env(root, log)) as g:
+        with open(log, "w") as out, Gunicorn.on_free_port(
+                store, 2, env=served_env(root, log), cwd=str(ROOT), output=out) as g:
             for who, token in (("anonymous", None), ("admin", TOKEN)):
                 res = run_schemathesis(g.base, root, args.examples, args.seed, token)
                 failed = res["generated"] - res["passed"]
@@ -41,9 +47,9 @@ def main() -> int:
                 ok &= res["exit"] == 0 and res["clean"] and failed == 0
                 if not res["clean"]:
                     print(res["output"][-4000:])
-        statuses = [int(m[1]) for m in re.finditer(r'" (\d{3}) ', log.read_text())]
-        errors = sum(s >= 500 for s in statuses)
-        print(f"requests answered: {len(statuses)}, 5xx: {errors}")
+        answered = statuses(log)
+        errors = sum(s >= 500 for s in answered)
+        print(f"requests answered: {len(answered)}, 5xx: {errors}")
         ok &= errors == 0
     print("PASS" if ok else "FAIL")
     return 0 if ok else 1

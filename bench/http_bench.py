@@ -6,7 +6,7 @@ Servers run one at a time, in alternating rounds; the best round of each is repo
 
     python bench/http_bench.py [--seconds 8] [--rounds 2] [--clients 4] [--workers 2]
 
-Targets (issue #3): ours ≥ 0.85 × (a) in requests/s with p99 ≤ 1.5 × (a)'s; (b) far below.
+Targets: ours ≥ 0.85 × (a) in requests/s with p99 ≤ 1.5 × (a)'s; (b) far below.
 """
 
 from __future__ import annotations
@@ -24,11 +24,10 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
-
-from service_helpers import Gunicorn  # noqa: E402
+sys.path.insert(0, str(ROOT))
 
 from bench.loadgen import run_load  # noqa: E402
+from service.launch import Gunicorn  # noqa: E402
 
 WORK = ROOT / "bench" / "results"
 N_ROWS, N_FEATURES = 20_000, 16
@@ -113,7 +112,7 @@ def main() -> None:
     best: dict[str, dict] = {}
     for rnd in range(args.rounds):
         for label, app in servers.items():
-            with Gunicorn(store, workers=args.workers, app=app,
+            with Gunicorn.on_free_port(store, args.workers, cwd=str(ROOT), app=app,
                           env={"BENCH_MODEL": "bench"}) as g:
                 cpu0 = workers_cpu_seconds(g.proc.pid)
                 if use_wrk:

@@ -35,7 +35,7 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
-sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
+sys.path.insert(0, str(ROOT))
 
 WORK = ROOT / "bench" / "results" / "sizing"
 MIB = 1 << 20
@@ -166,7 +166,8 @@ def train(store: Path, n: int, d: int) -> str:
 
 def measure(store: Path, name: str, n: int, d: int, requests_n: int, big_rows: int) -> dict:
     import requests
-    from service_helpers import Gunicorn
+
+    from service.launch import Gunicorn
 
     rng = np.random.default_rng(3)
     env = {"KRIDGE_MAX_ROWS": str(max(big_rows, 64)), "KRIDGE_MAX_BODY_BYTES": str(64 * MIB)}
@@ -174,7 +175,7 @@ def measure(store: Path, name: str, n: int, d: int, requests_n: int, big_rows: i
 
     live = Store(store).live_version(name)
     files = sum(p.stat().st_size for p in (store / name).glob(f"versions/{live}/arrays/*.npy"))
-    with Gunicorn(store, workers=1, env=env) as g:
+    with Gunicorn.on_free_port(store, 1, cwd=str(ROOT), env=env) as g:
         worker = worker_pid(g.proc.pid)
         url = f"{g.base}/models/{name}/predict"
         session = requests.Session()
@@ -210,8 +211,8 @@ def measure_follow(store: Path, name: str, replicas: int = 2, changes: int = 20)
     from contextlib import ExitStack
 
     import requests
-    from service_helpers import Gunicorn
 
+    from service.launch import Gunicorn
     from service.store import Store
 
     st = Store(store)
@@ -226,7 +227,8 @@ def measure_follow(store: Path, name: str, replicas: int = 2, changes: int = 20)
     body = {"rows": [[0.0] * len(st.read_manifest(name, 1)["features"])]}
     took = []
     with ExitStack() as stack:
-        gs = [stack.enter_context(Gunicorn(store, workers=1)) for _ in range(replicas)]
+        gs = [stack.enter_context(Gunicorn.on_free_port(store, 1, cwd=str(ROOT)))
+              for _ in range(replicas)]
         url = f"/models/{name}/predict"
         for i in range(changes):
             target = 1 + (st.live_version(name) % 2)

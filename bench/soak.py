@@ -178,11 +178,10 @@ def main() -> int:
     ap.add_argument("--changes", type=int, default=20)
     ap.add_argument("--workers", type=int, default=2)
     args = ap.parse_args()
-    sys.path[:0] = [str(ROOT), str(ROOT / "tests")]
+    sys.path.insert(0, str(ROOT))
     import tempfile
 
-    from service_helpers import Gunicorn
-
+    from service.launch import Gunicorn
     from trainer.train import TrainOptions, train
 
     token = "soak-token"
@@ -197,7 +196,7 @@ def main() -> int:
                                store=str(store), quiet=True, report=False, release=(i == 0)),
                   log=lambda *a, **k: None)
         env = {"KRIDGE_ADMIN_TOKEN": token, "PROMETHEUS_MULTIPROC_DIR": str(Path(tmp) / "m")}
-        with Gunicorn(store, workers=args.workers, env=env) as g:
+        with Gunicorn.on_free_port(store, args.workers, cwd=str(ROOT), env=env) as g:
             time.sleep(2.0)  # every worker up
             res = run_churn(g.base, store, token, "coating", [1, 2, 3, 4], args.clients,
                             args.seconds, args.changes)

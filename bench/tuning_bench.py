@@ -12,7 +12,11 @@ refit the chosen setting on all training rows:
 Target: ≥ 10× faster with held-out RMSE no more than 2 % worse. The machine is shared:
 timings are noisy, so read the ratio, not the seconds.
 
-    .venv/bin/python bench/tuning_bench.py [--rows 3000]
+    .venv/bin/python bench/tuning_bench.py [--rows 3000] [--eigh-sizes 2000,4000,6000]
+
+``--eigh-sizes`` also times one kernel-matrix eigendecomposition per size, the figure behind
+the exact leave-one-out limit (``trainer.validation.EXACT_MAX_ROWS``; DEVELOPERS.md, "Measured
+limits"): a single-kernel search needs about 13 of them.
 """
 
 from __future__ import annotations
@@ -25,16 +29,37 @@ from sklearn.datasets import make_friedman1
 from sklearn.kernel_ridge import KernelRidge
 from sklearn.model_selection import GridSearchCV
 
-from service.kernels import KernelSpec
-from trainer import tuning
+from service.kernels import KernelSpec, kernel_matrix
 from trainer.fit import Standardizer, fit_exact
+from trainer.loo import eigen_kernel
+from trainer.tuning import WIDTH_GRID_SIZE
+from trainer.validation import RIDGE_GRID_SIZE, RIDGE_RELATIVE, Problem
+from trainer.widths import width_range
+from trainer.workers import Runner
+
+
+def eigh_seconds(sizes: list[int]) -> None:
+    """Print the time of one rbf kernel-matrix eigendecomposition per size."""
+    rng = np.random.default_rng(0)
+    for n in sizes:
+        x = rng.standard_normal((n, 8))
+        k = kernel_matrix(KernelSpec("rbf", gamma=0.125), x)
+        t0 = time.perf_counter()
+        eigen_kernel(k)
+        seconds = time.perf_counter() - t0
+        print(f"eigh n = {n}: {seconds:.2f} s; a single-kernel search (~13 of them) "
+              f"≈ {13 * seconds:.0f} s")
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--rows", type=int, default=3000)
     ap.add_argument("--fresh", type=int, default=2000)
+    ap.add_argument("--eigh-sizes", default="",
+                    help="comma-separated sizes to time one eigendecomposition at")
     args = ap.parse_args()
+    if args.eigh_sizes:
+        eigh_seconds([int(v) for v in args.eigh_sizes.split(",")])
     x, y = make_friedman1(n_samples=args.rows, noise=1.0, random_state=0)
     x_new, y_new = make_friedman1(n_samples=args.fresh, noise=1.0, random_state=1)
     y2 = y[:, None]
@@ -43,12 +68,13 @@ def main() -> None:
     t0 = time.perf_counter()
     scaler = Standardizer.fit(x)
     x_s = scaler(x)
-    lo, hi = tuning.width_range("rbf", x_s)
-    gammas = np.geomspace(lo, hi, tuning.WIDTH_GRID_SIZE)
-    ridges = np.geomspace(*tuning.RIDGE_RELATIVE, tuning.RIDGE_GRID_SIZE)  # mean diag K = 1
-    problem = tuning.Problem(x_s, y2 - y2.mean(axis=0), 1.0 / y2.var(axis=0), None)
-    runner = tuning._make_runner(len(x), True, len(gammas), print)
+    lo, hi = width_range("rbf", x_s)
+    gammas = np.geomspace(lo, hi, WIDTH_GRID_SIZE)
+    ridges = np.geomspace(*RIDGE_RELATIVE, RIDGE_GRID_SIZE)  # mean diag K = 1
+    problem = Problem(x_s, y2 - y2.mean(axis=0), 1.0 / y2.var(axis=0), None)
+    runner = Runner(len(x), True, len(gammas))
     curves = runner(problem, [KernelSpec("rbf", gamma=float(g)) for g in gammas])
+    runner.close()
     best = min(curves, key=lambda c: c.best_score)
     ours_ridge = float(best.ridges[best.best])
     ours_fit = fit_exact(x, y2, best.spec, ours_ridge)

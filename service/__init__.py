@@ -15,7 +15,7 @@ __all__ = ["Model", "load_model"]
 
 def __getattr__(name: str):
     if name in __all__:
-        from service import bundle
+        from service import model
 
-        return getattr(bundle, name)
+        return getattr(model, name)
     raise AttributeError(f"module 'service' has no attribute {name!r}")

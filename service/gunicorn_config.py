@@ -21,13 +21,16 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
+from datetime import datetime, timezone
 
 from service import drain
 from service.settings import drain_seconds, usable_cores, worker_count
 
 bind = os.environ.get("KRIDGE_BIND") or "127.0.0.1:8000"
 workers = worker_count()
-worker_class = "sync"
+# the sync worker, closing connections that send nothing for a few seconds (browsers open
+# some ahead of need): see service/sync_worker.py
+worker_class = "service.sync_worker.PromptSyncWorker"
 timeout = 60
 graceful_timeout = 10
 keepalive = 5
@@ -54,6 +57,8 @@ def on_starting(server) -> None:
     path = os.environ["PROMETHEUS_MULTIPROC_DIR"]
     shutil.rmtree(path, ignore_errors=True)
     os.makedirs(path, exist_ok=True)
+    # workers inherit it: the page says from when its request counts run
+    os.environ["KRIDGE_METRICS_SINCE"] = datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
 def when_ready(server) -> None:

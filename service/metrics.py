@@ -5,6 +5,7 @@ files and ``/metrics`` add them up, so the figures cover all workers whichever o
 from __future__ import annotations
 
 import os
+from datetime import datetime, timezone
 from functools import lru_cache
 from typing import NamedTuple
 
@@ -62,12 +63,71 @@ def for_version(model: str, version: str) -> VersionSeries:
     )
 
 
-def exposition() -> tuple[bytes, str]:
-    """The text exposition, aggregated across processes when in multiprocess mode."""
+def count_request(labels: tuple[str, str], results: list[dict], compute: float,
+                  seconds: float) -> None:
+    """Count one answered predict request of model version ``labels``: its rows, the rows
+    flagged out of range or novel, the compute time and the whole request time (seconds)."""
+    series = for_version(*labels)
+    series.rows.inc(len(results))
+    out_of_range = sum(1 for r in results if r["envelope"]["out_of_range"])
+    novel = sum(1 for r in results if r["envelope"]["novel"])
+    if out_of_range:
+        series.out_of_range.inc(out_of_range)
+    if novel:
+        series.novel.inc(novel)
+    series.compute.observe(compute)
+    series.request.observe(seconds)
+
+
+#: When this process started counting; under gunicorn the master's start (see
+#: :func:`counted_since`).
+_IMPORTED = datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def _registry() -> CollectorRegistry:
+    """Every worker's figures in multiprocess mode, else this process's own."""
     if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
         from prometheus_client import multiprocess
 
         registry = CollectorRegistry()
         multiprocess.MultiProcessCollector(registry)
-        return generate_latest(registry), CONTENT_TYPE_LATEST
-    return generate_latest(REGISTRY), CONTENT_TYPE_LATEST
+        return registry
+    return REGISTRY
+
+
+def exposition() -> tuple[bytes, str]:
+    """The text exposition, aggregated across processes when in multiprocess mode."""
+    return generate_latest(_registry()), CONTENT_TYPE_LATEST
+
+
+def counted_since() -> str:
+    """UTC time from which the counters count: the gunicorn master clears the metrics
+    directory at start and records the moment in ``KRIDGE_METRICS_SINCE``; a process
+    without gunicorn counts from its first import of this module."""
+    return os.environ.get("KRIDGE_METRICS_SINCE") or _IMPORTED
+
+
+class RowCounts(NamedTuple):
+    """Rows predicted for one model (all versions) and how many were flagged."""
+
+    rows: float
+    out_of_range: float
+    novel: float
+
+
+def row_counts() -> dict[str, RowCounts]:
+    """Per model: rows predicted and rows flagged, summed over versions and workers."""
+    totals: dict[str, list[float]] = {}
+    for family in _registry().collect():
+        for sample in family.samples:
+            if sample.name == "kridge_rows_predicted_total":
+                slot = 0
+            elif sample.name == "kridge_envelope_flags_total":
+                slot = {"out_of_range": 1, "novel": 2}.get(sample.labels.get("flag"))
+                if slot is None:
+                    continue
+            else:
+                continue
+            model = sample.labels.get("model", "")
+            totals.setdefault(model, [0.0, 0.0, 0.0])[slot] += sample.value
+    return {model: RowCounts(*values) for model, values in totals.items()}

@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 from pydantic.json_schema import models_json_schema
 
 from service import schemas as s
+from service.intervals import largest_coverage
 from service.store import NAME_RE, StoreError
 
 REF = "#/components/schemas/{model}"
@@ -33,20 +33,10 @@ class ServedModel:
     calibration: int | None  # calibration residuals behind ``coverage``; None: no intervals
 
 
-def largest_coverage(c: int) -> float:
-    """Largest coverage with a finite split-conformal quantile from ``c`` residuals: the
-    ⌈(c + 1)·coverage⌉-th smallest must exist, so coverage ≤ c / (c + 1) (rounded down to
-    a float for which the service's own rank computation agrees)."""
-    cov = c / (c + 1)
-    while math.ceil((c + 1) * cov) > c:
-        cov = math.nextafter(cov, 0.0)
-    return cov
-
-
-def describe_served(store, hub) -> dict[str, ServedModel]:
-    """Every model the hub serves, with the versions that share the live one's shape."""
+def describe_served(store, live) -> dict[str, ServedModel]:
+    """Every model this worker serves, with the versions that share the live one's shape."""
     out = {}
-    for name, slot in list(hub.slots.items()):
+    for name, slot in list(live.slots.items()):
         model = slot.model
         if model is None:
             continue
@@ -155,6 +145,18 @@ def build_openapi(max_rows: int, max_body: int, models: dict[str, ServedModel] |
             "summary": "Versions with created time, metrics and live marker",
             "operationId": "listVersions", "parameters": [name],
             "responses": {"200": _resp("Versions", "VersionsResponse"), "404": err["404"]}}},
+        "/models/{name}/versions/{version}/report": {"get": {
+            "summary": "A version's training report (read-only HTML from the store)",
+            "description": "The report file the trainer wrote beside the version's manifest; "
+                           "the request names a model and a version, never a file.",
+            "operationId": "versionReport",
+            "parameters": [name, {"name": "version", "in": "path", "required": True,
+                                  "schema": {"type": "integer", "minimum": 1,
+                                             "maximum": s.MAX_VERSION}}],
+            "responses": {"200": {"description": "The report", "content": {
+                "text/html": {"schema": {"type": "string"}}}},
+                "404": _resp("No such model or version, or the version has no report",
+                             "ErrorResponse")}}},
         "/models/{name}/predict": {"post": {
             "summary": "Predict with the live version (or a pinned one)",
             "description": predict_text,

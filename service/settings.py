@@ -32,6 +32,17 @@ from pathlib import Path
 #: Store root when neither ``--store`` nor ``KRIDGE_STORE`` names one.
 DEFAULT_STORE = "kridge-store"
 
+#: Limits and intervals, one constant each: the dataclass and ``from_env`` share them.
+MAX_BODY_BYTES = 8 << 20
+MAX_ROWS = 10_000
+POLL_SECONDS = 0.25
+PINNED_CACHE = 4
+
+
+def default_store() -> str:
+    """Env ``KRIDGE_STORE``, else :data:`DEFAULT_STORE`."""
+    return os.environ.get("KRIDGE_STORE") or DEFAULT_STORE
+
 
 def _int(name: str, default: int) -> int:
     raw = os.environ.get(name)
@@ -124,21 +135,21 @@ def access_log_target() -> str | None:
 @dataclass(frozen=True)
 class Settings:
     store: str = DEFAULT_STORE
-    max_body_bytes: int = 8 << 20
-    max_rows: int = 10_000
-    poll_seconds: float = 0.25
-    pinned_cache: int = 4
+    max_body_bytes: int = MAX_BODY_BYTES
+    max_rows: int = MAX_ROWS
+    poll_seconds: float = POLL_SECONDS
+    pinned_cache: int = PINNED_CACHE
     admin_token: str | None = field(default=None, repr=False)
     access_log: str | None = None
 
     @classmethod
     def from_env(cls, **overrides) -> Settings:
         values = dict(
-            store=os.environ.get("KRIDGE_STORE") or DEFAULT_STORE,
-            max_body_bytes=_int("KRIDGE_MAX_BODY_BYTES", 8 << 20),
-            max_rows=_int("KRIDGE_MAX_ROWS", 10_000),
-            poll_seconds=_float("KRIDGE_POLL_SECONDS", 0.25),
-            pinned_cache=_int("KRIDGE_PINNED_CACHE", 4),
+            store=default_store(),
+            max_body_bytes=_int("KRIDGE_MAX_BODY_BYTES", MAX_BODY_BYTES),
+            max_rows=_int("KRIDGE_MAX_ROWS", MAX_ROWS),
+            poll_seconds=_float("KRIDGE_POLL_SECONDS", POLL_SECONDS),
+            pinned_cache=_int("KRIDGE_PINNED_CACHE", PINNED_CACHE),
             admin_token=os.environ.get("KRIDGE_ADMIN_TOKEN") or None,
             access_log=access_log_target(),
         )

@@ -10,29 +10,21 @@ import csv
 import io
 import json
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
+from cli_helpers import KRIDGE, run_cli
 
 from service import load_model
 from service.kernels import KernelSpec
 from service.store import Store
-from trainer.cli import main
 from trainer.data import read_table, split_columns
 from trainer.fit import fit_exact
 
-KRIDGE = str(Path(sys.executable).with_name("kridge"))
 FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "viscosity_mpas"]
 RBF = ["--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report"]
 
-
-
-def run_cli(capsys, *argv):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 def tree(root: Path) -> set[str]:
@@ -52,6 +44,7 @@ def trained(store_dir, small_csv, capsys):
 
 def test_train_prints_a_summary(store_dir, small_csv, capsys):
     code, out, err = run_cli(capsys, "train", small_csv, "--target", "hardness_s",
+                             "--features", ",".join(FEATURES),
                              "--name", "coat", "--kernel", "polynomial", "--gamma", "0.2",
                              "--degree", "2", "--coef0", "1", "--ridge", "0.5", "--no-report")
     assert code == 0, err
@@ -59,28 +52,30 @@ def test_train_prints_a_summary(store_dir, small_csv, capsys):
     assert lines["model"].startswith("coat v1") and "not live" in lines["model"]
     assert lines["rows"] == "60 (60 of 60 rows have a value for hardness_s)"
     assert lines["method"].startswith("exact")
-    assert lines["features"].startswith("6: oven_temp_c")  # all columns but the target
+    assert lines["features"] == "5: " + ", ".join(FEATURES)
     assert lines["kernel"] == "polynomial(gamma=0.2, degree=2, coef0=1)"
     assert lines["ridge"] == "0.5"
     assert lines["time"].endswith(" s")
     assert "RMSE" in lines["holdout"] and "RMSE" in lines["LOO"]
 
-    code, out, _ = run_cli(capsys, "train", small_csv, "--target", "hardness_s", "--name",
-                           "coat", "--features", ",".join(FEATURES), "--release", *RBF)
+    # without --features: every column but the targets (both lab results are targets here)
+    code, out, _ = run_cli(capsys, "train", small_csv, "--target", "hardness_s,gloss_gu",
+                           "--name", "coat", "--release", *RBF)
     assert code == 0
-    assert "coat v2  (live)" in out and "5: oven_temp_c" in out
+    assert "coat v2  (live)" in out and "5: " + ", ".join(FEATURES) in out
 
 
 def test_train_json_summary(store_dir, small_csv, capsys):
     code, out, _ = run_cli(capsys, "train", small_csv, "--target", "hardness_s",
-                           "--name", "coat", "--json", *RBF)
+                           "--features", ",".join(FEATURES), "--name", "coat", "--json", *RBF)
     assert code == 0
     summary = json.loads(out)
     assert summary["version"] == 1 and summary["live"] is False and summary["rows"] == 60
 
 
 def test_versions_marks_the_live_one(trained, small_csv, capsys):
-    run_cli(capsys, "train", small_csv, "--target", "hardness_s", "--name", "coat", *RBF)
+    run_cli(capsys, "train", small_csv, "--target", "hardness_s", "--features",
+            ",".join(FEATURES), "--name", "coat", *RBF)
     code, out, _ = run_cli(capsys, "versions", "coat")
     assert code == 0
     rows = [line.split() for line in out.strip().splitlines()[2:]]
@@ -130,6 +125,26 @@ def test_predict_columns_and_numbers_equal_load_model(trained, small_csv, tmp_pa
     assert float(rows[10][8]) > 1.0
 
 
+def test_predict_counts_extrapolations_on_stderr(trained, small_csv, tmp_path, capsys):
+    """The count of rows outside the envelope, with the caution, whatever the output goes to."""
+    data = tmp_path / "new.csv"
+    lines = small_csv.read_text().splitlines()
+    far = ["400,10,60,50,600,100,80", "-50,10,60,50,600,100,80", "150,99,60,50,600,100,80"]
+    data.write_text("\n".join(lines[:8] + far) + "\n")
+    code, out, err = run_cli(capsys, "predict", "coat", data)
+    assert code == 0, err
+    _, rows = read_output(out)
+    outside = sum(r[7] == "false" for r in rows)
+    assert outside >= 3  # the three far rows at least
+    assert f"{outside} of 10 rows outside the training envelope: extrapolations" in err
+    assert "site procedures" in err and "qualified" in err
+
+    out_file = tmp_path / "pred.csv"
+    code, out, err = run_cli(capsys, "predict", "coat", data, "--out", out_file)
+    assert code == 0 and out == ""
+    assert f"{outside} of 10 rows outside the training envelope: extrapolations" in err
+
+
 def test_predict_with_coverage_adds_bounds(trained, small_csv, tmp_path, capsys):
     out_file = tmp_path / "pred.csv"
     code, out, err = run_cli(capsys, "predict", "coat", small_csv, "--coverage", "0.9",
@@ -144,7 +159,8 @@ def test_predict_with_coverage_adds_bounds(trained, small_csv, tmp_path, capsys)
     model = load_model(trained, "coat")
     half = model.half_width(0.9)
     # reference: split-conformal quantile, the ⌈(c+1)·0.9⌉-th smallest |residual| (Lei,
-    # G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018), here of the exact LOO residuals
+    # G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018, from memory), here of the exact LOO
+    # residuals
     _, x, y = split_columns(read_table(small_csv), ["hardness_s", "gloss_gu"], FEATURES)
     loo = fit_exact(x, y, KernelSpec("rbf", gamma=0.2), 0.5, want_loo=True).loo_residuals
     rank = int(np.ceil(61 * 0.9))
@@ -240,7 +256,7 @@ def test_console_script_reports_without_traceback(tmp_path, store_dir):
     # The real entry point, in its own process: exit status, one stderr line, empty store.
     data = tmp_path / "in.csv"
     data.write_text(lines_with("4,abc,7.5"))
-    cmd = [KRIDGE, "train", str(data), *_train_args([])]
+    cmd = [*KRIDGE, "train", str(data), *_train_args([])]
     proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2
     assert proc.stderr.strip().splitlines() == [

@@ -22,7 +22,7 @@ def test_reads_numbers_header_and_fingerprint(tmp_path):
     t = read_table(path)
     assert t.columns == ["a", "b", "y"]  # header cells are trimmed
     np.testing.assert_array_equal(t.values, [[1, 2.5, 3], [-4, 0.5, 6], [7, 8, 9]])
-    # reference: the design's data fingerprint is the sha256 of the input file (hashlib)
+    # reference: the data fingerprint is the sha256 of the input file's bytes (hashlib)
     assert t.sha256 == hashlib.sha256(path.read_bytes()).hexdigest()
 
 

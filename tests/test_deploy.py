@@ -275,7 +275,8 @@ def test_gunicorn_config_loads_with_gunicorns_own_parser(tmp_path):
     cfg = dict(re.match(r"(\w+)\s+= (.*)", line).groups()
                for line in r.stdout.splitlines() if re.match(r"\w+\s+= ", line))
     assert cfg["workers"] == "3" and cfg["bind"] == "['127.0.0.1:9']"
-    assert cfg["worker_class"] == "sync" and cfg["graceful_timeout"] == "10"
+    assert cfg["worker_class"] == "service.sync_worker.PromptSyncWorker"
+    assert cfg["graceful_timeout"] == "10"
     assert cfg["accesslog"] == "None" and cfg["errorlog"] == "-"  # text log on stderr
     assert cfg["wsgi_app"] == "service.wsgi:app"
     for hook in ("on_starting", "when_ready", "child_exit"):

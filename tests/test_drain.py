@@ -12,7 +12,7 @@ from pathlib import Path
 
 import requests
 from make_coating_data import TYPICAL_ROW
-from service_helpers import Gunicorn
+from service_helpers import Gunicorn, wait_for
 
 from trainer.cli import main
 
@@ -79,13 +79,6 @@ class Load:
                 else:
                     self.ok += 1
                     self.ok_after_not_ready += draining
-
-
-def wait_for(predicate, seconds: float, what: str) -> None:
-    deadline = time.monotonic() + seconds
-    while not predicate():
-        assert time.monotonic() < deadline, f"timed out waiting for {what}"
-        time.sleep(0.02)
 
 
 def test_sigterm_drains_under_load_and_finishes_accepted_requests(tmp_path, small_csv):

@@ -4,8 +4,9 @@ Reference: scikit-learn 1.9 ``StandardScaler`` + ``KernelRidge(alpha=ridge, kern
 fitted on the centered target (y − mean, mean added back to predictions); the Matérn kernels
 go through ``sklearn.gaussian_process.kernels.Matern(length_scale=1/sqrt(2γ), nu=1.5/2.5)``
 as a precomputed kernel. Data: scikit-learn's bundled diabetes set (Efron, Hastie, Johnstone
-& Tibshirani 2004, "Least Angle Regression", Annals of Statistics) and its bundled linnerud
-set (three exercise features, three physiological targets: several targets at once).
+& Tibshirani 2004, "Least Angle Regression", Annals of Statistics; from memory) and its
+bundled linnerud set (three exercise features, three physiological targets: several targets
+at once).
 """
 
 from __future__ import annotations

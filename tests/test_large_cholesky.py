@@ -79,8 +79,39 @@ def _clean_env() -> dict[str, str]:
     return {k: v for k, v in os.environ.items() if not k.startswith(prefixes)}
 
 
-def test_threshold_is_below_the_crashing_size():
-    assert SINGLE_THREAD_FROM <= N_CRASHED
+def _blas_threads() -> list[int]:
+    return [lib["num_threads"] for lib in threadpool_info() if lib["user_api"] == "blas"]
+
+
+def test_the_guard_covers_the_crashing_size_at_the_factorization(monkeypatch):
+    # At the smallest size measured to crash, and from the threshold on, the factorization
+    # inside solve_dual runs on one BLAS thread; below the threshold it keeps the library's
+    # own count. The boundary is checked on a small system by moving the threshold down
+    # (the real sizes need gigabytes; the slow test below runs one).
+    import numpy as np
+
+    import trainer.fit
+    from service.kernels import KernelSpec, kernel_matrix
+    from trainer.fit import solve_dual
+
+    with safe_lapack(N_CRASHED):
+        assert set(_blas_threads()) == {1}
+    default = _blas_threads()
+    seen = []
+    factor = trainer.fit.sla.cho_factor
+
+    def spy(*args, **kwargs):  # BLAS thread counts at the moment the factorization runs
+        seen.append(_blas_threads())
+        return factor(*args, **kwargs)
+
+    monkeypatch.setattr(trainer.fit.sla, "cho_factor", spy)
+    monkeypatch.setattr(trainer.fit, "SINGLE_THREAD_FROM", 300)
+    rng = np.random.default_rng(2)
+    for n in (299, 300):
+        x = rng.standard_normal((n, 3))
+        solve_dual(kernel_matrix(KernelSpec("rbf", gamma=0.3), x), rng.standard_normal((n, 1)),
+                   0.1)
+    assert seen == [default, [1] * len(default)]
 
 
 def test_guard_limits_every_blas_library_to_one_thread():

@@ -13,7 +13,7 @@ from service.store import Store
 from trainer.cli import main
 from trainer.data import load_training, read_table
 from trainer.errors import UserError
-from trainer.tuning import time_series_folds
+from trainer.validation import time_series_folds
 
 FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "viscosity_mpas"]
 
@@ -206,5 +206,12 @@ def test_time_holdout_is_honest_where_a_random_holdout_is_optimistic(tmp_path, s
     assert random_reported < 0.6 * random_future
     # ... the time-ordered holdout is close to what the later, unseen stretch shows
     assert 0.6 * time_future < time_reported < 1.6 * time_future
-    tuning = Store(store_dir).read_manifest("in-time", 1)["tuning"]
-    assert tuning["method"].startswith("blocked cross-validation in time order")
+    manifest = Store(store_dir).read_manifest("in-time", 1)
+    assert manifest["tuning"]["method"].startswith("blocked cross-validation in time order")
+    # in time order the intervals come from holdout residuals, and their check is said to be
+    # the earlier half of the holdout calibrating the later half
+    intervals = manifest["intervals"]
+    assert intervals["name"] == "split-conformal"
+    assert "most recent stretch in time" in intervals["method"]
+    assert "earlier half of the holdout" in intervals["holdout_coverage_method"]
+    assert [c["rows"] for c in intervals["holdout_coverage"]] == [80] * 3  # 160 held out

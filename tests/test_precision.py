@@ -6,6 +6,7 @@ import json
 
 import numpy as np
 import pytest
+from make_coating_data import TYPICAL_ROW
 
 from service import load_model
 from service.engine import Engine
@@ -30,6 +31,7 @@ def test_float32_engine_tracks_float64(name, m):
 
 def test_train_records_the_float32_error(small_csv, store_dir, capsys):
     rc = main(["train", str(small_csv), "--target", "hardness_s", "--name", "f32",
+               "--features", ",".join(TYPICAL_ROW),
                "--gamma", "0.2", "--ridge", "0.5", "--precision", "float32", "--no-report"])
     out = capsys.readouterr().out
     assert rc == 0 and "precision  float32" in out
@@ -52,6 +54,7 @@ def test_train_records_the_float32_error(small_csv, store_dir, capsys):
 
 def test_unknown_precision_in_a_manifest_is_refused(small_csv, store_dir):
     assert main(["train", str(small_csv), "--target", "hardness_s", "--name", "p",
+                 "--features", ",".join(TYPICAL_ROW),
                  "--gamma", "0.2", "--ridge", "0.5", "--no-report"]) == 0
     path = store_dir / "p" / "versions" / "1" / "manifest.json"
     manifest = json.loads(path.read_text())

@@ -24,13 +24,14 @@ from pathlib import Path
 
 import pytest
 
-from service.bundle import verify
+from service.model import verify
 from service.store import Store
 from trainer.cli import main
 
 TESTS = Path(__file__).resolve().parent
 TRAIN = ["--target", "hardness_s", "--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5",
-         "--no-report", "--quiet"]
+         "--no-report", "--quiet",
+         "--features", "oven_temp_c,line_speed_m_min,wet_film_um,humidity_pct,viscosity_mpas"]
 
 
 def kill_trials(store: str, csv: str, trials: int, seed: int, fsync_delay: float,

@@ -2,7 +2,7 @@
 
 HTTP conformance (405 with Allow, a document as strict as the service, 409 for a conflict),
 a damaged live.json or history.jsonl (a store error everywhere, repaired by release,
-explained by rollback), the hub loading each bundle once, the command line showing bugs as
+explained by rollback), each worker loading a bundle once, the command line showing bugs as
 bugs, and tuning leaving out only candidates that fail numerically.
 """
 
@@ -16,15 +16,16 @@ import time
 
 import numpy as np
 import pytest
+from cli_helpers import run_cli
 from jsonschema import Draft202012Validator
 from make_coating_data import TYPICAL_ROW
-from service_helpers import Gunicorn
+from service_helpers import Gunicorn, holds_for
 
-from service import bundle, hub
-from service.hub import ModelHub
+from service import live_models, model
+from service.live_models import LiveModels
 from service.store import Conflict, Store, StoreError
-from trainer import tuning
-from trainer.cli import EXIT_BUG, main
+from trainer import candidates, tuning
+from trainer.cli import EXIT_BUG
 from trainer.train import TrainOptions, train
 
 TOKEN = "findings-token-5d1c"
@@ -36,12 +37,6 @@ def publish(root, csv, name="coat", ridge=0.5) -> int:
                         kernel="rbf", gamma=0.2, ridge=ridge, store=str(root), quiet=True,
                         report=False)
     return train(opts, log=lambda *a, **k: None)["version"]
-
-
-def run_cli(capsys, *argv):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 @pytest.fixture(scope="module")
@@ -152,8 +147,8 @@ def test_garbled_live_json_is_a_store_error_everywhere(two_versions, raw, capsys
     with pytest.raises(StoreError, match="coat: live.json is damaged"):
         st.live_version("coat")
     with pytest.raises(StoreError, match="live.json"):
-        bundle.load_model(two_versions, "coat")
-    h = ModelHub(st)
+        model.load_model(two_versions, "coat")
+    h = LiveModels(st)
     h.start(60.0)  # a worker starting on a damaged pointer: up, not ready, says why
     h.stop()
     ready, _, problems = h.readiness()
@@ -225,10 +220,12 @@ def test_admin_release_repairs_a_garbled_pointer(served):
     saved = live.read_bytes()
     live.write_bytes(b'{"version": ')
     try:
-        time.sleep(0.5)
-        # the workers keep serving the last good version meanwhile
-        r = served.post("/models/coat/predict", json={"rows": [TYPICAL_ROW]})
-        assert r.status_code == 200 and r.headers["X-Model-Version"] == "1"
+        # the workers keep serving the last good version while they read the damaged pointer
+        def serves_v1() -> bool:
+            r = served.post("/models/coat/predict", json={"rows": [TYPICAL_ROW]})
+            return r.status_code == 200 and r.headers["X-Model-Version"] == "1"
+
+        assert holds_for(serves_v1, 0.5, "serving version 1") >= 1
         back = served.post("/models/coat/rollback", headers=AUTH)
         assert back.status_code == 409 and "live now is unknown" in back.text
         assert str(served.store) not in back.text
@@ -240,12 +237,12 @@ def test_admin_release_repairs_a_garbled_pointer(served):
             live.write_bytes(saved)
 
 
-# -- the hub loads each bundle once ----------------------------------------------------------
+# -- a worker loads each bundle once -----------------------------------------------------------
 
 def _slow_counting_loads(monkeypatch):
     state = {"now": 0, "peak": 0, "calls": 0}
     lock = threading.Lock()
-    real = hub.load_model
+    real = live_models.load_model
 
     def slow(*a, **k):
         with lock:
@@ -259,7 +256,7 @@ def _slow_counting_loads(monkeypatch):
             with lock:
                 state["now"] -= 1
 
-    monkeypatch.setattr(hub, "load_model", slow)
+    monkeypatch.setattr(live_models, "load_model", slow)
     return state
 
 
@@ -285,7 +282,7 @@ def _together(n, fn):
 
 def test_a_new_model_is_loaded_once_however_many_requests_ask(two_versions, monkeypatch):
     st = Store(two_versions)
-    h = ModelHub(st)
+    h = LiveModels(st)
     h.refresh()  # nothing live yet
     st.release("coat", 2)
     h.slots.clear()  # as if the model appeared after the last poll
@@ -298,7 +295,7 @@ def test_a_new_model_is_loaded_once_however_many_requests_ask(two_versions, monk
 def test_a_pinned_version_is_loaded_once_however_many_requests_ask(two_versions, monkeypatch):
     st = Store(two_versions)
     st.release("coat", 2)
-    h = ModelHub(st)
+    h = LiveModels(st)
     h.refresh()
     state = _slow_counting_loads(monkeypatch)
     models = _together(8, lambda: h.pinned_version("coat", 1))
@@ -358,22 +355,22 @@ def _tuning_data():
     return x, (np.sin(3 * x[:, 0]) + x[:, 1])[:, None]
 
 
-def _opts(**kw):
-    return TrainOptions(data="", targets=["y"], name="t", quiet=True, **kw)
+def _tune(x, y, log):
+    return tuning.tune(x, y, quiet=True, log=log)
 
 
 def test_a_coding_error_in_tuning_is_not_called_singular(monkeypatch):
     def broken(*_a, **_k):
         raise ValueError("operands could not be broadcast together")
 
-    monkeypatch.setattr(tuning, "kernel_matrix", broken)
+    monkeypatch.setattr(candidates, "kernel_matrix", broken)
     x, y = _tuning_data()
     with pytest.raises(ValueError, match="broadcast"):
-        tuning.tune(_opts(), x, y, lambda *a, **k: None)
+        _tune(x, y, lambda *a, **k: None)
 
 
 def test_numerical_failures_are_counted_and_logged(monkeypatch, caplog):
-    real = tuning.eigen_kernel
+    real = candidates.eigen_kernel
     calls = {"n": 0}
 
     def flaky(k, psd=True):
@@ -382,11 +379,11 @@ def test_numerical_failures_are_counted_and_logged(monkeypatch, caplog):
             raise np.linalg.LinAlgError("eigh did not converge")
         return real(k, psd)
 
-    monkeypatch.setattr(tuning, "eigen_kernel", flaky)
+    monkeypatch.setattr(candidates, "eigen_kernel", flaky)
     x, y = _tuning_data()
     said = []
     with caplog.at_level("WARNING", logger="kridge.tuning"):
-        _, _, info = tuning.tune(_opts(), x, y, lambda *a, **k: said.append(" ".join(a)))
+        info = _tune(x, y, lambda *a, **k: said.append(" ".join(a))).account
     failed = calls["n"] // 3
     assert failed >= 3
     assert info["numerical_failures"] == failed

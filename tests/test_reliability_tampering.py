@@ -12,14 +12,12 @@ from __future__ import annotations
 import hashlib
 import json
 import shutil
-import time
 from pathlib import Path
 
 import numpy as np
 import pytest
 from make_coating_data import TYPICAL_ROW
-from prometheus_client.parser import text_string_to_metric_families
-from service_helpers import Gunicorn
+from service_helpers import Gunicorn, metric_count, metric_samples, wait_for
 
 from service import load_model
 from service.store import Store, StoreError
@@ -152,30 +150,16 @@ def test_forgery_is_refused_at_verify_release_and_load(forged, kind, capsys):
     assert not (outside / "pickle-ran").exists()
 
 
-def _samples(text: str) -> dict:
-    out = {}
-    for fam in text_string_to_metric_families(text):
-        for s in fam.samples:
-            out[(s.name, tuple(sorted(s.labels.items())))] = s.value
-    return out
-
-
-def _count(samples, name, **labels):
-    return sum(v for (n, lab), v in samples.items()
-               if n == name and all(dict(lab).get(k) == x for k, x in labels.items()))
-
-
 def every_worker_serving(g, metrics_dir: Path, workers: int, row=TYPICAL_ROW,
                          model="coat", seconds: float = 60.0) -> None:
     """Predict until every worker has answered one (each writes its own metrics file)."""
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
+    def all_answered() -> bool:
         r = g.post(f"/models/{model}/predict", json={"rows": [row]})
         pids = {p.stem.rsplit("_", 1)[-1] for p in metrics_dir.glob("counter_*.db")}
-        if r.status_code == 200 and len(pids) >= workers:
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"not every one of {workers} workers came up serving {model}")
+        return r.status_code == 200 and len(pids) >= workers
+
+    wait_for(all_answered, seconds, f"every one of {workers} workers serving {model}",
+             interval=0.05)
 
 
 def test_service_keeps_serving_counts_and_logs_every_refusal(forged, tmp_path):
@@ -199,7 +183,10 @@ def test_service_keeps_serving_counts_and_logs_every_refusal(forged, tmp_path):
             tmp = live.with_name(".live.forged")
             tmp.write_text(json.dumps({"version": v, "since": "now", "previous": 1}))
             tmp.replace(live)
-            time.sleep(0.5)
+            # both workers have acted on the forged pointer once each has refused it
+            wait_for(lambda v=v: metric_count(metric_samples(g.get("/metrics").text),
+                                              "kridge_load_failures_total", version=str(v)) >= 2,
+                     what=f"both workers to refuse version {v}")
             for _ in range(12):
                 p = g.post("/models/coat/predict", json={"rows": [TYPICAL_ROW]})
                 assert p.status_code == 200 and p.headers["X-Model-Version"] == "1", (kind, p.text)
@@ -208,13 +195,13 @@ def test_service_keeps_serving_counts_and_logs_every_refusal(forged, tmp_path):
             bodies.append(ready.text)
             tmp.write_bytes(good)
             tmp.replace(live)
-        time.sleep(0.5)
-        assert g.get("/readyz").status_code == 200
-        samples = _samples(g.get("/metrics").text)
+        wait_for(lambda: all(g.get("/readyz").status_code == 200 for _ in range(8)),
+                 what="every worker ready on version 1 again")
+        samples = metric_samples(g.get("/metrics").text)
         for v in numbers.values():
             # both workers refused it (each loads on its own)
-            assert _count(samples, "kridge_load_failures_total", version=str(v)) == 2, v
-        assert _count(samples, "kridge_errors_total", code="version_refused") == len(numbers)
+            assert metric_count(samples, "kridge_load_failures_total", version=str(v)) == 2, v
+        assert metric_count(samples, "kridge_errors_total", code="version_refused") == len(numbers)
         bodies += [g.post("/models/coat/rollback", headers={"Authorization": "Bearer x"}).text,
                    g.post("/models/nosuch/predict", json={"rows": [[1]]}).text,
                    g.get("/models/nosuch/versions").text,

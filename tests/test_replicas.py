@@ -7,11 +7,10 @@ would be; they share nothing but the store directory. Waits poll with a deadline
 from __future__ import annotations
 
 import json
-import subprocess
-import sys
 import time
 from contextlib import ExitStack
 
+from cli_helpers import kridge
 from make_coating_data import TYPICAL_ROW
 from service_helpers import Gunicorn
 
@@ -63,8 +62,7 @@ def test_replicas_sharing_a_store_follow_rollback_refuse_corruption_and_join(tmp
         assert [version_served(g) for g in replicas] == [2, 2]
 
         # `kridge rollback` from another process: every replica follows
-        r = subprocess.run([sys.executable, "-m", "trainer.cli", "rollback", "c", "--store",
-                            str(store_dir)], capture_output=True, text=True, timeout=120)
+        r = kridge("rollback", "c", store=store_dir, timeout=120)
         assert r.returncode == 0, r.stderr
         assert store.live_version("c") == 1
         all_follow(replicas, lambda g: version_served(g) == 1)
@@ -84,9 +82,7 @@ def test_replicas_sharing_a_store_follow_rollback_refuse_corruption_and_join(tmp
         raw = bytearray(arr.read_bytes())
         raw[-1] ^= 0x01
         arr.write_bytes(bytes(raw))
-        r = subprocess.run([sys.executable, "-m", "trainer.cli", "release", "c", str(bad),
-                            "--store", str(store_dir)], capture_output=True, text=True,
-                           timeout=120)
+        r = kridge("release", "c", bad, store=store_dir, timeout=120)
         assert r.returncode != 0 and store.live_version("c") == 1
         # ... and when another tool points live.json at it anyway, every replica refuses it,
         # says so on /readyz and keeps serving the last good version

@@ -3,10 +3,14 @@
 from __future__ import annotations
 
 import base64
+import json
 import re
 
+import numpy as np
 import pytest
+from make_coating_data import TYPICAL_ROW
 
+from trainer.cautions import R2_POOR
 from trainer.cli import main
 
 
@@ -33,14 +37,20 @@ def test_train_auto_writes_self_contained_report(csv_300, store_dir, capsys):
     assert not re.search(r'(src|href)="(https?:)?//', page)  # no network assets
     for heading in ("Data", "Chosen parameters", "Tuning: leave-one-out RMSE against ridge",
                     "Holdout: parity and residuals", "Prediction intervals",
-                    "Training envelope"):
+                    "Training envelope", "Cautions"):
         assert f"<h2>{heading}</h2>" in page
+    cautions = page[page.index("<h2>Cautions</h2>"):page.index("<h2>Data</h2>")]
+    for words in ("<code>out_of_range</code>", "<code>novel</code>", "extrapolation",
+                  "site&#x27;s procedures", "qualified person", "jackknife"):
+        assert words in cautions, words
+    assert "Poor holdout score" not in cautions  # the demo targets are well predicted
     assert "holdout coverage" in page and "oven_temp_c" in page
     assert "Best of each kernel compared" in page  # --kernel auto lists each kernel
 
 
 def test_inspect_prints_headline_numbers(csv_300, store_dir, capsys):
-    main(["train", str(csv_300), "--target", "hardness_s", "--name", "c", "--quiet"])
+    main(["train", str(csv_300), "--target", "hardness_s", "--features", ",".join(TYPICAL_ROW),
+          "--name", "c", "--quiet"])
     capsys.readouterr()
     assert main(["inspect", "c"]) == 0
     out = capsys.readouterr().out
@@ -48,3 +58,25 @@ def test_inspect_prints_headline_numbers(csv_300, store_dir, capsys):
         assert re.search(rf"^{key}\s", out, re.M), key
     assert re.search(r"^LOO\s+hardness_s: RMSE [0-9.]+", out, re.M)
     assert "exact leave-one-out" in out
+    assert re.search(r"^intervals\s+jackknife: .*No finite-sample coverage guarantee", out, re.M)
+    assert re.search(r"^holdout coverage\s+80% → \d+\.\d%; 90% → \d+\.\d%; 95% → ", out, re.M)
+
+
+def test_poor_holdout_score_is_warned_about_and_cautioned(tmp_path, store_dir, capsys):
+    # a target unrelated to the inputs: no model can explain it
+    rng = np.random.default_rng(0)
+    path = tmp_path / "noise.csv"
+    with open(path, "w") as fh:
+        fh.write("a,b,y\n")
+        for a, b, y in rng.standard_normal((200, 3)):
+            fh.write(f"{a:.6f},{b:.6f},{y:.6f}\n")
+    assert main(["train", str(path), "--target", "y", "--name", "noise", "--quiet"]) == 0
+    err = capsys.readouterr().err  # the warning is printed even with --quiet
+    manifest = json.loads((store_dir / "noise" / "versions" / "1" / "manifest.json").read_text())
+    r2 = manifest["metrics"]["holdout"]["y"]["r2"]
+    assert r2 < R2_POOR
+    assert err.startswith(f"warning: y: holdout R² {r2:.3g} is below {R2_POOR}")
+    assert err.count("\n") == 1
+    page = (store_dir / "noise" / "versions" / "1" / "report.html").read_text()
+    cautions = page[page.index("<h2>Cautions</h2>"):page.index("<h2>Data</h2>")]
+    assert "Poor holdout score" in cautions and f"{r2:.3g}" in cautions

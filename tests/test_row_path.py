@@ -109,7 +109,7 @@ def test_predict_matches_scikit_learn(data, name, m, targets):
     scale = np.max(np.abs(want))
     np.testing.assert_allclose(got.reshape(m, -1), want, rtol=1e-10, atol=1e-10 * scale,
                                err_msg=f"against scikit-learn {sklearn.__version__}")
-    y, _ = model.predict_with_envelope(x)
+    y, _ = model.score(x)
     np.testing.assert_allclose(y, want, rtol=1e-10, atol=1e-10 * scale,
                                err_msg=f"against scikit-learn {sklearn.__version__}")
 
@@ -125,7 +125,7 @@ def test_envelope_matches_the_expansion_formula(data, name, m):
     x = _raw_rows(m, seed=100 + m)
     q_s = (x - MEAN) / SCALE
     want = _novelty_by_expansion(q_s, reference, 5)
-    _, env = model.predict_with_envelope(x)
+    _, env = model.score(x)
     got = np.array([e["novelty"] for e in env])
     np.testing.assert_allclose(got, np.round(want, 4), rtol=0, atol=1e-12)
     lo, hi = MEAN - 2 * SCALE, MEAN + 2 * SCALE
@@ -171,7 +171,7 @@ def test_reference_not_from_training_rows_uses_separate_product(data):
     model = _model("rbf", x_s, dual, other, k=3)
     assert not model.engine.gives_neighbours
     x = _raw_rows(9, seed=9)
-    _, env = model.predict_with_envelope(x)
+    _, env = model.score(x)
     want = _novelty_by_expansion((x - MEAN) / SCALE, other, 3)
     np.testing.assert_allclose([e["novelty"] for e in env], np.round(want, 4), atol=1e-12)
 
@@ -181,7 +181,7 @@ def test_float32_models_keep_the_separate_product(data):
     model = _model("rbf", x_s, dual, reference, precision="float32")
     assert not model.engine.gives_neighbours
     x = _raw_rows(3, seed=3)
-    _, env = model.predict_with_envelope(x)
+    _, env = model.score(x)
     want = _novelty_by_expansion((x - MEAN) / SCALE, reference, 5)
     np.testing.assert_allclose([e["novelty"] for e in env], np.round(want, 4), atol=1e-12)
 

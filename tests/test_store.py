@@ -1,6 +1,6 @@
 """The model store: round trip, faults, no pickle, concurrent publishing, release/rollback.
 
-Reference for the layout and rules: service/store.py and the README, "Concepts". The fault
+Reference for the layout and rules: service/store/ and the README, "Concepts". The fault
 tests damage a published version the way a disk, a crash or a hostile file would, then check that
 ``kridge verify`` names the fault and that ``load_model`` refuses it, while the neighbouring
 version stays usable.
@@ -12,22 +12,20 @@ import hashlib
 import json
 import os
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
+from cli_helpers import KRIDGE, run_cli
 
 from service import load_model
-from service.bundle import verify
 from service.kernels import KernelSpec
+from service.model import verify
 from service.store import SCHEMA, NotFound, Store, StoreError, check_name, check_version
-from trainer.cli import main
 from trainer.data import read_table, split_columns
 from trainer.fit import fit_exact
 from trainer.train import TrainOptions, train
 
-KRIDGE = str(Path(sys.executable).with_name("kridge"))
 TARGETS = ["hardness_s", "gloss_gu"]
 
 
@@ -40,13 +38,6 @@ def publish(store_dir, data, name="coat", targets=TARGETS, **kw):
 
 def vdir(store_dir, version, name="coat"):
     return store_dir / name / "versions" / str(version)
-
-
-def run_cli(capsys, *argv):
-    """Run the CLI in-process; returns (exit code, stdout, stderr)."""
-    code = main(list(argv))
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 # -- round trip -----------------------------------------------------------------------------
@@ -69,7 +60,7 @@ def test_round_trip_predictions_are_identical(store_dir, small_csv):
     assert isinstance(arrays["x_train"], np.memmap)  # memory-mapped, shared between workers
 
 
-def test_manifest_holds_what_the_design_requires(store_dir, small_csv):
+def test_manifest_holds_what_the_readme_describes(store_dir, small_csv):
     version = publish(store_dir, small_csv)
     m = json.loads((vdir(store_dir, version) / "manifest.json").read_text())
     for key in ("schema", "model", "version", "created", "features", "targets", "kernel",
@@ -263,7 +254,8 @@ def test_good_names_pass():
 # -- concurrency ----------------------------------------------------------------------------
 
 def test_four_trainers_publishing_at_once_get_four_versions(store_dir, small_csv):
-    cmd = [KRIDGE, "train", str(small_csv), "--target", "hardness_s", "--name", "same",
+    cmd = [*KRIDGE, "train", str(small_csv), "--target", "hardness_s", "--name", "same",
+           "--features", "oven_temp_c,line_speed_m_min,wet_film_um,humidity_pct,viscosity_mpas",
            "--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report", "--quiet",
            "--store", str(store_dir)]
     procs = [subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)

@@ -13,6 +13,8 @@ import json
 import os
 import sys
 
+from service.model import PRECISIONS, verifier
+from service.settings import DEFAULT_STORE
 from service.store import NotFound, Store, StoreError, check_version
 from trainer.errors import UserError
 
@@ -49,6 +51,8 @@ def cmd_train(args) -> int:
             print(*a, file=sys.stderr, **k)
 
     summary = train(opts, log=log)
+    for warning in summary["warnings"]:  # even with --quiet: they concern the model itself
+        print(f"warning: {warning}", file=sys.stderr)
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
@@ -101,18 +105,9 @@ def cmd_versions(args) -> int:
     return 0
 
 
-def _verifier(st: Store, name: str):
-    from service.bundle import verify
-
-    def check(version: int) -> None:
-        verify(st, name, version)
-
-    return check
-
-
 def cmd_release(args) -> int:
     st = _store(args)
-    rec = st.release(args.model, check_version(args.version), check=_verifier(st, args.model))
+    rec = st.release(args.model, check_version(args.version), check=verifier(st, args.model))
     prev = rec["previous"]
     print(f"{args.model}: version {rec['version']} is live (was {prev if prev else 'none'})")
     return 0
@@ -120,7 +115,7 @@ def cmd_release(args) -> int:
 
 def cmd_rollback(args) -> int:
     st = _store(args)
-    rec = st.rollback(args.model, check=_verifier(st, args.model))
+    rec = st.rollback(args.model, check=verifier(st, args.model))
     print(f"{args.model}: rolled back to version {rec['version']} (was {rec['previous']})")
     return 0
 
@@ -154,7 +149,7 @@ def cmd_inspect(args) -> int:
 
 
 def cmd_verify(args) -> int:
-    from service.bundle import verify
+    from service.model import verify
 
     st = _store(args)
     versions = [check_version(args.version)] if args.version else st.versions(args.model)
@@ -170,23 +165,24 @@ def cmd_verify(args) -> int:
 
 
 def cmd_predict(args) -> int:
-    from service.bundle import load_model
-    from trainer.score_file import score_csv
+    from service.model import load_model
+    from trainer.score_file import envelope_note, score_csv
 
     model = load_model(_store(args), args.model, args.version and check_version(args.version))
     if args.out:
         tmp = f"{args.out}.partial"
         try:
             with open(tmp, "w", newline="") as fh:
-                n = score_csv(model, args.data, fh, args.coverage, args.quiet)
+                scored = score_csv(model, args.data, fh, args.coverage, args.quiet)
             os.replace(tmp, args.out)
         finally:
             if os.path.exists(tmp):
                 os.unlink(tmp)
-        print(f"{n} rows scored with {model.name} v{model.version} -> {args.out}",
+        print(f"{scored.rows} rows scored with {model.name} v{model.version} -> {args.out}",
               file=sys.stderr)
     else:
-        score_csv(model, args.data, sys.stdout, args.coverage, quiet=True)
+        scored = score_csv(model, args.data, sys.stdout, args.coverage, quiet=True)
+    print(envelope_note(scored), file=sys.stderr)
     return 0
 
 
@@ -211,7 +207,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     def add(name, func, help_):
         sp = sub.add_parser(name, help=help_, description=help_)
-        sp.add_argument("--store", help="store root (default: $KRIDGE_STORE or ./kridge-store)")
+        sp.add_argument("--store", help=f"store root (default: $KRIDGE_STORE or ./{DEFAULT_STORE})")
         sp.set_defaults(func=func)
         return sp
 
@@ -231,7 +227,7 @@ def build_parser() -> argparse.ArgumentParser:
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")
     t.add_argument("--no-report", action="store_true", help="skip report.html")
-    t.add_argument("--precision", choices=("float64", "float32"), default="float64",
+    t.add_argument("--precision", choices=PRECISIONS, default="float64",
                    help="serving precision; float32 records its measured error (default float64)")
     t.add_argument("--time", metavar="COL",
                    help="timestamp column (ISO 8601 or a number): hold out the most recent "
@@ -282,7 +278,9 @@ def build_parser() -> argparse.ArgumentParser:
     s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
     s.add_argument("--bind", default=None,
                    help="HOST:PORT (default $KRIDGE_BIND or 127.0.0.1:8000)")
-    s.add_argument("--workers", type=int, default=None, help="worker processes (default 2)")
+    s.add_argument("--workers", type=int, default=None,
+                   help="worker processes (default $KRIDGE_WORKERS, else one per usable core, "
+                        "at least 2)")
 
     d = add("demo", cmd_demo, "demo data -> train -> release -> serve, with example calls")
     d.add_argument("--bind", default=None)
@@ -299,7 +297,7 @@ EXIT_BUG = 70
 ARGUMENT_CHECKS = {
     ("kernels.py", "__post_init__"),  # KernelSpec: unknown kernel, bad gamma/degree/coef0
     ("kernels.py", "default_spec"),
-    ("bundle.py", "half_width"),  # --coverage outside (0, 1)
+    ("intervals.py", "check_coverage"),  # --coverage outside (0, 1)
     ("settings.py", "_int"),  # KRIDGE_* environment variables
     ("settings.py", "_float"),
 }

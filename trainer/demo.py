@@ -10,15 +10,13 @@ import json
 import os
 import signal
 import socket
-import subprocess
 import sys
 import tempfile
-import time
 import urllib.error
 import urllib.request
 from pathlib import Path
 
-from service.launch import gunicorn_argv, serve_env
+from service.launch import Gunicorn, free_port
 from service.store import store_root
 from trainer.errors import UserError
 
@@ -37,12 +35,6 @@ def _generator():
     return mod
 
 
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def port_free(host: str, port: int) -> bool:
     with socket.socket() as s:
         try:
@@ -50,22 +42,6 @@ def port_free(host: str, port: int) -> bool:
         except OSError:
             return False
     return True
-
-
-def wait_ready(base: str, proc: subprocess.Popen, timeout: float = 60.0) -> None:
-    """Poll /readyz until 200; fail early if gunicorn exits."""
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            raise UserError(f"the service exited during start-up (status {proc.returncode})")
-        try:
-            with urllib.request.urlopen(base + "/readyz", timeout=2) as r:
-                if r.status == 200:
-                    return
-        except (urllib.error.URLError, OSError):
-            pass
-        time.sleep(0.2)
-    raise UserError(f"the service did not become ready within {timeout:.0f} s")
 
 
 def post(base: str, path: str, body: dict) -> tuple[int, dict]:
@@ -76,17 +52,6 @@ def post(base: str, path: str, body: dict) -> tuple[int, dict]:
             return r.status, json.loads(r.read())
     except urllib.error.HTTPError as exc:
         return exc.code, json.loads(exc.read())
-
-
-def stop(proc: subprocess.Popen) -> None:
-    """End gunicorn by its pid: SIGTERM, then SIGKILL if it lingers."""
-    if proc.poll() is None:
-        proc.send_signal(signal.SIGTERM)
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait()
 
 
 def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = False) -> int:
@@ -102,6 +67,10 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         raise UserError(f"cannot listen on {bind}: address in use or invalid; "
                         "pass --bind 127.0.0.1:PORT")
 
+    base = f"http://{bind}"
+    # the first line: where a person looks once the service is up
+    print(f"Page for people: {base}/  (models, versions, history, try a row; up after 3/3)",
+          flush=True)
     with tempfile.TemporaryDirectory() as tmp:
         csv_path = Path(tmp) / "coating_line.csv"
         gen.write_csv(csv_path, gen.generate())
@@ -114,14 +83,16 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
     for t, m in summary["metrics"].get("holdout", {}).items():
         print(f"    holdout {t}: RMSE {m['rmse']:.3g}, R² {m['r2']:.3f}")
 
-    base = f"http://{bind}"
-    env = serve_env(bind, 2, store)
-    proc = subprocess.Popen(gunicorn_argv(bind, 2), env=env)
+    server = Gunicorn(bind, 2, store).start()
     try:
-        wait_ready(base, proc)
+        try:
+            server.wait_ready()
+        except RuntimeError as exc:
+            raise UserError(str(exc)) from None
         inside = {"rows": [gen.TYPICAL_ROW], "coverage": 0.9}
         outside = {"rows": [gen.EMPTY_REGION_ROW, dict(gen.TYPICAL_ROW, oven_temp_c=245.0)]}
         print(f"3/3 serving on {base} (store {store})\n")
+        print(f"# in a browser: {base}/  and  {base}/page/{MODEL}\n")
         for label, body in (("a typical operating point", inside),
                             ("the never-run region and a too-hot oven", outside)):
             print(f"# {label}:")
@@ -131,6 +102,9 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         print("# Predictions outside the training envelope are extrapolations: check them "
               "against site procedures before acting on them.\n")
         if smoke:
+            with urllib.request.urlopen(base + "/", timeout=10) as r:
+                print(f"page {base}/: HTTP {r.status}, {MODEL} listed: "
+                      f"{f'>{MODEL}</a>' in r.read().decode()}")
             for body in (inside, outside):
                 status, answer = post(base, f"/models/{MODEL}/predict", body)
                 print(f"HTTP {status}: {json.dumps(answer)}")
@@ -140,10 +114,9 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         print("Serving until Ctrl-C.", flush=True)
         # a service manager stops us with SIGTERM: leave through `finally` so gunicorn ends too
         signal.signal(signal.SIGTERM, lambda *_: sys.exit(0))
-        proc.wait()
-        return proc.returncode or 0
+        return server.proc.wait() or 0
     except KeyboardInterrupt:
         return 0
     finally:
-        stop(proc)
+        server.stop(grace=15)
         sys.stdout.flush()

@@ -27,7 +27,7 @@ RCOND_MIN = 1e-13
 #: From this size on, LAPACK factorizations run on one BLAS thread: the OpenBLAS bundled with
 #: the numpy/scipy wheels here crashes (SIGSEGV) in multi-threaded Cholesky at n ≥ 16,000 on
 #: AVX-512 CPUs (measured here: README, "Large models on AVX-512 machines"); 12,000 leaves a
-#: margin below the smallest size seen to crash. One thread costs about 25 % in time at n = 20,000.
+#: margin below the smallest size seen to crash (its cost in time: DEVELOPERS.md).
 SINGLE_THREAD_FROM = 12_000
 
 

@@ -312,13 +312,9 @@ def run_pass2(plan: Plan, blocks: list, cluster: str | None, progress) -> list[B
 
 def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     """The Nyström job (see the module notes); returns the train summary."""
-    from trainer.train import (
-        explicit_spec,
-        library_versions,
-        publish_and_summarize,
-        time_span,
-    )
-    from trainer.tuning import COVERAGE_LEVELS, interval_coverage
+    from trainer.calibration import COVERAGE_LEVELS, interval_coverage
+    from trainer.manifest import library_versions, time_span
+    from trainer.train import explicit_spec, publish_and_summarize
 
     src = Source(opts.data, opts.sep, opts.decimal)
     features = feature_names(src, opts.targets, opts.features, opts.time)

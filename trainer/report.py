@@ -15,7 +15,8 @@ from pathlib import Path
 
 import numpy as np
 
-from trainer.tuning import COVERAGE_LEVELS, interval_coverage
+from trainer.calibration import COVERAGE_LEVELS, interval_coverage
+from trainer.cautions import ACTING_ON_PREDICTIONS, R2_POOR, poor_holdout
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
@@ -184,6 +185,31 @@ def _metrics_rows(metrics: dict) -> list[list]:
     return rows
 
 
+def _cautions(manifest: dict) -> str:
+    """The caution section: poor holdout scores, extrapolation flags, what the intervals
+    promise, and review before acting."""
+    items = [f"<li><b>Poor holdout score.</b> {_esc(w)}.</li>"
+             for w in poor_holdout(manifest.get("metrics", {}))]
+    if not (manifest.get("metrics") or {}).get("holdout"):
+        items.append("<li><b>No holdout.</b> Nothing scored this model on rows it did not "
+                     "see; its errors on new rows are unknown.</li>")
+    items.append("<li><b>Extrapolation.</b> Each prediction carries envelope flags: "
+                 "<code>out_of_range</code> names the features outside their training "
+                 "[min, max], <code>novel</code> marks inputs far from every training row "
+                 "(see Training envelope below). A flagged prediction is an extrapolation "
+                 "and may be far off.</li>")
+    intervals = manifest.get("intervals") or {}
+    if intervals.get("name") == "jackknife" or str(intervals.get("method", "")).startswith(
+            "jackknife"):
+        items.append("<li><b>Intervals.</b> The jackknife has no finite-sample coverage "
+                     "guarantee; trust the coverage measured on the holdout (Prediction "
+                     "intervals below), not the nominal level.</li>")
+    items.append(f"<li><b>Before acting.</b> {_esc(ACTING_ON_PREDICTIONS)}</li>")
+    return ("<h2>Cautions</h2><ul>" + "".join(items) + "</ul>"
+            f"<p class=note>A holdout R² below {R2_POOR} is flagged: the model then explains "
+            "less than half of the target's variance on unseen rows.</p>")
+
+
 def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
            calib: np.ndarray | None) -> str:
     """The report as one HTML string."""
@@ -195,7 +221,8 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
              f" — training report</title><style>{_STYLE}</style></head><body>",
              f"<h1>{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}: "
              f"training report</h1>",
-             f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>"]
+             f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>",
+             _cautions(manifest)]
 
     parts.append("<h2>Data</h2>")
     parts.append(_table(["", ""], [

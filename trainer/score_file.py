@@ -3,16 +3,21 @@
 Output columns: the model's features as read, then ``<target>_predicted`` for each target,
 ``<target>_lower``/``<target>_upper`` when a coverage is asked, then the envelope flags
 ``inside``, ``novelty`` and ``out_of_range`` (feature names joined by ``;``).
+
+How many rows fell outside the training envelope is returned with the row count;
+:func:`envelope_note` words it for stderr, with the caution people need before acting on
+extrapolated numbers.
 """
 
 from __future__ import annotations
 
 import csv
 import sys
+from typing import NamedTuple
 
 import numpy as np
 
-from service.bundle import Model
+from service.model import Model, check_coverage
 from trainer.data import iter_chunks
 from trainer.errors import UserError
 from trainer.reader import BLOCK_BYTES
@@ -29,13 +34,29 @@ def _progress(quiet: bool):
     return tqdm(unit=" rows", unit_scale=True, desc="scoring", file=sys.stderr)
 
 
+class Scored(NamedTuple):
+    """What one scoring run wrote: all rows, and those outside the training envelope."""
+
+    rows: int
+    outside: int
+
+
+def envelope_note(scored: Scored) -> str:
+    """Two lines for stderr: the extrapolation count and the caution that goes with it."""
+    return (f"{scored.outside} of {scored.rows} rows outside the training envelope: "
+            "extrapolations\nCaution: these are model estimates; follow site procedures and "
+            "have a qualified person review them before acting on them.")
+
+
 def score_csv(model: Model, path, out, coverage: float | None = None, quiet: bool = False,
-              block_bytes: int = BLOCK_BYTES) -> int:
-    """Write predictions for every row of ``path`` to the text stream ``out``; returns rows."""
+              block_bytes: int = BLOCK_BYTES) -> Scored:
+    """Write predictions for every row of ``path`` to the text stream ``out``."""
     half = None
     if coverage is not None:
-        if not 0 < coverage < 1:
-            raise UserError(f"--coverage must be between 0 and 1 (exclusive), got {coverage}")
+        try:
+            check_coverage(coverage)
+        except ValueError as exc:
+            raise UserError(f"--{exc}") from None
         if not model.has_intervals:
             raise UserError(f"{model.name} v{model.version} has no interval calibration")
         half = model.half_width(coverage)
@@ -47,13 +68,11 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
             header += [f"{t}_lower", f"{t}_upper"]
     writer.writerow(header + ["inside", "novelty", "out_of_range"])
     bar = _progress(quiet)
-    total = 0
+    total = outside = 0
     for _start, x in chunks:
         if not x.shape[0]:
             continue
-        xs = model.standardize(x)
-        y = model.predict_standardized(xs)
-        env = model.envelope(x, xs)
+        y, env = model.score(x)
         cols = [x, y]
         if half is not None:
             bounds = np.empty((y.shape[0], 2 * y.shape[1]))
@@ -65,8 +84,9 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
             writer.writerow([repr(float(v)) for v in row] + [
                 "true" if e["inside"] else "false", e["novelty"], ";".join(e["out_of_range"])])
         total += x.shape[0]
+        outside += sum(not e["inside"] for e in env)
         if bar is not None:
             bar.update(x.shape[0])
     if bar is not None:
         bar.close()
-    return total
+    return Scored(total, outside)

@@ -67,10 +67,9 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     if m.get("intervals"):
         lines.append(("intervals", m["intervals"]["method"]))
         cov = m["intervals"].get("holdout_coverage")
-        if cov:
-            lines.append(("holdout coverage", "; ".join(
-                f"{c['nominal']:.0%} → " + ", ".join(f"{v:.1%}" for v in c["empirical"])
-                for c in cov)))
+        lines.append(("holdout coverage", "; ".join(
+            f"{c['nominal']:.0%} → " + ", ".join(f"{v:.1%}" for v in c["empirical"])
+            for c in cov) if cov else "not measured"))
     lines.append(("novelty", f"k={nov.get('k')}, threshold distance "
                              f"{fmt(nov.get('threshold_distance', float('nan')))} "
                              f"({nov.get('calibration', '')})"))

@@ -4,37 +4,34 @@ Order of work, so that every reported number is honest:
 
 1. read and check the data; split off a seeded holdout (default 20 %);
 2. choose kernel parameters and ridge on the training part only (explicit values are used
-   exactly; omitted ones are tuned by exact leave-one-out, see :mod:`trainer.tuning`);
+   exactly; omitted ones are tuned by cross-validation, see :mod:`trainer.tuning`);
 3. score the training-part model on the holdout;
 4. refit on *all* rows with the chosen parameters — this is the bundle — and compute its
-   exact leave-one-out residuals, which calibrate the prediction intervals;
-5. compute the envelope, write the manifest and arrays, publish atomically.
+   exact leave-one-out residuals, which calibrate the prediction intervals (the jackknife,
+   see :mod:`trainer.calibration` for what that promises and what it does not);
+5. compute the envelope, write the manifest (:mod:`trainer.manifest`) and arrays, publish
+   atomically; warn when the holdout score is poor (:mod:`trainer.cautions`).
 """
 
 from __future__ import annotations
 
-import platform
 import time
 from dataclasses import dataclass
-from datetime import datetime, timezone
-from pathlib import Path
 
 import numpy as np
 
-from service.bundle import verify
 from service.kernels import KERNEL_NAMES, KernelSpec, default_spec
-from service.store import Store, now_iso
-from trainer import data, envelope_stats
+from service.model import verifier
+from service.store import Store
+from trainer import calibration, cautions, data, envelope_stats
 from trainer.errors import UserError
 from trainer.fit import Fit, fit_exact, scores
+from trainer.manifest import exact_manifest, time_span
 
 #: ``--method auto``: exact KRR up to this many usable rows, Nyström above. An exact fit of
-#: 15,000 rows holds a 1.8 GB kernel matrix and factorizes in about 20 s on two cores;
-#: twice the rows cost four times the memory and eight times the time.
+#: 15,000 rows holds a 1.8 GB kernel matrix (8 n² bytes); twice the rows cost four times the
+#: memory and eight times the time (timings: DEVELOPERS.md, "Measured limits").
 AUTO_EXACT_MAX_ROWS = 15_000
-#: Above this many rows the bundle's exact LOO residuals (an O(n³) inverse) are skipped and
-#: intervals are calibrated on the holdout residuals instead (split conformal).
-LOO_MAX_ROWS = 8000
 
 
 @dataclass
@@ -80,36 +77,8 @@ def split_holdout(n: int, fraction: float, seed: int,
     return np.sort(perm[n_hold:]), np.sort(perm[:n_hold])
 
 
-def time_text(value: float, clock: bool) -> str | float:
-    """A time value as the user wrote it: ISO 8601 (UTC) for clock times, else the number."""
-    if not clock:
-        return float(value)
-    return datetime.fromtimestamp(value, tz=timezone.utc).isoformat(timespec="seconds")
-
-
-def time_span(column: str | None, times: np.ndarray | None, clock: bool) -> dict | None:
-    """First and last time of the training rows, for the manifest and the envelope."""
-    if times is None:
-        return None
-    return {"column": column, "start": time_text(times.min(), clock),
-            "end": time_text(times.max(), clock),
-            "kind": "ISO 8601, UTC" if clock else "number"}
-
-
 def _per_target(targets: list[str], y: np.ndarray, pred: np.ndarray) -> dict:
     return {t: scores(y[:, j], pred[:, j]) for j, t in enumerate(targets)}
-
-
-def library_versions() -> dict[str, str]:
-    import importlib.metadata as md
-
-    out = {"python": platform.python_version()}
-    for lib in ("kridge", "numpy", "scipy"):
-        try:
-            out[lib] = md.version(lib)
-        except md.PackageNotFoundError:
-            out[lib] = "unknown"
-    return out
 
 
 def precision_check(spec, x_train: np.ndarray, dual: np.ndarray, rows_s: np.ndarray,
@@ -146,13 +115,17 @@ def explicit_spec(opts: TrainOptions, n_features: int) -> KernelSpec | None:
 
 def choose_parameters(opts: TrainOptions, x_tr: np.ndarray, y_tr: np.ndarray, log,
                       time_ordered: bool = False):
-    """Explicit parameters as given; omitted ones tuned by :mod:`trainer.tuning`."""
+    """(spec, ridge, tuning account): explicit parameters as given (no account); omitted ones
+    tuned by :mod:`trainer.tuning`."""
     spec = explicit_spec(opts, x_tr.shape[1])
     if spec is not None:
         return spec, float(opts.ridge), None
     from trainer import tuning
 
-    return tuning.tune(opts, x_tr, y_tr, log, time_ordered=time_ordered)
+    given = tuning.Given(opts.gamma, opts.degree, opts.coef0, opts.ridge)
+    tuned = tuning.tune(x_tr, y_tr, kernel=opts.kernel, given=given, seed=opts.seed,
+                        quiet=opts.quiet, log=log, time_ordered=time_ordered)
+    return tuned.spec, tuned.ridge, tuned.account
 
 
 def _params_of(kernel: str) -> tuple[str, ...]:
@@ -216,44 +189,26 @@ def train(opts: TrainOptions, log=print) -> dict:
 
     metrics: dict = {}
     holdout_abs = None
-    holdout_coverage = None
     holdout_points = None
+    held = calibration.HoldoutCheck(None, None)
     if ho.size:
         part = fit_exact(x[tr], y[tr], spec, ridge,
-                         want_loo=tr.size <= LOO_MAX_ROWS and not timed)
+                         want_loo=tr.size <= calibration.LOO_MAX_ROWS and not timed)
         pred = part.predict(x[ho])
         metrics["holdout"] = _per_target(opts.targets, y[ho], pred)
         holdout_abs = np.abs(y[ho] - pred)
         holdout_points = {"actual": y[ho].tolist(), "predicted": pred.tolist()}
         if timed:
             holdout_points["time"] = d.time[ho].tolist()
-        from trainer.tuning import interval_coverage
-
-        if part.loo_residuals is not None:
-            # honest check of the interval method: calibrated on the training part's LOO
-            # residuals, scored on rows that neither the fit nor the calibration saw
-            holdout_coverage = interval_coverage(np.abs(part.loo_residuals), y[ho], pred)
-        elif timed and ho.size >= 4:
-            # in time order: calibrate on the earlier half of the holdout, check on the later
-            half = ho.size // 2
-            holdout_coverage = interval_coverage(holdout_abs[:half], y[ho][half:], pred[half:])
+        held = calibration.check_on_holdout(part, y[ho], pred, timed)
 
     t_fit = time.perf_counter()
-    final: Fit = fit_exact(x, y, spec, ridge, want_loo=n <= LOO_MAX_ROWS and not timed)
+    final: Fit = fit_exact(x, y, spec, ridge,
+                           want_loo=n <= calibration.LOO_MAX_ROWS and not timed)
     fit_seconds = time.perf_counter() - t_fit
     if final.loo_residuals is not None:
         metrics["loo"] = _per_target(opts.targets, y, y - final.loo_residuals)
-        calib = np.abs(final.loo_residuals)
-        interval_how = ("split-conformal quantile of the exact leave-one-out residuals of the "
-                        "final model (jackknife; Barber, Candès, Ramdas & Tibshirani 2021)")
-    elif holdout_abs is not None:
-        calib = holdout_abs
-        interval_how = ("split-conformal quantile of the holdout residuals of the model fitted "
-                        "on the training part (Lei et al. 2018)"
-                        + ("; the holdout is the most recent stretch in time" if timed else ""))
-    else:
-        calib = None
-        interval_how = None
+    calib, intervals = calibration.calibrate(final, holdout_abs, held, timed)
 
     check = None
     if opts.precision == "float32":
@@ -265,51 +220,11 @@ def train(opts: TrainOptions, log=print) -> dict:
     span = time_span(d.time_column, d.time, d.time_is_clock)
     if span:
         env["time_span"] = span
-    manifest = {
-        "created": now_iso(),
-        "features": features,
-        "targets": list(opts.targets),
-        "kernel": {"name": spec.name, "params": spec.params()},
-        "ridge": ridge,
-        "standardization": {
-            "mean": final.scaler.mean.tolist(),
-            "scale": final.scaler.scale.tolist(),
-            "ddof": 0,
-        },
-        "intercept": final.intercept.tolist(),
-        "training": {
-            "rows": int(n),
-            "data_file": Path(opts.data).name,
-            "data_sha256": d.sha256,
-            "data_format": d.dialect,
-            "row_counts": d.counts,
-            "time": span,
-            "holdout_kind": ("the most recent rows in time" if timed
-                             else "seeded random draw"),
-            "holdout_fraction": opts.holdout,
-            "holdout_rows": int(ho.size),
-            "seed": opts.seed,
-            "fit_seconds": round(fit_seconds, 3),
-            "method": "exact",
-            "method_reason": reason,
-            "solver": "cholesky (scipy.linalg.cho_factor)",
-            "final_fit": "refitted on all rows with the chosen parameters",
-        },
-        "tuning": tuning_info,
-        "metrics": metrics,
-        "envelope": env,
-        "intervals": None if calib is None else {
-            "method": interval_how,
-            "calibration_rows": int(calib.shape[0]),
-            "holdout_coverage": holdout_coverage,
-            "holdout_coverage_method": None if holdout_coverage is None else (
-                "half-widths from the training-part model's LOO residuals, applied to its "
-                "holdout predictions"),
-        },
-        "precision": opts.precision,
-        "precision_check": check,
-        "libraries": library_versions(),
-    }
+    manifest = exact_manifest(
+        opts, data=d, final=final, spec=spec, ridge=ridge, rows=n, holdout_rows=ho.size,
+        timed=timed, span=span, fit_seconds=fit_seconds, reason=reason,
+        tuning_info=tuning_info, metrics=metrics, envelope=env, intervals=intervals,
+        check=check)
     # The laplacian's per-feature passes read X one feature at a time: store it column-major
     # so that serving processes read it from the shared memory map without a private copy.
     x_store = np.asfortranarray(final.x_s) if spec.uses == "l1" else final.x_s
@@ -336,10 +251,11 @@ def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arra
         def extra(folder, version):
             report.write_report(folder / "report.html", dict(manifest, version=version,
                                 model=opts.name), *report_args)
+    warnings = cautions.poor_holdout(metrics)
     version = store.publish(opts.name, manifest, arrays, extra_files=extra)
     live = False
     if opts.release:
-        store.release(opts.name, version, check=lambda v: verify(store, opts.name, v))
+        store.release(opts.name, version, check=verifier(store, opts.name))
         live = True
     return {
         "name": opts.name,
@@ -360,4 +276,5 @@ def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arra
                    if extra is not None else None),
         "seconds": round(time.perf_counter() - t0, 2),
         "store": str(store.root),
+        "warnings": warnings,
     }

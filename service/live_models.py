@@ -6,7 +6,7 @@ version is loaded and verified on that thread and swapped in with one reference 
 A version that fails to load is never served: the old one keeps serving, the failure is
 logged and counted, and loading is retried only when live.json changes again.
 
-Two loads happen on a request thread, both under the hub's locks so that one bundle is never
+Two loads happen on a request thread, both under this object's locks so that one bundle is never
 loaded twice at once: a model first seen after the last poll (the request waits for one
 refresh pass, which the watcher may be running already), and versions pinned by
 ``?version=N``, which load on demand into a small LRU cache.
@@ -21,10 +21,10 @@ from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass
 
-from service.bundle import Model, load_model
+from service.model import Model, load_model
 from service.store import NotFound, Store, StoreError
 
-log = logging.getLogger("kridge.hub")
+log = logging.getLogger("kridge.live_models")
 
 
 @dataclass
@@ -35,7 +35,7 @@ class LiveSlot:
     problem: str | None = None  # why ``wanted`` is not being served
 
 
-class ModelHub:
+class LiveModels:
     """The models this worker serves: the live version of each, plus a few pinned ones."""
 
     def __init__(
@@ -52,7 +52,7 @@ class ModelHub:
         self._lock = threading.Lock()  # guards the pinned cache
         self._refreshing = threading.Lock()  # one refresh pass at a time
         self._loading: dict[tuple[str, int], threading.Lock] = {}  # one load per bundle
-        self.loads = 0  # bundles loaded by this hub (live and pinned)
+        self.loads = 0  # bundles loaded here (live and pinned)
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
 
@@ -172,4 +172,4 @@ class ModelHub:
         return not problems, served, problems
 
 
-__all__ = ["ModelHub", "NotFound"]
+__all__ = ["LiveModels", "NotFound"]

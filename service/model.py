@@ -8,18 +8,31 @@ load the same version share one copy in the page cache.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 
-from service import envelope
+from service import envelope, intervals
 from service.engine import Engine
+from service.intervals import check_coverage
 from service.kernels import KernelSpec
 from service.store import Store, StoreError
+
+#: Serving precisions a manifest (and ``kridge train --precision``) may name.
+PRECISIONS = ("float64", "float32")
+
 
 #: Batches up to this many values are screened for non-finite values by one dot product.
 _SCREEN = 4096
 _ZEROS = np.zeros(_SCREEN)
 _ZEROS.flags.writeable = False
+
+
+def check_precision(precision: str) -> str:
+    """``precision`` if it is one of :data:`PRECISIONS`, else ValueError."""
+    if precision not in PRECISIONS:
+        raise ValueError(f"precision must be float64 or float32, not {precision!r}")
+    return precision
 
 
 class Model:
@@ -44,9 +57,7 @@ class Model:
         self.intercept = np.asarray(manifest["intercept"], dtype=np.float64)
         kern = manifest["kernel"]
         self.spec = KernelSpec.from_params(kern["name"], kern.get("params", {}))
-        precision = manifest.get("precision", "float64")
-        if precision not in ("float64", "float32"):
-            raise ValueError(f"unknown precision {precision!r}")
+        precision = check_precision(manifest.get("precision", "float64"))
         env = manifest["envelope"]
         self.lo = np.array([env["ranges"][f]["min"] for f in self.features])
         self.hi = np.array([env["ranges"][f]["max"] for f in self.features])
@@ -79,9 +90,10 @@ class Model:
         """(m, t) predictions for rows already standardized (service path, no re-checks)."""
         return self.engine.predict(xs) + self.intercept
 
-    def predict_with_envelope(self, x: np.ndarray) -> tuple[np.ndarray, list[dict]]:
-        """(m, t) predictions and the :meth:`envelope` report of raw rows already checked.
+    def score(self, x: np.ndarray) -> tuple[np.ndarray, list[dict]]:
+        """Raw rows ``x`` (m, d), already checked, → ((m, t) predictions, envelope per row).
 
+        The one path from rows to answers (the service and ``kridge predict`` both use it).
         When the novelty reference rows are training rows (distance kernels), their
         distances come out of the prediction's own product instead of a second one.
         """
@@ -113,19 +125,12 @@ class Model:
     def half_width(self, coverage: float) -> np.ndarray:
         """Interval half-width per target for a nominal ``coverage``.
 
-        The ⌈(c+1)·coverage⌉-th smallest of the c calibration residuals |r|, the finite-sample
-        split-conformal quantile (Lei, G'Sell, Rinaldo, Tibshirani & Wasserman, "Distribution-free
-        predictive inference for regression", JASA 2018). Infinite when c is too small.
+        The ⌈(c+1)·coverage⌉-th smallest of the c calibration residuals |r|
+        (:mod:`service.intervals`). Infinite when c is too small.
         """
         if self.residuals is None:
             raise StoreError(f"{self.name} v{self.version} stores no interval calibration")
-        if not 0 < coverage < 1:  # rank 0 would silently index the largest residual
-            raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
-        c = self.residuals.shape[0]
-        rank = math.ceil((c + 1) * coverage)
-        if rank > c:
-            return np.full(self.residuals.shape[1], np.inf)
-        return np.asarray(self.residuals[rank - 1], dtype=np.float64)
+        return intervals.half_width(self.residuals, coverage)
 
     def _check(self, x) -> np.ndarray:
         x = np.asarray(x, dtype=np.float64)
@@ -181,4 +186,14 @@ def verify(store, name: str, version: int) -> Model:
     return model
 
 
-__all__ = ["Model", "load_model", "verify"]
+def verifier(store, name: str) -> Callable[[int], None]:
+    """The check a release or rollback of ``name`` runs first: :func:`verify` the version."""
+
+    def check(version: int) -> None:
+        verify(store, name, version)
+
+    return check
+
+
+__all__ = ["PRECISIONS", "Model", "check_coverage", "check_precision", "load_model", "verify",
+           "verifier"]

@@ -1,5 +1,6 @@
-"""The predict route's work, framework-free: validate rows against a model, compute, shape
-the answer. Messages name the row (0-based, as in the request) and the feature at fault."""
+"""Request bodies in, answers out, for the predict route (framework-free): validate rows
+against a model, compute, shape the JSON answer. Messages name the row (0-based, as in the
+request) and the feature at fault."""
 
 from __future__ import annotations
 
@@ -9,8 +10,8 @@ import numpy as np
 import orjson
 from pydantic import ValidationError
 
-from service.bundle import Model
 from service.errors import ApiError
+from service.model import Model
 from service.schemas import RowBatch
 
 CAUTION = (
@@ -127,9 +128,7 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
                            f"coverage {req.coverage} needs more than the {c} calibration "
                            f"residuals this model has; the largest usable is {c / (c + 1):.4f}")
     t0 = time.perf_counter()
-    xs = model.standardize(x)
-    y = model.predict_standardized(xs)
-    env = model.envelope(x, xs)
+    y, env = model.score(x)
     compute = time.perf_counter() - t0
     multi = y.shape[1] > 1
     results = []

@@ -1,0 +1,52 @@
+"""The conformal quantile rule: one implementation for the trainer and the loaded model.
+
+A prediction interval is ŷ ± h, where h is a quantile of c absolute calibration residuals
+|r| — of rows the fitted model never saw (split conformal) or of its exact leave-one-out
+fits (the jackknife); the manifest says which. The quantile is the ⌈(c + 1)·coverage⌉-th
+smallest |r|, the finite-sample rank of split conformal prediction (Lei, G'Sell, Rinaldo,
+Tibshirani & Wasserman, "Distribution-free predictive inference for regression", JASA 2018;
+cited from memory).
+When that rank exceeds c the interval is unbounded: c residuals cannot support the coverage.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+
+def check_coverage(coverage: float) -> float:
+    """``coverage`` if it lies strictly between 0 and 1, else ValueError (a coverage of 0
+    would make the quantile rank 0, which silently indexes the largest residual)."""
+    if not 0 < coverage < 1:
+        raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
+    return coverage
+
+
+def conformal_rank(c: int, coverage: float) -> int | None:
+    """1-based rank ⌈(c + 1)·coverage⌉ of the half-width among c sorted residuals; None when
+    it exceeds c (infinite half-width). Raises ValueError unless 0 < coverage < 1."""
+    rank = math.ceil((c + 1) * check_coverage(coverage))
+    return rank if rank <= c else None
+
+
+def half_width(sorted_abs: np.ndarray, coverage: float) -> np.ndarray:
+    """Half-width per target from (c, t) absolute residuals sorted along axis 0.
+
+    The loaded model keeps its residuals sorted (memory-mapped), so no sort per request.
+    """
+    rank = conformal_rank(sorted_abs.shape[0], coverage)
+    if rank is None:
+        return np.full(sorted_abs.shape[1], np.inf)
+    return np.asarray(sorted_abs[rank - 1], dtype=np.float64)
+
+
+def largest_coverage(c: int) -> float:
+    """Largest coverage with a finite half-width from ``c`` residuals: the rank must not
+    exceed c, so coverage ≤ c / (c + 1), rounded down to a float on which
+    :func:`conformal_rank` agrees."""
+    cov = c / (c + 1)
+    while math.ceil((c + 1) * cov) > c:
+        cov = math.nextafter(cov, 0.0)
+    return cov

@@ -1,0 +1,222 @@
+"""What the pages for people show, gathered from the store, the loaded models and the metrics.
+
+Every function takes what it reads as arguments (a :class:`~service.store.Store`, the loaded
+live models, row counts from :mod:`service.metrics`), so the blueprint in
+:mod:`service.pages` stays a thin layer of routes. Nothing here writes anything.
+
+Messages shown to people come from the store's own errors, which never name a file path; the
+store's root is removed from them all the same (:func:`safe_message`).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from service.kernels import KernelSpec
+from service.metrics import RowCounts
+from service.store import Store, StoreError
+
+
+def safe_message(store: Store, exc: Exception) -> str:
+    """The error's text for a page: never the store's location."""
+    text = str(exc)
+    for root in {str(store.root), str(store.root.resolve())}:
+        text = text.replace(root, "the store")
+    return text
+
+
+def kernel_text(manifest: dict) -> str:
+    """``rbf(gamma=0.2)``; the raw name when the manifest's parameters do not parse."""
+    kern = manifest.get("kernel") or {}
+    try:
+        return KernelSpec.from_params(kern["name"], kern.get("params", {})).describe()
+    except (KeyError, TypeError, ValueError):
+        return str(kern.get("name", "unknown"))
+
+
+def number(value, digits: int = 4) -> str:
+    """A figure for people: ``digits`` significant digits, no exponent for everyday sizes."""
+    if value is None or isinstance(value, bool) or not isinstance(value, int | float):
+        return "–"
+    if not math.isfinite(value):
+        return str(value)
+    return f"{value:.{digits}g}"
+
+
+@dataclass
+class Score:
+    """One held-out (or leave-one-out) figure set for one target."""
+
+    target: str
+    kind: str  # "holdout" or "leave-one-out"
+    rmse: str
+    r2: str
+
+
+def scores(manifest: dict) -> list[Score]:
+    """Held-out error per target; leave-one-out when the version kept no holdout."""
+    metrics = manifest.get("metrics") or {}
+    for key, kind in (("holdout", "holdout"), ("loo", "leave-one-out")):
+        block = metrics.get(key)
+        if isinstance(block, dict) and block:
+            return [Score(t, kind, number(m.get("rmse")), number(m.get("r2"), 3))
+                    for t, m in block.items() if isinstance(m, dict)]
+    return []
+
+
+@dataclass
+class FlagShare:
+    """Rows flagged outside the envelope since the counters started."""
+
+    rows: int
+    out_of_range: str  # percentage text
+    novel: str
+
+
+def flag_share(counts: RowCounts | None) -> FlagShare | None:
+    """Shares of predicted rows outside a training range and novel; None before any row."""
+    if counts is None or counts.rows <= 0:
+        return None
+    return FlagShare(int(counts.rows), f"{100 * counts.out_of_range / counts.rows:.1f} %",
+                     f"{100 * counts.novel / counts.rows:.1f} %")
+
+
+@dataclass
+class ModelLine:
+    """One model on the overview."""
+
+    name: str
+    live: int | None = None
+    since: str | None = None
+    served: int | None = None  # version this worker answers with (None: not loaded)
+    kernel: str = "–"
+    rows: str = "–"
+    scores: list[Score] = field(default_factory=list)
+    flags: FlagShare | None = None
+    problem: str | None = None
+
+
+def overview(store: Store, served: dict[str, int | None],
+             counts: dict[str, RowCounts]) -> list[ModelLine]:
+    """Every model in the store: live version and since when, the live version's kernel,
+    training rows and held-out error, and its flagged share of predicted rows.
+
+    ``served`` maps a model to the version loaded in this worker (``ModelHub.readiness``).
+    """
+    lines = []
+    for name in store.models():
+        line = ModelLine(name, served=served.get(name), flags=flag_share(counts.get(name)))
+        try:
+            entry = store.live(name)
+            if entry is not None:
+                line.live, line.since = entry["version"], entry.get("since")
+                man = store.read_manifest(name, line.live)
+                line.kernel = kernel_text(man)
+                line.rows = number((man.get("training") or {}).get("rows"), 12)
+                line.scores = scores(man)
+        except StoreError as exc:
+            line.problem = safe_message(store, exc)
+        lines.append(line)
+    return lines
+
+
+@dataclass
+class VersionCard:
+    """One version in the side-by-side table of a model's page."""
+
+    version: int
+    live: bool
+    created: str = "–"
+    kernel: str = "–"
+    ridge: str = "–"
+    rows: str = "–"
+    scores: list[Score] = field(default_factory=list)
+    intervals: str = "none stored"
+    coverage: list[str] = field(default_factory=list)
+    has_report: bool = False
+    problem: str | None = None
+
+    def score(self, target: str, kind: str) -> Score | None:
+        return next((s for s in self.scores if (s.target, s.kind) == (target, kind)), None)
+
+
+def _intervals(manifest: dict) -> tuple[str, list[str]]:
+    """(method in words, measured coverage per nominal level) of a version's intervals.
+
+    The coverage lines are the trainer's check on rows neither the fit nor the calibration
+    saw: "90 %: 91.0 % on 400 rows" (per target when there are several).
+    """
+    info = manifest.get("intervals")
+    if not isinstance(info, dict):
+        return "none stored", []
+    method = str(info.get("method") or "stored")
+    targets = list(manifest.get("targets") or [])
+    lines = []
+    for level in info.get("holdout_coverage") or []:
+        try:
+            measured = [f"{100 * float(v):.1f} %" for v in level["empirical"]]
+            if len(measured) == len(targets) > 1:
+                measured = [f"{t} {m}" for t, m in zip(targets, measured, strict=True)]
+            lines.append(f"{100 * float(level['nominal']):g} %: {', '.join(measured)} "
+                         f"on {int(level['rows'])} rows")
+        except (KeyError, TypeError, ValueError):
+            continue
+    return method, lines
+
+
+def versions(store: Store, name: str, live: int | None) -> list[VersionCard]:
+    """Every version of ``name``, newest first; a damaged one says what is wrong with it."""
+    cards = []
+    for v in sorted(store.versions(name), reverse=True):
+        card = VersionCard(v, v == live)
+        try:
+            man = store.read_manifest(name, v)
+            card.created = str(man.get("created") or "–")
+            card.kernel = kernel_text(man)
+            card.ridge = number(man.get("ridge"))
+            card.rows = number((man.get("training") or {}).get("rows"), 12)
+            card.scores = scores(man)
+            card.intervals, card.coverage = _intervals(man)
+            card.has_report = store.report_path(name, v) is not None
+        except StoreError as exc:
+            card.problem = safe_message(store, exc)
+        cards.append(card)
+    return cards
+
+
+def score_keys(cards: list[VersionCard]) -> list[tuple[str, str]]:
+    """(target, kind) of every score some version has, in first-seen order: the rows of
+    the side-by-side table."""
+    keys: list[tuple[str, str]] = []
+    for card in cards:
+        for s in card.scores:
+            if (s.target, s.kind) not in keys:
+                keys.append((s.target, s.kind))
+    return keys
+
+
+@dataclass
+class Event:
+    """One release or rollback in a model's history."""
+
+    time: str
+    action: str
+    version: int
+    previous: int | None
+    note: str | None = None
+
+
+def timeline(store: Store, name: str) -> tuple[list[Event], str | None]:
+    """Releases and rollbacks, newest first, and a problem note when the history is damaged
+    (the readable records are still shown)."""
+    good, bad = store.readable_history(name)
+    events = [Event(str(rec.get("time") or "–"), rec["action"], rec["version"],
+                    rec.get("previous") if isinstance(rec.get("previous"), int) else None,
+                    rec.get("repaired") if isinstance(rec.get("repaired"), str) else None)
+              for rec in good]
+    problem = None
+    if bad:
+        lines = ", ".join(str(n) for n in bad[:5])
+        problem = f"history line(s) {lines} cannot be read and are left out"
+    return events[::-1], problem

@@ -1,0 +1,67 @@
+"""Release and rollback over HTTP, behind a bearer token (disabled when none is set).
+Both verify the version first, as ``kridge release`` does."""
+
+from __future__ import annotations
+
+import hmac
+import logging
+
+import orjson
+from flask import Blueprint, request
+from pydantic import ValidationError
+
+from service.app_state import state
+from service.errors import ApiError
+from service.model import verifier
+from service.routes import json_response, model_name, not_found
+from service.schemas import ReleaseRequest
+from service.store import NotFound, StoreError
+
+log = logging.getLogger("kridge.service")
+bp = Blueprint("admin", __name__)
+
+
+@bp.before_request
+def require_admin() -> None:
+    token = state().settings.admin_token
+    if not token:
+        raise ApiError(403, "admin_disabled",
+                       "admin routes are disabled: set KRIDGE_ADMIN_TOKEN to enable them")
+    given = request.headers.get("Authorization", "")
+    scheme, _, value = given.partition(" ")
+    if scheme.lower() != "bearer" or not hmac.compare_digest(
+        value.strip().encode(), token.encode()
+    ):
+        raise ApiError(401, "unauthorized", "missing or wrong bearer token")
+
+
+@bp.post("/models/<name>/release")
+def release(name: str):
+    store = state().store
+    name = model_name(name)
+    try:
+        body = ReleaseRequest.model_validate(orjson.loads(request.get_data() or b"null"))
+    except (orjson.JSONDecodeError, ValidationError):
+        raise ApiError(422, "invalid_request",
+                       'send {"version": N} with N a positive integer') from None
+    try:
+        rec = store.release(name, body.version, check=verifier(store, name))
+    except NotFound as exc:
+        raise not_found(name, exc) from None
+    except StoreError as exc:
+        log.warning("model %s: release of version %s refused: %s", name, body.version, exc)
+        raise ApiError(409, "version_refused", str(exc)) from None
+    return json_response({"model": name, **rec})
+
+
+@bp.post("/models/<name>/rollback")
+def rollback(name: str):
+    store = state().store
+    name = model_name(name)
+    try:
+        rec = store.rollback(name, check=verifier(store, name))
+    except NotFound as exc:
+        raise not_found(name, exc) from None
+    except StoreError as exc:  # nothing earlier, damaged history, or a refused version
+        raise ApiError(409, "rollback_refused", str(exc)) from None
+    return json_response({"model": name, **rec})

@@ -1,0 +1,39 @@
+"""The model store on a local file system: versions, live pointer, release history.
+
+Layout (fixed; other tools and scripts depend on it)::
+
+    <store>/<model>/versions/<N>/manifest.json
+    <store>/<model>/versions/<N>/arrays/<name>.npy
+    <store>/<model>/versions/<N>/report.html
+    <store>/<model>/live.json
+    <store>/<model>/history.jsonl
+
+Writers take an exclusive ``flock`` on ``<model>/.lock`` only for the short steps that must
+not interleave (choosing a version number and renaming into place; rewriting live.json and
+appending to the history). Everything a reader can see appears by one ``rename``.
+"""
+
+from service.store.files import sha256_file
+from service.store.names import (
+    ARRAY_NAME_RE,
+    NAME_RE,
+    SCHEMA,
+    STAGING,
+    Conflict,
+    NotFound,
+    StoreError,
+    check_name,
+    check_version,
+    now_iso,
+    store_root,
+)
+from service.store.publish import Publisher
+from service.store.releases import Releases
+
+
+class Store(Publisher, Releases):
+    """One store root holding any number of models: read, publish, release, roll back."""
+
+
+__all__ = ["ARRAY_NAME_RE", "NAME_RE", "SCHEMA", "STAGING", "Conflict", "NotFound", "Store",
+           "StoreError", "check_name", "check_version", "now_iso", "sha256_file", "store_root"]

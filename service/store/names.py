@@ -1,0 +1,63 @@
+"""Names, errors and version numbers of the model store (no file access here)."""
+
+from __future__ import annotations
+
+import os
+import re
+from datetime import datetime, timezone
+from pathlib import Path
+
+from service.settings import default_store
+
+SCHEMA = 1
+NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
+ARRAY_NAME_RE = re.compile(r"[A-Za-z0-9_]{1,64}")
+STAGING = ".staging"
+
+
+class StoreError(Exception):
+    """A store operation that cannot be done; the message is meant for the user."""
+
+
+class NotFound(StoreError):
+    """A model or version that does not exist."""
+
+
+class Conflict(StoreError):
+    """A valid request that the store's present state does not allow (nothing to roll back
+    to, a damaged history): the message says what is unknown and how to go on."""
+
+
+def os_reason(exc: OSError) -> str:
+    """An OS error without the file name: messages may reach HTTP answers and logs, which
+    must not show where the store lives."""
+    return exc.strerror or type(exc).__name__
+
+
+def now_iso() -> str:
+    """Current UTC time, ISO 8601 with seconds."""
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def store_root(path: str | os.PathLike | None = None) -> Path:
+    """``path``, else env ``KRIDGE_STORE``, else ``./kridge-store``."""
+    return Path(path or default_store())
+
+
+def check_name(name: str) -> str:
+    """Refuse model names that could leave the store or surprise a shell."""
+    if not isinstance(name, str) or not NAME_RE.fullmatch(name) or name in (".", ".."):
+        raise StoreError(
+            f"invalid model name {name!r}: use 1-64 characters of a-z, 0-9, '.', '_', '-', "
+            "starting with a letter or digit"
+        )
+    return name
+
+
+def check_version(version) -> int:
+    """A version is a positive integer (an integer string is accepted)."""
+    text = str(version)
+    if not text.isdigit() or int(text) < 1 or len(text) > 9:
+        raise StoreError(f"invalid version {version!r}: versions are positive integers")
+    return int(text)
+
