@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import resource
 import subprocess
 import sys
@@ -28,6 +27,10 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from bench.machine import header, machine  # noqa: E402
+
 KRIDGE = str(Path(sys.executable).with_name("kridge"))
 NOISE = 0.1
 
@@ -81,25 +84,15 @@ def fresh_rmse(store: Path, name: str, x: np.ndarray, y: np.ndarray) -> float:
     return float(np.sqrt(np.mean((pred - y) ** 2)))
 
 
-def header() -> str:
-    from threadpoolctl import threadpool_info
-
-    blas = [f"{p.get('internal_api')} {p.get('version')} ({p.get('architecture')}, "
-            f"{p.get('num_threads')} threads)" for p in threadpool_info()
-            if p.get("user_api") == "blas"]
-    return (f"cores {os.cpu_count()}; BLAS {', '.join(blas)}; OPENBLAS_CORETYPE="
-            f"{os.environ.get('OPENBLAS_CORETYPE', 'unset')}")
-
-
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=1_000_000)
     ap.add_argument("--exact-rows", type=int, nargs="*", default=[5_000, 12_000])
     ap.add_argument("--keep", help="folder to keep the data and store in")
     args = ap.parse_args()
+    print(header('scale bench: Nyström on a large file vs exact KRR on subsamples'))
     work = Path(args.keep or tempfile.mkdtemp(prefix="kridge-scale-"))
     work.mkdir(parents=True, exist_ok=True)
-    print(f"# scale bench: {header()}")
     data = work / f"process_{args.rows}.csv"
     if not data.exists():
         t0 = time.perf_counter()
@@ -134,7 +127,7 @@ def main() -> int:
     out = ROOT / "bench" / "results"
     out.mkdir(exist_ok=True)
     (out / "scale_bench.json").write_text(json.dumps(
-        {"header": header(), "rows": args.rows,
+        {"machine": machine(), "rows": args.rows,
          "results": [{"fit": lab, "rows": n, **{k: r[k] for k in (
              "wall_seconds", "peak_rss_mb", "fresh_rmse", "method")}}
              for lab, n, r in results]}, indent=2))
