@@ -30,12 +30,14 @@ Two paths:
 
 from __future__ import annotations
 
+import math
 import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
+from service.envelope import kth_value
 from service.kernels import (
     KernelSpec,
     augmented_columns,
@@ -480,9 +482,13 @@ class Engine:
     def _kth(self, u: np.ndarray, out: np.ndarray) -> None:
         """k-th smallest distance per row from u = −c‖q − x‖² (partially sorted in place)."""
         k = self._near[1]
-        at = u.shape[1] - 1 - k  # the k-th smallest distance is the k-th largest u
+        scale = -1.0 / sqdist_scale(self.spec)
+        if u.shape[0] == 1:  # the k-th smallest distance is the k-th largest u
+            out[0] = math.sqrt(max(kth_value(u[0], k, largest=True) * scale, 0.0))
+            return
+        at = u.shape[1] - 1 - k
         u.partition(at, axis=1)
-        np.multiply(u[:, at], -1.0 / sqdist_scale(self.spec), out=out)
+        np.multiply(u[:, at], scale, out=out)
         np.maximum(out, 0.0, out=out)
         np.sqrt(out, out=out)
 

@@ -221,3 +221,18 @@ def test_single_rows_leave_blas_threads_as_they_were(data):
     with threadpool_limits(2, user_api="blas"):
         model.predict(_raw_rows(1, seed=2))
         assert set(blas_threads()) == {2}
+
+
+@pytest.mark.parametrize("n", [5, 200, 257, 2_000])
+def test_kth_value_is_exact(n):
+    """Against a full sort: random, ascending, descending and tied values, both ends."""
+    from service.envelope import kth_value
+
+    rng = np.random.default_rng(n)
+    base = rng.standard_normal(n)
+    cases = [base, np.sort(base), np.sort(base)[::-1].copy(), np.round(base, 1)]
+    for v in cases:
+        full = np.sort(v)
+        for k in {0, 1, 4, min(n - 1, 9)}:
+            assert kth_value(v, k) == full[k]
+            assert kth_value(v, k, largest=True) == full[n - 1 - k]
