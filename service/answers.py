@@ -10,15 +10,10 @@ import numpy as np
 import orjson
 from pydantic import ValidationError
 
+from service.cautions import OUTSIDE_ENVELOPE
 from service.errors import ApiError
 from service.model import Model
 from service.schemas import MAX_INPUT, RowBatch
-
-CAUTION = (
-    "At least one row lies outside the training envelope (see envelope): its prediction is an "
-    "extrapolation. Do not let it drive process or safety decisions without a check against "
-    "site procedures and review by a qualified person."
-)
 
 
 def parse_body(raw: bytes, max_rows: int) -> RowBatch:
@@ -177,7 +172,7 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
         results.append(item)
     resp = {"model": model.name, "version": model.version, "results": results}
     if any(not e["inside"] for e in env):
-        resp["caution"] = CAUTION
+        resp["caution"] = OUTSIDE_ENVELOPE
     resp["timing_ms"] = {
         "parse": round((t_parsed - t_start) * 1e3, 4),
         "compute": round(compute * 1e3, 4),

@@ -7,6 +7,7 @@ from dataclasses import dataclass
 from pydantic.json_schema import models_json_schema
 
 from service import schemas as s
+from service.cautions import BEFORE_ACTING
 from service.intervals import largest_coverage
 from service.store import NAME_RE, StoreError
 
@@ -199,8 +200,7 @@ def build_openapi(max_rows: int, max_body: int, models: dict[str, ServedModel] |
             "title": "kridge prediction service",
             "version": "1",
             "description": "Kernel ridge regression predictions with training-envelope flags. "
-                           "Predictions outside the envelope are extrapolations; follow site "
-                           "procedures and qualified review before acting on them.",
+                           + BEFORE_ACTING,
         },
         "paths": paths,
         "components": {

@@ -137,7 +137,7 @@ def test_predict_counts_extrapolations_on_stderr(trained, small_csv, tmp_path, c
     outside = sum(r[7] == "false" for r in rows)
     assert outside >= 3  # the three far rows at least
     assert f"{outside} of 10 rows outside the training envelope: extrapolations" in err
-    assert "site procedures" in err and "qualified" in err
+    assert "procedures" in err and "qualified person" in err
 
     out_file = tmp_path / "pred.csv"
     code, out, err = run_cli(capsys, "predict", "coat", data, "--out", out_file)

@@ -16,13 +16,6 @@ import math
 #: Holdout R² below this draws a warning (RPD = 1/√(1 − R²) below about 1.41).
 R2_POOR = 0.5
 
-#: The caution printed with predictions and in the report.
-ACTING_ON_PREDICTIONS = (
-    "Predictions are estimates from past data. Rows outside the training envelope "
-    "(out-of-range or novel inputs) are extrapolations and may be far off; intervals mean "
-    "little there. Before acting on a prediction — changing a recipe, releasing or holding a "
-    "batch — follow your site's procedures and have a qualified person review the result "
-    "against measurements.")
 
 
 def poor_holdout(metrics: dict) -> list[str]:

@@ -16,6 +16,7 @@ import urllib.error
 import urllib.request
 from pathlib import Path
 
+from service.cautions import BEFORE_ACTING
 from service.launch import Gunicorn, free_port
 from service.store import store_root
 from trainer.errors import UserError
@@ -99,8 +100,7 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
             print(f"curl -s -X POST {base}/models/{MODEL}/predict "
                   f"-H 'Content-Type: application/json' -d '{json.dumps(body)}'\n")
         print(f"# more: {base}/models/{MODEL}  {base}/metrics  {base}/openapi.json")
-        print("# Predictions outside the training envelope are extrapolations: check them "
-              "against site procedures before acting on them.\n")
+        print(f"# Caution: {BEFORE_ACTING}\n")
         if smoke:
             with urllib.request.urlopen(base + "/", timeout=10) as r:
                 print(f"page {base}/: HTTP {r.status}, {MODEL} listed: "

@@ -15,8 +15,9 @@ from pathlib import Path
 
 import numpy as np
 
+from service.cautions import BEFORE_ACTING
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
-from trainer.cautions import ACTING_ON_PREDICTIONS, R2_POOR, poor_holdout
+from trainer.cautions import R2_POOR, poor_holdout
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
@@ -204,7 +205,7 @@ def _cautions(manifest: dict) -> str:
         items.append("<li><b>Intervals.</b> The jackknife has no finite-sample coverage "
                      "guarantee; trust the coverage measured on the holdout (Prediction "
                      "intervals below), not the nominal level.</li>")
-    items.append(f"<li><b>Before acting.</b> {_esc(ACTING_ON_PREDICTIONS)}</li>")
+    items.append(f"<li><b>Before acting.</b> {_esc(BEFORE_ACTING)}</li>")
     return ("<h2>Cautions</h2><ul>" + "".join(items) + "</ul>"
             f"<p class=note>A holdout R² below {R2_POOR} is flagged: the model then explains "
             "less than half of the target's variance on unseen rows.</p>")

@@ -17,6 +17,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from service.cautions import BEFORE_ACTING
 from service.model import Model, check_coverage
 from trainer.data import iter_chunks
 from trainer.errors import UserError
@@ -44,8 +45,7 @@ class Scored(NamedTuple):
 def envelope_note(scored: Scored) -> str:
     """Two lines for stderr: the extrapolation count and the caution that goes with it."""
     return (f"{scored.outside} of {scored.rows} rows outside the training envelope: "
-            "extrapolations\nCaution: these are model estimates; follow site procedures and "
-            "have a qualified person review them before acting on them.")
+            f"extrapolations\nCaution: {BEFORE_ACTING}")
 
 
 def score_csv(model: Model, path, out, coverage: float | None = None, quiet: bool = False,

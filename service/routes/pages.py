@@ -29,6 +29,7 @@ from flask import Blueprint, Response, render_template, request
 
 from service import metrics
 from service.app_state import state
+from service.cautions import BEFORE_ACTING
 from service.errors import ApiError
 from service.page_data import overview, safe_message, score_keys, timeline, versions
 from service.page_row import DEFAULT_COVERAGE, form_fields, read_numbers, try_row
@@ -53,6 +54,11 @@ def _services():
     """(store, live models, settings) of this worker."""
     st = state()
     return st.store, st.models, st.settings
+
+
+@bp.app_context_processor
+def _cautions() -> dict:
+    return {"before_acting": BEFORE_ACTING}
 
 
 @bp.after_request
