@@ -18,11 +18,14 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(PY) -m pytest -q
 
+# every figure of one run goes to one JSON file; compare two with bench/compare.py
+BENCH_JSON ?= bench/results/$(shell date +%Y%m%d-%H%M%S).json
 bench: $(STAMP)
-	$(PY) bench/engine_bench.py
-	$(PY) bench/http_bench.py
-	$(PY) bench/tuning_bench.py
-	$(PY) bench/sizing_bench.py
+	$(PY) bench/engine_bench.py --json $(BENCH_JSON)
+	$(PY) bench/http_bench.py --json $(BENCH_JSON)
+	$(PY) bench/tuning_bench.py --json $(BENCH_JSON)
+	$(PY) bench/sizing_bench.py --json $(BENCH_JSON)
+	@echo "all figures in $(BENCH_JSON)"
 
 lint: $(STAMP)
 	$(VENV)/bin/ruff check .

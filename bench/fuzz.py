@@ -24,6 +24,7 @@ from bench.fuzz_harness import (  # noqa: E402
     small_store,
     statuses,
 )
+from bench.machine import header  # noqa: E402
 from service.launch import Gunicorn  # noqa: E402
 
 
@@ -32,6 +33,7 @@ def main() -> int:
     ap.add_argument("--examples", type=int, default=400, help="max examples per operation")
     ap.add_argument("--seed", type=int, default=7)
     args = ap.parse_args()
+    print(header('fuzz: schemathesis against the served OpenAPI document'))
     ok = True
     with tempfile.TemporaryDirectory(prefix="kridge-fuzz-") as tmp:
         root = Path(tmp)

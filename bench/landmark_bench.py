@@ -21,8 +21,9 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
-from scale_bench import NOISE, header, response  # noqa: E402
+from scale_bench import NOISE, response  # noqa: E402
 
+from bench.machine import header  # noqa: E402
 from service.kernels import KernelSpec, kernel_matrix  # noqa: E402
 from trainer.nystrom import fit_in_memory, pick_landmarks  # noqa: E402
 
@@ -33,6 +34,7 @@ def main() -> int:
     ap.add_argument("--seeds", type=int, default=3)
     ap.add_argument("--m", type=int, nargs="*", default=[250, 500, 1000, 2000])
     args = ap.parse_args()
+    print(header('landmark bench: uniform vs k-means++ Nyström landmarks'))
     rng = np.random.default_rng(0)
     x = rng.uniform(-1, 1, (args.rows, 8))
     y = (response(x) + NOISE * rng.standard_normal(args.rows))[:, None]

@@ -22,6 +22,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from bench.machine import header  # noqa: E402
 from trainer.data import iter_chunks  # noqa: E402
 
 
@@ -56,6 +57,7 @@ def main() -> int:
     ap.add_argument("--rows", type=int, default=1_000_000)
     ap.add_argument("--rounds", type=int, default=3)
     args = ap.parse_args()
+    print(header("reader bench: kridge's CSV reader vs the previous one"))
     import pyarrow as pa
     import pyarrow.csv as pcsv
 

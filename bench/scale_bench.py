@@ -38,6 +38,10 @@ from pathlib import Path
 import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from bench.machine import header, machine  # noqa: E402
+
 KRIDGE = str(Path(sys.executable).with_name("kridge"))
 NOISE = 0.1
 
@@ -104,17 +108,6 @@ def fresh_rmse(store: Path, name: str, x: np.ndarray, y: np.ndarray
             float(np.sqrt(np.mean((pred - response(x)) ** 2))))
 
 
-def header() -> str:
-    from threadpoolctl import threadpool_info
-
-    blas = [f"{p.get('internal_api')} {p.get('version')} ({p.get('architecture')}, "
-            f"{p.get('num_threads')} threads)" for p in threadpool_info()
-            if p.get("user_api") == "blas"]
-    return (f"cores {os.cpu_count()}; BLAS {', '.join(blas)}; OPENBLAS_CORETYPE="
-            f"{os.environ.get('OPENBLAS_CORETYPE', 'unset')}, OPENBLAS_L2_SIZE="
-            f"{os.environ.get('OPENBLAS_L2_SIZE', 'unset')}")
-
-
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=1_000_000)
@@ -136,7 +129,7 @@ def main() -> int:
 
 
 def run(args, work: Path) -> int:
-    print(f"# scale bench: {header()}")
+    print(header("scale bench: Nyström on a large file vs exact KRR on subsamples"))
     print(f"# response: {response.__doc__.splitlines()[2].strip()}, x ~ U[-1, 1]^8; "
           f"noise SD {NOISE} (the lowest possible fresh RMSE)")
     data = work / f"process_{args.rows}.csv"
@@ -191,7 +184,7 @@ def run(args, work: Path) -> int:
     out = ROOT / "bench" / "results"
     out.mkdir(exist_ok=True)
     (out / f"scale_bench_{args.rows}.json").write_text(json.dumps(
-        {"header": header(), "rows": args.rows, "noise_sd": NOISE,
+        {"machine": machine(), "rows": args.rows, "noise_sd": NOISE,
          "results": [{"fit": lab, "rows": n, **{k: r[k] for k in (
              "wall_seconds", "cpu_seconds", "peak_rss_mb", "fresh_rmse", "f_rmse", "method",
              "kernel", "ridge")}} for lab, n, r in results + others]}, indent=2))

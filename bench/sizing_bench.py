@@ -37,6 +37,8 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from bench.machine import add_json_option, header, save  # noqa: E402
+
 WORK = ROOT / "bench" / "results" / "sizing"
 MIB = 1 << 20
 
@@ -294,11 +296,10 @@ def main() -> None:
     ap.add_argument("--sizes", default="2000x8,5000x8,5000x32,10000x16")
     ap.add_argument("--requests", type=int, default=300)
     ap.add_argument("--big-rows", type=int, default=5000)
+    add_json_option(ap)
     args = ap.parse_args()
-    from threadpoolctl import threadpool_info
-
-    blas = [(i.get("internal_api"), i.get("architecture")) for i in threadpool_info()]
-    print(f"BLAS: {blas}; cores: {os.cpu_count()}; one gunicorn worker per measurement")
+    print(header("sizing bench: memory and CPU per request against the sizing formula"))
+    print("# one gunicorn worker per measurement")
     store = WORK / "store"
     sizes = [tuple(int(v) for v in s.split("x")) for s in args.sizes.split(",")]
     os.environ["KRIDGE_ENGINE_THREADS"] = "1"  # for the in-process engine figures
@@ -336,6 +337,17 @@ def main() -> None:
     print(f"\nrelease → every one of 2 replicas serving it (KRIDGE_POLL_SECONDS 0.25, "
           f"{len(took)} changes, model {sizes[-1][0]}x{sizes[-1][1]}): median "
           f"{took[len(took) // 2]:.2f} s, max {took[-1]:.2f} s")
+    save(args.json, "sizing", {
+        "points": [{k: p[k] for k in ("n", "d", "private", "rise", "cpu1", "cpu64", "engine_row")}
+                   for p in points],
+        "ratio_measured_to_formula": [
+            {"n": p["n"], "d": p["d"],
+             "cpu1": p["cpu1"] / plan(p["n"], p["d"], rows_per_request=1)[
+                 "cpu_seconds_per_request"],
+             "cpu64": p["cpu64"] / plan(p["n"], p["d"], rows_per_request=64)[
+                 "cpu_seconds_per_request"]} for p in points],
+        "release_follow_s": {"median": took[len(took) // 2], "max": took[-1]},
+        "fitted": asdict(fitted)})
     ex = plan(20_000, 16, workers=2, rate=200, c=fitted)
     print(f"\nexample, n=20,000 d=16, 2 workers, 10,000-row limit, 200 single-row req/s: "
           f"{ex['memory_bytes'] / MIB:.0f} MiB, {ex['cores']:.2f} cores at 70 % utilisation")

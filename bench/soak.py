@@ -181,6 +181,10 @@ def main() -> int:
     sys.path.insert(0, str(ROOT))
     import tempfile
 
+    from bench.machine import header
+
+    print(header("soak: release churn under load"))
+
     from service.launch import Gunicorn
     from trainer.train import TrainOptions, train
 

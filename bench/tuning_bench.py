@@ -22,20 +22,25 @@ limits"): a single-kernel search needs about 13 of them.
 from __future__ import annotations
 
 import argparse
+import sys
 import time
+from pathlib import Path
 
 import numpy as np
 from sklearn.datasets import make_friedman1
 from sklearn.kernel_ridge import KernelRidge
 from sklearn.model_selection import GridSearchCV
 
-from service.kernels import KernelSpec, kernel_matrix
-from trainer.fit import Standardizer, fit_exact
-from trainer.loo import eigen_kernel
-from trainer.tuning import WIDTH_GRID_SIZE
-from trainer.validation import RIDGE_GRID_SIZE, RIDGE_RELATIVE, Problem
-from trainer.widths import width_range
-from trainer.workers import Runner
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from bench.machine import add_json_option, header, save  # noqa: E402
+from service.kernels import KernelSpec, kernel_matrix  # noqa: E402
+from trainer.fit import Standardizer, fit_exact  # noqa: E402
+from trainer.loo import eigen_kernel  # noqa: E402
+from trainer.tuning import WIDTH_GRID_SIZE  # noqa: E402
+from trainer.validation import RIDGE_GRID_SIZE, RIDGE_RELATIVE, Problem  # noqa: E402
+from trainer.widths import width_range  # noqa: E402
+from trainer.workers import Runner  # noqa: E402
 
 
 def eigh_seconds(sizes: list[int]) -> None:
@@ -57,7 +62,9 @@ def main() -> None:
     ap.add_argument("--fresh", type=int, default=2000)
     ap.add_argument("--eigh-sizes", default="",
                     help="comma-separated sizes to time one eigendecomposition at")
+    add_json_option(ap)
     args = ap.parse_args()
+    print(header("tuning bench: exact-LOO grid search vs GridSearchCV(KernelRidge)"))
     if args.eigh_sizes:
         eigh_seconds([int(v) for v in args.eigh_sizes.split(",")])
     x, y = make_friedman1(n_samples=args.rows, noise=1.0, random_state=0)
@@ -98,6 +105,9 @@ def main() -> None:
           f"gamma={ref.best_params_['gamma']:.4g} ridge={ref.best_params_['alpha']:.3g}")
     print(f"speed-up {t_ref / t_ours:.1f}x (target >= 10x); RMSE ratio ours/reference "
           f"{rmse_ours / rmse_ref:.4f} (target <= 1.02); {runner.how}")
+    save(args.json, "tuning", {"rows": args.rows, "ours_s": t_ours, "reference_s": t_ref,
+                               "ratio_reference_to_ours": t_ref / t_ours,
+                               "ratio_rmse_ours_to_reference": rmse_ours / rmse_ref})
 
 
 if __name__ == "__main__":

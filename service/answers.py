@@ -13,7 +13,7 @@ from pydantic import ValidationError
 from service.cautions import OUTSIDE_ENVELOPE
 from service.errors import ApiError
 from service.model import Model
-from service.schemas import RowBatch
+from service.schemas import MAX_INPUT, RowBatch
 
 
 def parse_body(raw: bytes, max_rows: int) -> RowBatch:
@@ -32,10 +32,45 @@ def parse_body(raw: bytes, max_rows: int) -> RowBatch:
         raise ApiError(413, "too_many_rows",
                        f"{len(rows)} rows in one request; the limit is {max_rows} "
                        "(KRIDGE_MAX_ROWS)")
+    quick = _plain_batch(data, rows)
+    if quick is not None:
+        return quick
     try:
         return RowBatch.model_validate(data)
     except ValidationError as exc:
         raise _explain(exc, rows) from None
+
+
+def _plain_batch(data: dict, rows) -> RowBatch | None:
+    """The common request, held to every rule of :class:`RowBatch` in plain Python (a few
+    µs where pydantic's union of row shapes takes about ten); None for anything else, which
+    pydantic then checks and explains. Rules: only ``rows`` and ``coverage``; a non-empty list
+    of non-empty arrays or objects of numbers (int or float, never bool) within ±MAX_INPUT,
+    finite; coverage absent, null or a float strictly between 0 and 1."""
+    if len(data) > 2 or not (len(data) == 1 or "coverage" in data) or type(rows) is not list:
+        return None
+    if not rows:
+        return None
+    top = MAX_INPUT
+    for row in rows:
+        kind = type(row)
+        if kind is list:
+            values = row
+        elif kind is dict:
+            values = row.values()
+        else:
+            return None
+        if not values:
+            return None
+        for v in values:
+            kind = type(v)
+            # NaN fails both comparisons; JSON has no infinities, but ±inf would fail too
+            if (kind is not float and kind is not int) or not -top <= v <= top:
+                return None
+    coverage = data.get("coverage")
+    if coverage is not None and (type(coverage) is not float or not 0.0 < coverage < 1.0):
+        return None
+    return RowBatch.model_construct(rows=rows, coverage=coverage)
 
 
 def _explain(exc: ValidationError, rows) -> ApiError:

@@ -4,8 +4,19 @@ One engine serves the HTTP service, ``load_model().predict`` and ``kridge predic
 kernel matrix between a batch and the training rows is never built whole: the batch is cut
 into row tiles and the training rows into column tiles so that one tile (plus its scratch
 twin) stays in the per-core L2 cache, the kernel's elementwise step runs in place on each tile
-(:func:`service.kernels.kernel_tile`), and the tile's product with α is accumulated. Extra
+(:func:`service.kernels.finish_tile`), and the tile's product with α is accumulated. Extra
 memory is O(tile × threads) whatever the batch size.
+
+Every kernel but the laplacian has an affine part that one matrix product computes whole from
+augmented operands (:func:`service.kernels.augmented_columns`): −c‖q − x‖² for the distance
+kernels, γ qᵀx + c₀ for the dot kernels. A single row then costs what the machine's floor
+costs (one GEMV, one elementwise pass, one dot) plus a few µs of Python. The price is a
+private copy of the training rows, (d + 2)·n·8 bytes per process (2.9 MB at 20,000 × 16);
+the memory-mapped original stays shared and unread.
+
+For distance kernels the same product also yields the squared distances to any chosen
+training rows; the envelope's novelty score (k-th nearest reference row, when the reference
+rows are training rows) is taken from it instead of a second product (``neighbours``).
 
 Two paths:
 
@@ -19,19 +30,25 @@ Two paths:
 
 from __future__ import annotations
 
+import math
 import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
+from service.envelope import kth_value
 from service.kernels import (
     KernelSpec,
     augmented_columns,
-    augmented_rows,
+    augmented_width,
+    finish_tile,
     kernel_tile,
     prepare_columns,
     prepare_rows,
+    query_factor,
+    row_sq_norms,
+    sqdist_scale,
 )
 
 #: Elements in one kernel tile: 2¹⁶ float64 = 512 KiB. With the scratch twin that some
@@ -93,39 +110,83 @@ def _buffers(size: int, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
 
 
 # -- BLAS thread bound ----------------------------------------------------------------------
-class _SingleThreadedBlas:
-    """Context holding BLAS at one thread while any parallel batch runs (re-entrant, counted).
+def _thread_knobs(lib) -> tuple:
+    """(get, set) thread-count functions of one BLAS library (a threadpoolctl controller).
 
-    Limits are process-wide; counting entries means that two overlapping large batches do
-    not restore the BLAS thread count under each other's feet. The threadpoolctl controller
-    is built once: building it scans every loaded library (~ms), setting a limit is µs.
+    For OpenBLAS on its own threads, the library's C functions themselves (~0.2 µs a call;
+    threadpoolctl's Python wrappers cost ~2 µs, which the single-row path would pay several
+    times); for anything else, threadpoolctl's methods.
+    """
+    if lib.internal_api == "openblas" and getattr(lib, "threading_layer", None) != "openmp":
+        dynlib = getattr(lib, "dynlib", None)
+        for prefix in ("", "scipy_"):
+            for suffix in ("", "64_", "_64"):
+                get = getattr(dynlib, f"{prefix}openblas_get_num_threads{suffix}", None)
+                put = getattr(dynlib, f"{prefix}openblas_set_num_threads{suffix}", None)
+                if get is not None and put is not None:
+                    return get, put
+
+    def put(threads: int) -> None:
+        lib.set_num_threads(threads)
+        # threadpoolctl lets one thread at a time own OpenBLAS's process-wide setting:
+        # give it back so the caller's own limits keep working
+        clear = getattr(type(lib), "clear_controlling_thread", None)
+        if clear is not None:
+            clear()
+
+    return lib.get_num_threads, put
+
+
+class _SingleThreadedBlas:
+    """Context holding BLAS at one thread while the engine runs (re-entrant, counted).
+
+    BLAS's own threads would split each small tile product and wait on each other
+    (milliseconds per tile when the cores are busy), and a parallel batch already uses every
+    core. Limits are process-wide; counting entries means that two overlapping calls do not
+    restore the BLAS thread count under each other's feet. The libraries are found once (a
+    scan of every loaded library, ~ms); after that a call costs one thread-count query per
+    library, plus a set and a restore when BLAS is not at one thread already (the service
+    runs with one): under 1 µs in all.
     """
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self._depth = 0
-        self._controller = None
-        self._limiter = None
+        self._knobs: list[tuple] | None = None
+        self._saved: list[tuple] = []
 
     def __enter__(self) -> None:
         with self._lock:
             if self._depth == 0:
-                if self._controller is None:
+                knobs = self._knobs
+                if knobs is None:
                     from threadpoolctl import ThreadpoolController
 
-                    self._controller = ThreadpoolController().select(user_api="blas")
-                # Under the service's OPENBLAS_NUM_THREADS=1 there is nothing to change:
-                # one query per library (~1 µs) instead of a set and a restore.
-                if any(lib.num_threads != 1 for lib in self._controller.lib_controllers):
-                    self._limiter = self._controller.limit(limits=1)
+                    ctl = ThreadpoolController().select(user_api="blas")
+                    knobs = self._knobs = [_thread_knobs(lib) for lib in ctl.lib_controllers]
+                for get, put in knobs:
+                    threads = get()
+                    if threads is not None and threads != 1:
+                        put(1)
+                        self._saved.append((put, threads))
             self._depth += 1
+
+    def at_one(self) -> bool:
+        """True when every BLAS library runs one thread already (a lock-free query, for
+        the single-row path: if another call changes the count meanwhile, a product may
+        merely run on more threads than it needs)."""
+        knobs = self._knobs
+        if knobs is None:
+            return False
+        return all(get() == 1 for get, _ in knobs)
 
     def __exit__(self, *exc) -> None:
         with self._lock:
             self._depth -= 1
-            if self._depth == 0 and self._limiter is not None:
-                self._limiter.restore_original_limits()
-                self._limiter = None
+            if self._depth == 0 and self._saved:
+                for put, threads in self._saved:
+                    put(threads)
+                self._saved = []
 
 
 _single_blas = _SingleThreadedBlas()
@@ -152,8 +213,9 @@ class Engine:
     Parameters
     ----------
     spec : kernel and parameters.
-    x_train : (n, d) standardized training rows. A float64 C-ordered array (such as a
-        read-only memory map) is used as is, never copied.
+    x_train : (n, d) standardized training rows. A float64 array (such as a read-only
+        memory map) is read as is; kernels with an affine part keep a private augmented
+        copy (see the module notes), the laplacian a feature-major view or copy.
     dual : (n,) or (n, t) dual coefficients α.
     threads : worker threads for large batches (default :func:`engine_threads`).
     tile_elements, row_tile : tile geometry (defaults :data:`TILE_ELEMENTS`,
@@ -162,11 +224,20 @@ class Engine:
         (half the memory traffic, twice the SIMD width), each tile's product with α summed
         into a float64 result. Opt-in only, per model: the trainer measures and records the
         largest difference it makes on the model's own training rows.
+    neighbours : optional ``(rows, k)``: indices of training rows and a count k. For a
+        distance kernel in float64, ``predict(q, near=...)`` then also writes each query's
+        Euclidean distance to its k-th nearest of those rows, taken from the product the
+        prediction computes anyway (:attr:`gives_neighbours`).
+    shift, scale, offset : optional standardization s(x) = (x − shift) / scale and (t,)
+        offset for ``predict(x, raw=True)``, which returns k(s(x), X)·α + offset. The
+        standardization is folded into the query operand, (x − shift)·(f/scale), and the
+        offset into the product with α, so raw rows cost no extra pass.
 
     Notes
     -----
     ``predict(Q)[i, t] = Σ_j k(q_i, x_j) α_jt``, summed tile by tile over j. The training
-    half of every distance (c‖x_j‖², or γΣ_k x_jk for the laplacian) is computed here once.
+    half of every affine part (c‖x_j‖², c₀) or of the laplacian's distance (γΣ_k x_jk) is
+    computed here once.
     """
 
     def __init__(
@@ -178,6 +249,10 @@ class Engine:
         tile_elements: int | None = None,
         row_tile: int | None = None,
         dtype=np.float64,
+        neighbours: tuple[np.ndarray, int] | None = None,
+        shift: np.ndarray | None = None,
+        scale: np.ndarray | None = None,
+        offset: np.ndarray | None = None,
     ):
         self.spec = spec
         self.dtype = np.dtype(dtype)
@@ -204,91 +279,268 @@ class Engine:
         self.tile_elements = tile_elements or TILE_ELEMENTS
         default_rows = ROW_TILE_L1 if spec.uses == "l1" else ROW_TILE
         self.row_tile = max(1, min(row_tile or default_rows, self.tile_elements))
-        # (d, n) view, read by BLAS as a transposed operand: no copy. The laplacian's
-        # per-feature passes want each feature's values contiguous: a column-major X gives
-        # that for free; a row-major one gets a private feature-major copy here.
-        self.xt = self.x.T
-        if spec.uses == "l1" and not self.xt.flags.c_contiguous:
-            self.xt = np.ascontiguousarray(self.xt)
-        self.col = prepare_columns(spec, self.x)
-        self._aug: np.ndarray | None = None
-        self._aug_lock = threading.Lock()
+        if spec.uses == "l1":
+            # (d, n): the per-feature passes want each feature's values contiguous. A
+            # column-major X gives that for free; a row-major one gets a private copy.
+            self.xt = self.x.T
+            if not self.xt.flags.c_contiguous:
+                self.xt = np.ascontiguousarray(self.xt)
+            self.col = prepare_columns(spec, self.x)
+            self.aug = None
+            self.width = self.d
+        else:
+            aug = augmented_columns(spec, self.x)
+            self.aug = aug if aug.dtype == self.dtype else aug.astype(self.dtype)
+            self.xt = self.col = None
+            self.width = augmented_width(spec, self.d)
+        self._near: tuple[np.ndarray, int] | None = None
+        if neighbours is not None and spec.uses == "sqdist" and self.dtype == np.float64:
+            rows, k = neighbours
+            rows = np.unique(np.asarray(rows, dtype=np.intp))
+            if rows.size and (rows[0] < 0 or rows[-1] >= self.n):
+                raise ValueError("neighbour rows must index training rows")
+            if rows.size:
+                self._near = (rows, min(int(k), rows.size) - 1)
+        self._splits: dict[int, list[tuple[int, int, np.ndarray]]] = {}
+        self._tls = threading.local()
+        self.shift = None if shift is None else np.asarray(shift, dtype=np.float64)
+        self.scale = None if scale is None else np.asarray(scale, dtype=np.float64)
+        self._factor = factor = query_factor(spec)
+        # Q̃'s leading block is f·s(x) = (x − shift)·(f/scale); −c‖s(x)‖² = −‖f·s(x)‖²/(4c)
+        self._lead = factor if self.scale is None else factor / self.scale
+        self._sq = -1.0 / (2.0 * factor) if spec.uses == "sqdist" else 0.0
+        self.offset = np.zeros(self.targets) if offset is None else (
+            np.asarray(offset, dtype=np.float64).reshape(self.targets))
+        # [α; offset] for the single-tile path (float64 with an affine part only)
+        self._fast_ok = self.aug is not None and self.dtype == np.float64
+        self._dual_ext = np.vstack([self.dual, self.offset[None, :]]) if self._fast_ok else None
+        self._fast_rows = self.tile_elements // self.n if self._fast_ok else 0
 
-    def _augmented(self) -> np.ndarray:
-        """[xᵀ; 1; −c‖x‖²] for distance kernels, built on the first large batch.
-
-        Batches fold the row and column terms into the matrix product (one pass fewer per
-        term over every tile: about 1.9× faster at 1,000 rows here). The copy is private to
-        the process, so the lean single-row path keeps reading the shared memory map and a
-        service worker pays the (d + 2)·n·8 bytes only once it is sent batches.
-        """
-        if self._aug is None:
-            with self._aug_lock:
-                if self._aug is None:
-                    self._aug = augmented_columns(self.spec, self.x).astype(self.dtype)
-        return self._aug
+    @property
+    def gives_neighbours(self) -> bool:
+        """True when ``predict`` can also give the k-th neighbour distances (``near``)."""
+        return self._near is not None
 
     # -- core ----------------------------------------------------------------------------
-    def _rows(self, q: np.ndarray, out: np.ndarray, augmented: bool = False) -> None:
-        """Write k(q, X)·α for the rows ``q`` (m, d) into ``out`` (m, t), in this thread."""
+    def _scratch(self, rows: int) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        """Per-thread (query operand, product accumulator, neighbour gather) for row tiles."""
+        bufs = getattr(self._tls, "bufs", None)
+        if bufs is None or bufs[0].shape[0] < rows:
+            rows = max(rows, self.row_tile if rows > 1 else 1)
+            near = None if self._near is None else np.empty((rows, self._near[0].size))
+            bufs = self._tls.bufs = (
+                np.empty((rows, self.width)),
+                np.empty((rows, self.targets), self.dtype),
+                near,
+            )
+            self._constant_columns(bufs[0])
+        return bufs
+
+    def _one_tile(self, m: int) -> tuple:
+        """Per-thread views for a batch of ``m`` rows that fits one tile, built once per
+        size so that a call makes no new arrays but its result: (Q̃, its leading block,
+        the tile extended by one column [K | 1] for the product with [α; offset], the tile,
+        scratch, neighbour gather)."""
+        views = getattr(self._tls, "views", None)
+        if views is None:
+            views = self._tls.views = {}
+        got = views.get(m)
+        if got is None:
+            n = self.n
+            flat, flat2 = _buffers(m * (n + 1), self.dtype)
+            qa = np.empty((m, self.width))
+            self._constant_columns(qa)
+            ext = flat[: m * (n + 1)].reshape(m, n + 1)
+            gather = self._scratch(m)[2]
+            got = views[m] = (
+                qa,
+                qa[:, : self.d],
+                ext,
+                ext[:, :n],
+                flat2[: m * n].reshape(m, n),
+                None if gather is None else gather[:m],
+            )
+        return got
+
+    def _constant_columns(self, qa: np.ndarray) -> None:
+        """The 1 column(s) of Q̃ (:func:`augmented_columns`), written once per buffer."""
+        if self.spec.uses == "sqdist":
+            qa[:, self.d + 1] = 1.0
+        elif self.width > self.d:
+            qa[:, self.d] = 1.0
+
+    def _operand(self, q: np.ndarray, out: np.ndarray, head: np.ndarray, raw: bool) -> None:
+        """Q̃ of rows ``q`` into ``out`` (m, width) whose leading block (m, d) is ``head``
+        and whose constant columns are set already (:meth:`_constant_columns`).
+
+        ``raw``: standardize on the way, (q − shift)·(f/scale), one pass fewer than s(q)
+        followed by f·s(q).
+        """
+        if raw:
+            np.subtract(q, self.shift, out=head)
+            np.multiply(head, self._lead, out=head)
+        else:
+            np.multiply(q, self._factor, out=head)
+        if self._sq:
+            if q.shape[0] == 1:  # a dot product is several times cheaper than einsum's set-up
+                v = head.reshape(-1)
+                out[0, self.d] = self._sq * np.dot(v, v)
+            else:
+                np.multiply(row_sq_norms(head), self._sq, out=out[:, self.d])
+
+    def _split(self, cols: int) -> list[tuple[int, int, np.ndarray]]:
+        """Per column tile of width ``cols``: the neighbour rows it holds (start, stop in
+        the sorted neighbour list, positions within the tile)."""
+        split = self._splits.get(cols)
+        if split is None:
+            rows = self._near[0]
+            split = []
+            for j in range(0, self.n, cols):
+                lo, hi = np.searchsorted(rows, [j, j + cols])
+                split.append((int(lo), int(hi), rows[lo:hi] - j))
+            self._splits[cols] = split
+        return split
+
+    def _rows(
+        self, q: np.ndarray, out: np.ndarray, near: np.ndarray | None = None, raw: bool = False
+    ) -> None:
+        """Write k(q, X)·α for the rows ``q`` (m, d) into ``out`` (m, t), in this thread;
+        with ``near`` (m,) also the k-th neighbour distances."""
         m = q.shape[0]
-        spec, n, xt, col, dual = self.spec, self.n, self.xt, self.col, self.dual
-        if augmented:
-            xt, col = self._augmented(), None
+        spec, n, dual = self.spec, self.n, self.dual
+        l1 = self.aug is None
+        if l1 and m == 1:
+            self._l1_row((q - self.shift) / self.scale if raw else q, out)
+            return
         r = min(m, self.row_tile)
         cols = min(n, max(1, self.tile_elements // r))
         single = self.dtype == np.float32
         flat, flat2 = _buffers(r * cols, self.dtype)
-        acc = np.empty((r, self.targets), self.dtype) if cols < n or single else None
+        qbuf, acc, gather = self._scratch(r)
+        split = self._split(cols) if near is not None else None
         for i in range(0, m, r):
             qi = q[i : i + r]
             ri = qi.shape[0]
-            qs, row = (augmented_rows(spec, qi), None) if augmented else prepare_rows(spec, qi)
-            if single:
-                qs = qs.astype(np.float32)
-                row = None if row is None else row.astype(np.float32)
+            if l1:
+                qs, row = prepare_rows(spec, (qi - self.shift) / self.scale if raw else qi)
+                if single:
+                    qs, row = qs.astype(np.float32), row.astype(np.float32)
+            else:
+                qs = qbuf[:ri]
+                self._operand(qi, qs, qs[:, : self.d], raw)
+                if single:
+                    qs = qs.astype(np.float32)
             oi = out[i : i + r]
-            for j in range(0, n, cols):
+            for t, j in enumerate(range(0, n, cols)):
                 w = min(cols, n - j)
                 tile = flat[: ri * w].reshape(ri, w)
-                kernel_tile(
-                    spec,
-                    qs,
-                    row,
-                    xt[:, j : j + w],
-                    None if col is None else col[j : j + w],
-                    tile,
-                    flat2[: ri * w].reshape(ri, w),
-                )
+                scratch = flat2[: ri * w].reshape(ri, w)
+                if l1:
+                    kernel_tile(spec, qs, row, self.xt[:, j : j + w], self.col[j : j + w], tile,
+                                scratch)
+                else:
+                    np.matmul(qs, self.aug[:, j : j + w], out=tile)
+                    if split is not None:  # u = −c‖q − x‖² of the neighbour rows, before exp
+                        lo, hi, at = split[t]
+                        np.take(tile, at, axis=1, out=gather[:ri, lo:hi], mode="clip")
+                    finish_tile(spec, tile, scratch)
                 if j == 0 and not single:
-                    np.matmul(tile, dual[j : j + w], out=oi)
-                elif j == 0:
-                    a = acc[:ri]
-                    np.matmul(tile, dual[j : j + w], out=a)
-                    oi[:] = a  # float32 tile sums, accumulated in float64
+                    np.matmul(tile, dual[:w], out=oi)
                 else:
                     a = acc[:ri]
                     np.matmul(tile, dual[j : j + w], out=a)
-                    oi += a
+                    if j == 0:
+                        oi[:] = a  # float32 tile sums, accumulated in float64
+                    else:
+                        oi += a
+            if near is not None:
+                self._kth(gather[:ri], near[i : i + ri])
 
-    def predict(self, q: np.ndarray) -> np.ndarray:
+    def _l1_row(self, q: np.ndarray, out: np.ndarray) -> None:
+        """Laplacian, one row: per column tile D = |Xᵀ − q| (two passes over d × w values,
+        both vectorized: numpy's minimum against a broadcast scalar is not), −γ‖q − x‖₁ as
+        one product (−γ, …, −γ)·D, then exp and the product with α."""
+        d, n = self.d, self.n
+        w = min(n, max(1, self.tile_elements // d))
+        flat, flat2 = _buffers(max(d * w, w), self.dtype)
+        weights = np.full((1, d), -self.spec.gamma, dtype=self.dtype)
+        qc = q.reshape(d, 1).astype(self.dtype)
+        for j in range(0, n, w):
+            ww = min(w, n - j)
+            dist = flat[: d * ww].reshape(d, ww)
+            np.subtract(self.xt[:, j : j + ww], qc, out=dist)
+            np.abs(dist, out=dist)
+            u = flat2[:ww].reshape(1, ww)
+            np.matmul(weights, dist, out=u)
+            np.exp(u, out=u)
+            part = u @ self.dual[j : j + ww]
+            if j == 0:
+                out[:] = part
+            else:
+                out += part
+
+    def _kth(self, u: np.ndarray, out: np.ndarray) -> None:
+        """k-th smallest distance per row from u = −c‖q − x‖² (partially sorted in place)."""
+        k = self._near[1]
+        scale = -1.0 / sqdist_scale(self.spec)
+        if u.shape[0] == 1:  # the k-th smallest distance is the k-th largest u
+            out[0] = math.sqrt(max(kth_value(u[0], k, largest=True) * scale, 0.0))
+            return
+        at = u.shape[1] - 1 - k
+        u.partition(at, axis=1)
+        np.multiply(u[:, at], scale, out=out)
+        np.maximum(out, 0.0, out=out)
+        np.sqrt(out, out=out)
+
+    def _fast(self, q: np.ndarray, near: np.ndarray | None, raw: bool) -> np.ndarray:
+        """A batch that fits one tile, float64, affine kernel: one product, one elementwise
+        step, one product with [α; offset] (the offset added by the same product), on views
+        built once (the single-row path)."""
+        qa, head, ext, tile, scratch, gather = self._one_tile(q.shape[0])
+        self._operand(q, qa, head, raw)
+        np.matmul(qa, self.aug, out=tile)
+        if near is not None:
+            np.take(tile, self._near[0], axis=1, out=gather, mode="clip")
+        finish_tile(self.spec, tile, scratch)
+        ext[:, self.n] = 1.0 if raw else 0.0
+        out = ext @ self._dual_ext
+        if near is not None:
+            self._kth(gather, near)
+        return out
+
+    def predict(
+        self, q: np.ndarray, near: np.ndarray | None = None, raw: bool = False
+    ) -> np.ndarray:
         """k(q, X)·α for standardized rows ``q`` (m, d); returns (m, t).
 
-        No checks beyond shape: callers (``Model.predict``, the HTTP layer) validate values.
+        ``near`` : optional (m,) float64 array that receives the k-th neighbour distances
+        (only when :attr:`gives_neighbours`). ``raw``: the rows are in raw units and the
+        standardization given at construction applies. No checks beyond shape: callers
+        (``Model.predict``, the HTTP layer) validate values.
         """
-        q = np.ascontiguousarray(q, dtype=np.float64)
-        if q.ndim != 2 or q.shape[1] != self.d:
-            raise ValueError(f"expected rows of {self.d} features, got shape {q.shape}")
-        m = q.shape[0]
+        if not (type(q) is np.ndarray and q.dtype == np.float64 and q.flags.c_contiguous):
+            q = np.ascontiguousarray(q, dtype=np.float64)
+        shape = q.shape
+        if len(shape) != 2 or shape[1] != self.d:
+            raise ValueError(f"expected rows of {self.d} features, got shape {shape}")
+        if near is not None and self._near is None:
+            raise ValueError("this engine was built without neighbour rows")
+        if raw and self.shift is None:
+            raise ValueError("this engine was built without a standardization")
+        m = shape[0]
+        if 0 < m <= self._fast_rows:
+            if _single_blas.at_one():
+                return self._fast(q, near, raw)
+            with _single_blas:
+                return self._fast(q, near, raw)
         out = np.empty((m, self.targets))
         if m == 0:
             return out
-        batch = m >= PARALLEL_MIN_ROWS and self.spec.uses == "sqdist"
         if m < PARALLEL_MIN_ROWS or self.threads == 1:
-            # BLAS's own threads would split each small tile product and wait on each
-            # other (milliseconds per tile when the cores are busy): our tiles stay serial.
             with _single_blas:
-                self._rows(q, out, batch)
+                self._rows(q, out, near, raw)
+            if raw:
+                out += self.offset
             return out
         # Blocks of whole row tiles, at least two per thread so a thread slowed by a
         # neighbour's work on a shared core does not hold up the rest.
@@ -297,9 +549,12 @@ class Engine:
         pool = _pool(self.threads)
         with _single_blas:
             futures = [
-                pool.submit(self._rows, q[s : s + step], out[s : s + step], batch)
+                pool.submit(self._rows, q[s : s + step], out[s : s + step],
+                            None if near is None else near[s : s + step], raw)
                 for s in range(0, m, step)
             ]
             for f in futures:
                 f.result()
+        if raw:
+            out += self.offset
         return out

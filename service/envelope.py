@@ -11,6 +11,8 @@ is farther from the data than 99 % of the training rows are from theirs.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from service.kernels import row_sq_norms
@@ -19,6 +21,28 @@ from service.kernels import row_sq_norms
 NOVELTY_K = 5
 #: Calibration quantile of the training rows' own k-th-neighbour distances.
 NOVELTY_QUANTILE = 0.99
+
+
+#: Sample whose k-th value bounds the k-th value of a whole row (see :func:`kth_value`).
+_SAMPLE = 128
+
+
+def kth_value(v: np.ndarray, k: int, largest: bool = False) -> float:
+    """The k-th smallest (``largest``: k-th largest) value of the 1-D array ``v``, k from 0.
+
+    Exact, and about three times quicker than one partial sort of a few thousand values: the
+    k-th smallest t of the first :data:`_SAMPLE` values bounds the answer from above (at
+    least k + 1 values are ≤ t), so only the values ≤ t need the partial sort.
+    """
+    n = v.shape[0]
+    if n <= 2 * _SAMPLE:
+        at = n - 1 - k if largest else k
+        return float(np.partition(v, at)[at])
+    s = np.partition(v[:_SAMPLE], _SAMPLE - 1 - k if largest else k)
+    t = s[_SAMPLE - 1 - k] if largest else s[k]
+    cand = v[v >= t] if largest else v[v <= t]
+    at = cand.shape[0] - 1 - k if largest else k
+    return float(np.partition(cand, at)[at])
 
 
 class NeighbourIndex:
@@ -45,6 +69,11 @@ class NeighbourIndex:
         """
         kk = min(self.k + int(skip_self), self.rows) - 1
         m = q.shape[0]
+        if m == 1:  # the service's common case: one GEMV, one selection, scalars
+            q_aug = np.ones(self.d + 1)
+            q_aug[: self.d] = q[0]
+            sq = kth_value(self.aug @ q_aug, kk) + float(np.dot(q[0], q[0]))
+            return np.array([math.sqrt(max(sq, 0.0))])
         q_aug = np.ones((m, self.d + 1))
         q_aug[:, : self.d] = q
         out = np.empty(m)
@@ -54,6 +83,27 @@ class NeighbourIndex:
         out += row_sq_norms(q)
         np.maximum(out, 0.0, out=out)
         return np.sqrt(out, out=out)
+
+
+def rows_within(rows: np.ndarray, x: np.ndarray) -> np.ndarray | None:
+    """Indices i_r with x[i_r] bit-for-bit equal to rows[r], distinct; None if any is missing.
+
+    The trainer keeps training rows as the novelty reference, so the prediction's distances
+    to the training rows already hold the reference's.
+    """
+    rows, x = np.asarray(rows), np.asarray(x)
+    if rows.ndim != 2 or x.ndim != 2 or rows.shape[1] != x.shape[1] or rows.dtype != x.dtype:
+        return None
+    where: dict[bytes, list[int]] = {}
+    for i, row in enumerate(np.ascontiguousarray(x)):
+        where.setdefault(row.tobytes(), []).append(i)
+    found = np.empty(rows.shape[0], dtype=np.intp)
+    for r, row in enumerate(np.ascontiguousarray(rows)):
+        free = where.get(row.tobytes())
+        if not free:  # not a training row, or more copies than the training rows have
+            return None
+        found[r] = free.pop()
+    return found
 
 
 def check_ranges(x_raw: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:

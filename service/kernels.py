@@ -111,7 +111,7 @@ def row_sq_norms(a: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", a, a)
 
 
-def _sqdist_scale(spec: KernelSpec) -> float:
+def sqdist_scale(spec: KernelSpec) -> float:
     """The factor c with which a distance kernel reads c·‖a − b‖².
 
     rbf reads γ r²; Matérn reads t² = 2ν · 2γ · r² (t = √(2ν) r / ℓ, ℓ = 1/√(2γ)).
@@ -126,12 +126,12 @@ def prepare_columns(
 ) -> np.ndarray | None:
     """Training-side term of :func:`kernel_tile`, computed once per model.
 
-    Returns c·‖x_j‖² for distance kernels (c from :func:`_sqdist_scale`), γ·Σ_k x_jk for the
+    Returns c·‖x_j‖² for distance kernels (c from :func:`sqdist_scale`), γ·Σ_k x_jk for the
     laplacian, None for the dot-product kernels. Length n; never a copy of ``x`` itself, so
     a memory-mapped training matrix stays shared between processes.
     """
     if spec.uses == "sqdist":
-        return _sqdist_scale(spec) * (row_sq_norms(x) if x_sq is None else x_sq)
+        return sqdist_scale(spec) * (row_sq_norms(x) if x_sq is None else x_sq)
     if spec.uses == "l1":
         return spec.gamma * x.sum(axis=1)
     return None
@@ -154,7 +154,7 @@ def prepare_rows(
     Folding the scale into the small (m, d) query side saves a pass over every (m, n) tile.
     """
     if spec.uses == "sqdist":
-        c = _sqdist_scale(spec)
+        c = sqdist_scale(spec)
         qs = q * (2.0 * c)
         row = c * row_sq_norms(q) if q_sq is None else c * q_sq
         return qs, row
@@ -165,29 +165,48 @@ def prepare_rows(
     return q * spec.gamma, None
 
 
-def augmented_columns(spec: KernelSpec, x: np.ndarray) -> np.ndarray:
-    """X̃ᵀ = [xᵀ; 1; −c‖x‖²], shape (d + 2, n), for a distance kernel (a new array).
+def augmented_columns(spec: KernelSpec, x: np.ndarray) -> np.ndarray | None:
+    """Training side X̃ of the kernel's affine part u = Q̃·X̃ (a new array; a view for linear).
 
-    With :func:`augmented_rows` one matrix product gives u = 2c qᵀx − c‖q‖² − c‖x‖² =
-    −c‖q − x‖² directly, so a tile needs no passes for the row and column terms.
+    ==========================  ===================  ======================
+    kernel                      X̃ (rows × n)         Q̃ (m × :func:`augmented_width`)
+    ==========================  ===================  ======================
+    rbf, Matérn                 [xᵀ; 1; −c‖x‖²]      [2c q, −c‖q‖², 1]
+    polynomial, sigmoid         [xᵀ; c₀]             [γ q, 1]
+    linear                      xᵀ (a view)          q
+    laplacian                   None (no affine form)
+    ==========================  ===================  ======================
+
+    One matrix product then gives u = −c‖q − x‖² for distance kernels and γ qᵀx + c₀ for
+    the dot kernels, so a tile needs no passes for the row and column terms; only
+    :func:`finish_tile` remains.
     """
+    if spec.uses == "l1":
+        return None
+    if spec.name == "linear":
+        return x.T
     d, n = x.shape[1], x.shape[0]
-    out = np.empty((d + 2, n))
+    extra = 2 if spec.uses == "sqdist" else 1
+    out = np.empty((d + extra, n))
     out[:d] = x.T
-    out[d] = 1.0
-    out[d + 1] = -prepare_columns(spec, x)
+    if spec.uses == "sqdist":
+        out[d] = 1.0
+        out[d + 1] = -prepare_columns(spec, x)
+    else:
+        out[d] = spec.coef0
     return out
 
 
-def augmented_rows(spec: KernelSpec, q: np.ndarray) -> np.ndarray:
-    """Q̃ = [2c q, −c‖q‖², 1], shape (m, d + 2): the query side of :func:`augmented_columns`."""
-    qs, row = prepare_rows(spec, q)
-    m, d = q.shape
-    out = np.empty((m, d + 2))
-    out[:, :d] = qs
-    out[:, d] = -row
-    out[:, d + 1] = 1.0
-    return out
+def augmented_width(spec: KernelSpec, d: int) -> int:
+    """Columns of Q̃ (:func:`augmented_columns`) for ``d`` features."""
+    return d + {"sqdist": 2, "dot": 0 if spec.name == "linear" else 1}.get(spec.uses, 0)
+
+
+def query_factor(spec: KernelSpec) -> float:
+    """The factor on q in Q̃ (:func:`augmented_columns`): 2c, γ, or 1 for linear."""
+    if spec.uses == "sqdist":
+        return 2.0 * sqdist_scale(spec)
+    return 1.0 if spec.name == "linear" else spec.gamma
 
 
 def _integer_power(out: np.ndarray, degree: float, scratch: np.ndarray | None) -> np.ndarray:
@@ -221,8 +240,7 @@ def kernel_tile(
     Parameters
     ----------
     spec : the kernel.
-    qs, row : from :func:`prepare_rows` for the tile's m query rows; for a distance kernel
-        also ``(augmented_rows(...), None)`` with ``xt`` a slice of :func:`augmented_columns`.
+    qs, row : from :func:`prepare_rows` for the tile's m query rows.
     xt : (d, w) the tile's training rows transposed (a view such as ``x[j0:j1].T``).
     col : the tile's slice of :func:`prepare_columns` (None for dot kernels).
     out : (m, w) float buffer, overwritten.
@@ -235,9 +253,11 @@ def kernel_tile(
     Notes
     -----
     Distance kernels: u = 2c qᵀx − c‖q‖² − c‖x‖² = −c‖q − x‖² (the expansion scikit-learn's
-    ``euclidean_distances`` uses), clipped at 0 from above against rounding; rbf is exp(u).
-    Laplacian: ‖q − x‖₁ = Σ_k (q_k + x_k) − 2 Σ_k min(q_k, x_k), which needs two passes per
-    feature over the tile instead of three for subtract/abs/add.
+    ``euclidean_distances`` uses), clipped at 0 from above against rounding; then
+    :func:`finish_tile`. The serving engine gets u in one product from the augmented
+    operands instead (:func:`augmented_columns`). Laplacian: ‖q − x‖₁ = Σ_k (q_k + x_k) −
+    2 Σ_k min(q_k, x_k), which needs two passes per feature over the tile instead of three
+    for subtract/abs/add.
     """
     name = spec.name
     if spec.uses == "l1":
@@ -263,40 +283,48 @@ def kernel_tile(
         return np.exp(out, out=out)
 
     np.matmul(qs, xt, out=out)
-    if name == "linear":
-        return out
-    if name in ("polynomial", "sigmoid"):
-        out += spec.coef0
-        if name == "sigmoid":
-            return np.tanh(out, out=out)
-        return _integer_power(out, spec.degree, scratch)
-
-    # distance kernels: out = u = −c r² ≤ 0
-    if row is None:
-        # augmented operands (augmented_rows/augmented_columns): u came out of the product;
-        # rounding can leave u a hair above 0, which exp maps to 1 + O(1e-15): harmless
-        if name == "rbf":
-            return np.exp(out, out=out)
-    else:
+    if spec.uses == "dot":
+        if name != "linear":
+            out += spec.coef0
+    else:  # distance kernels: u = −c r² ≤ 0, clipped against rounding
         out -= row[:, None]
         out -= col
-    np.minimum(out, 0.0, out=out)
+        np.minimum(out, 0.0, out=out)
+    return finish_tile(spec, out, scratch)
+
+
+def finish_tile(spec: KernelSpec, out: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
+    """The kernel's elementwise step, in place: k from its affine part u (see
+    :func:`augmented_columns`).
+
+    u is γ qᵀx + c₀ for the dot kernels and −c‖q − x‖² for distance kernels (Matérn clips it
+    at 0 from above against rounding; for rbf a u a hair above 0 maps to 1 + O(1e-15)).
+    ``scratch`` (same shape) serves Matérn and the cubic polynomial.
+    """
+    name = spec.name
+    if name == "linear":
+        return out
+    if name == "polynomial":
+        return _integer_power(out, spec.degree, scratch)
+    if name == "sigmoid":
+        return np.tanh(out, out=out)
     if name == "rbf":
         return np.exp(out, out=out)
-    # Matérn: t = √(c r²) = √(−u)
+    # Matérn: t = √(c r²) = √(−u); the polynomial factor goes to scratch, exp(−t) to out
+    np.minimum(out, 0.0, out=out)
     np.negative(out, out=out)
     np.sqrt(out, out=out)
     if scratch is None:
         scratch = np.empty_like(out)
-    np.negative(out, out=scratch)
-    np.exp(scratch, out=scratch)  # scratch = exp(-t)
     if name == "matern32":
-        out += 1.0  # 1 + t
+        np.add(out, 1.0, out=scratch)  # 1 + t
     else:
-        tt = out * out  # 1 + t + t²/3
-        tt /= 3.0
-        out += 1.0
-        out += tt
+        np.multiply(out, out, out=scratch)  # 1 + t + t²/3
+        scratch *= 1.0 / 3.0
+        scratch += out
+        scratch += 1.0
+    np.negative(out, out=out)
+    np.exp(out, out=out)
     out *= scratch
     return out
 
