@@ -45,7 +45,7 @@ def main() -> int:
     # near what tuning picks for this response at these sizes (gamma 0.03–0.05)
     spec, ridge = KernelSpec("rbf", gamma=0.04), 1e-3
     print(f"# landmark bench: {args.rows} rows × 8 of bench/scale_bench.py's response, noise "
-          f"SD {NOISE}, rbf(gamma=0.04), ridge 1e-3, {args.seeds} seeds; {header()}")
+          f"SD {NOISE}, rbf(gamma=0.04), ridge 1e-3, {args.seeds} seeds")
     print(f"{'m':>6}{'scheme':>10}{'RMSE vs f':>12}{'± sd':>9}{'pick s':>9}")
     for m in args.m:
         mean_rmse = {}
