@@ -209,6 +209,23 @@ def query_factor(spec: KernelSpec) -> float:
     return 1.0 if spec.name == "linear" else spec.gamma
 
 
+def augmented_rows(spec: KernelSpec, q: np.ndarray) -> np.ndarray:
+    """Q̃ of :func:`augmented_columns` for the rows ``q`` (a new array; not for laplacian).
+
+    The serving engine writes Q̃ into buffers it keeps; this allocating form serves callers
+    that build Q̃ once per block (the Nyström accumulation).
+    """
+    m, d = q.shape
+    out = np.empty((m, augmented_width(spec, d)))
+    np.multiply(q, query_factor(spec), out=out[:, :d])
+    if spec.uses == "sqdist":
+        out[:, d] = -sqdist_scale(spec) * row_sq_norms(q)
+        out[:, d + 1] = 1.0
+    elif out.shape[1] > d:
+        out[:, d] = 1.0
+    return out
+
+
 def _integer_power(out: np.ndarray, degree: float, scratch: np.ndarray | None) -> np.ndarray:
     """``out **= degree`` in place; small integer degrees by multiplication (pow is ~10× slower)."""
     if degree == 1.0:

@@ -32,6 +32,7 @@ from service.kernels import (
     KernelSpec,
     augmented_columns,
     augmented_rows,
+    finish_tile,
     kernel_block,
     kernel_matrix,
     kernel_tile,
@@ -174,10 +175,11 @@ class LandmarkKernel:
         out = np.empty((b, self.xt.shape[1])) if out is None else out[:b]
         if scratch is not None:
             scratch = scratch[:b]
-        if self.augmented:
-            qs, row = augmented_rows(self.spec, rows), None
-        else:
-            qs, row = prepare_rows(self.spec, rows)
+        if self.augmented:  # u = Q̃·X̃ = −c‖x − l‖², clipped at 0 against rounding
+            np.matmul(augmented_rows(self.spec, rows), self.xt, out=out)
+            np.minimum(out, 0.0, out=out)
+            return finish_tile(self.spec, out, scratch)
+        qs, row = prepare_rows(self.spec, rows)
         return kernel_tile(self.spec, qs, row, self.xt, self.col, out, scratch)
 
 
