@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service import engine as engine_mod
+from service import engine_threads as engine_mod
 from service.engine import ROW_TILE, Engine
 from service.kernels import KERNEL_NAMES, default_spec, kernel_matrix
 
