@@ -160,6 +160,11 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
     t0 = time.perf_counter()
     y, env = model.score(x)
     compute = time.perf_counter() - t0
+    if not np.isfinite(y).all():  # JSON would carry it as null, silently
+        i = int(np.argwhere(~np.isfinite(y))[0][0])
+        raise ApiError(422, "prediction_not_finite",
+                       f"row {i}: the prediction overflowed (the kernel value is not finite); "
+                       "the row lies far outside the training envelope", {"row": i})
     multi = y.shape[1] > 1
     results = []
     for i in range(y.shape[0]):
