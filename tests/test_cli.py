@@ -264,6 +264,18 @@ def test_console_script_reports_without_traceback(tmp_path, store_dir):
     assert tree(store_dir) == set()
 
 
+def test_refused_file_exits_2_every_time(tmp_path, store_dir):
+    # A refused block once left pyarrow's parallel parse with tasks in flight, and about one
+    # process in thirteen then aborted at exit (SIGABRT, exit -6) after printing its refusal.
+    data = tmp_path / "in.csv"
+    data.write_text(lines_with("4,abc,7.5"))
+    cmd = [*KRIDGE, "train", str(data), *_train_args([])]
+    codes = [subprocess.run(cmd, capture_output=True, timeout=120).returncode
+             for _ in range(20)]
+    assert codes == [2] * 20
+    assert tree(store_dir) == set()
+
+
 def test_verify_and_release_of_unknown_things(store_dir, capsys):
     code, _, err = run_cli(capsys, "verify", "nosuch")
     assert code == 2 and "no model named 'nosuch'" in err

@@ -90,9 +90,13 @@ class CsvFile:
         if time:
             types[time] = pa.string()
         try:
+            # Parsed on this thread: after a refused block, pyarrow's parallel parse can leave
+            # tasks on its thread pool that abort the process at exit ("terminate called
+            # without an active exception", apache/arrow#34314), turning a one-line refusal
+            # into SIGABRT. Blocks are small, so the cost is a fraction of a second per 10⁶ rows.
             table = pcsv.read_csv(
                 io.BytesIO(raw),
-                read_options=pcsv.ReadOptions(column_names=self.header, use_threads=True),
+                read_options=pcsv.ReadOptions(column_names=self.header, use_threads=False),
                 parse_options=pcsv.ParseOptions(delimiter=self.sep,
                                                 newlines_in_values=b'"' in raw),
                 convert_options=pcsv.ConvertOptions(
