@@ -256,6 +256,38 @@ def test_good_names_pass():
 
 # -- concurrency ----------------------------------------------------------------------------
 
+def test_a_sweep_never_takes_a_folder_another_publisher_is_still_claiming(store_dir):
+    # A publisher's new work folder is unlocked between its mkdir and its flock. Another
+    # publisher's sweep must wait for that claim (the staging folder's own lock), or it would
+    # delete the folder as litter and the first publisher would fail with ENOENT.
+    import fcntl
+    import threading
+
+    from service_helpers import holds_for
+
+    from service.store import STAGING
+
+    st = Store(store_dir)
+    assert st.publish("m", {"created": "x"}, {"dual": np.zeros(3)}) == 1
+    staging = store_dir / "m" / STAGING
+    guard = os.open(staging, os.O_RDONLY)
+    fcntl.flock(guard, fcntl.LOCK_EX)  # the other publisher, mid-claim
+    claiming = staging / "claimed-but-not-yet-locked"
+    claiming.mkdir()
+    done: list[int] = []
+    worker = threading.Thread(target=lambda: done.append(
+        st.publish("m", {"created": "y"}, {"dual": np.ones(3)})))
+    worker.start()
+    try:
+        holds_for(lambda: claiming.is_dir() and not done, 0.5, "the claimed folder")
+    finally:
+        os.close(guard)
+    worker.join(timeout=60)
+    assert done == [2]
+    # once the claim is over, a folder nobody holds is litter: that publish swept it
+    assert not claiming.exists()
+
+
 def test_four_trainers_publishing_at_once_get_four_versions(store_dir, small_csv):
     cmd = [*KRIDGE, "train", str(small_csv), "--target", "hardness_s", "--name", "same",
            "--features", "oven_temp_c,line_speed_m_min,wet_film_um,humidity_pct,viscosity_mpas",

@@ -48,12 +48,7 @@ class Publisher(StoreReader):
         staging = mdir / STAGING
         staging.mkdir(parents=True, exist_ok=True)
         (mdir / "versions").mkdir(exist_ok=True)
-        sweep_staging(staging)
-        work = staging / uuid.uuid4().hex
-        work.mkdir()
-        # held while writing: a sweeper that can take it knows the writer is gone
-        claim = os.open(work, os.O_RDONLY)
-        fcntl.flock(claim, fcntl.LOCK_EX)
+        work, claim = _claim_work_folder(staging)
         try:
             (work / "arrays").mkdir()
             listed = {}
@@ -94,3 +89,25 @@ class Publisher(StoreReader):
         finally:
             shutil.rmtree(work, ignore_errors=True)
             os.close(claim)
+
+
+def _claim_work_folder(staging: Path) -> tuple[Path, int]:
+    """Sweep the litter of dead publishers, then make and lock a fresh work folder.
+
+    Both happen under a lock on the staging folder itself: a new folder is unlocked for an
+    instant between its mkdir and its flock, and another publisher's sweep must not see it
+    then (it would take the free lock for the litter of a dead publisher and delete it).
+    Returns the folder and the descriptor whose lock marks its writer as alive.
+    """
+    guard = os.open(staging, os.O_RDONLY)
+    try:
+        fcntl.flock(guard, fcntl.LOCK_EX)
+        sweep_staging(staging)
+        work = staging / uuid.uuid4().hex
+        work.mkdir()
+        # held while writing: a sweeper that can take it knows the writer is gone
+        claim = os.open(work, os.O_RDONLY)
+        fcntl.flock(claim, fcntl.LOCK_EX)
+    finally:
+        os.close(guard)  # closing the descriptor releases its lock
+    return work, claim
