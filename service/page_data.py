@@ -102,7 +102,7 @@ def overview(store: Store, served: dict[str, int | None],
     """Every model in the store: live version and since when, the live version's kernel,
     training rows and held-out error, and its flagged share of predicted rows.
 
-    ``served`` maps a model to the version loaded in this worker (``ModelHub.readiness``).
+    ``served`` maps a model to the version loaded in this worker (``LiveModels.readiness``).
     """
     lines = []
     for name in store.models():
