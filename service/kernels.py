@@ -27,6 +27,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from service.l1_distance import scaled_l1
+
 KERNEL_NAMES = ("linear", "polynomial", "rbf", "laplacian", "sigmoid", "matern32", "matern52")
 
 #: Which parameters each kernel reads. Anything else given for it is refused.
@@ -126,14 +128,12 @@ def prepare_columns(
 ) -> np.ndarray | None:
     """Training-side term of :func:`kernel_tile`, computed once per model.
 
-    Returns c·‖x_j‖² for distance kernels (c from :func:`sqdist_scale`), γ·Σ_k x_jk for the
-    laplacian, None for the dot-product kernels. Length n; never a copy of ``x`` itself, so
-    a memory-mapped training matrix stays shared between processes.
+    Returns c·‖x_j‖² for distance kernels (c from :func:`sqdist_scale`), None for the others.
+    Length n; never a copy of ``x`` itself, so a memory-mapped training matrix stays shared
+    between processes.
     """
     if spec.uses == "sqdist":
         return sqdist_scale(spec) * (row_sq_norms(x) if x_sq is None else x_sq)
-    if spec.uses == "l1":
-        return spec.gamma * x.sum(axis=1)
     return None
 
 
@@ -148,7 +148,7 @@ def prepare_rows(
     linear                    q                  None
     polynomial, sigmoid       γ q                None
     rbf, Matérn               2c q               c‖q_i‖²
-    laplacian                 q                  γ Σ_k q_ik
+    laplacian                 q                  None
     ========================  =================  =================
 
     Folding the scale into the small (m, d) query side saves a pass over every (m, n) tile.
@@ -158,9 +158,7 @@ def prepare_rows(
         qs = q * (2.0 * c)
         row = c * row_sq_norms(q) if q_sq is None else c * q_sq
         return qs, row
-    if spec.uses == "l1":
-        return q, spec.gamma * q.sum(axis=1)
-    if spec.name == "linear":
+    if spec.name in ("linear", "laplacian"):
         return q, None
     return q * spec.gamma, None
 
@@ -261,7 +259,7 @@ def kernel_tile(
     xt : (d, w) the tile's training rows transposed (a view such as ``x[j0:j1].T``).
     col : the tile's slice of :func:`prepare_columns` (None for dot kernels).
     out : (m, w) float buffer, overwritten.
-    scratch : optional (m, w) buffer (laplacian, Matérn, polynomial of degree 3).
+    scratch : optional (m, w) buffer (Matérn, polynomial of degree 3).
 
     Returns
     -------
@@ -272,31 +270,16 @@ def kernel_tile(
     Distance kernels: u = 2c qᵀx − c‖q‖² − c‖x‖² = −c‖q − x‖² (the expansion scikit-learn's
     ``euclidean_distances`` uses), clipped at 0 from above against rounding; then
     :func:`finish_tile`. The serving engine gets u in one product from the augmented
-    operands instead (:func:`augmented_columns`). Laplacian: ‖q − x‖₁ = Σ_k (q_k + x_k) −
-    2 Σ_k min(q_k, x_k), which needs two passes per feature over the tile instead of three
-    for subtract/abs/add.
+    operands instead (:func:`augmented_columns`). Laplacian: −γ‖q − x‖₁ from the compiled
+    loop of :mod:`service.l1_distance`.
     """
     name = spec.name
     if spec.uses == "l1":
-        d = xt.shape[0]
-        if xt.strides[1] != xt.itemsize:
-            # d passes over the tile each read one feature of every training row: copy the
-            # tile's rows to feature-major order once (d × w values, read once) rather than
-            # gather with stride d in every pass, which drags the whole of X through the
-            # cache d times
+        if not xt.flags.c_contiguous:
+            # the compiled loop reads each feature's values as one contiguous run; a copy
+            # (d × w values, read once) beats strided reads in every feature pass
             xt = np.ascontiguousarray(xt)
-        np.minimum(qs[:, 0, None], xt[0], out=out)
-        if d > 1:
-            if scratch is None:
-                scratch = np.empty_like(out)
-            for k in range(1, d):
-                np.minimum(qs[:, k, None], xt[k], out=scratch)
-                out += scratch
-        # u = 2γ Σ min − γ Σ q − γ Σ x = −γ ‖q − x‖₁
-        out *= 2.0 * spec.gamma
-        out -= row[:, None]
-        out -= col
-        np.minimum(out, 0.0, out=out)
+        scaled_l1(qs, xt, 0, -spec.gamma, out)
         return np.exp(out, out=out)
 
     np.matmul(qs, xt, out=out)
@@ -363,7 +346,7 @@ def kernel_block(
     q, x : (m, d) and (n, d) standardized rows.
     x_sq, q_sq : optional precomputed ``row_sq_norms`` of x and q (distance kernels).
     out : optional (m, n) float buffer to write into.
-    scratch : optional (m, n) buffer used by the laplacian, Matérn and cubic kernels.
+    scratch : optional (m, n) buffer used by the Matérn and cubic kernels.
 
     Returns
     -------
