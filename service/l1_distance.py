@@ -3,8 +3,8 @@
 numpy has no fused L1 distance: built from ufuncs it makes two or three passes over the whole
 tile per feature, and scikit-learn's route (scipy's ``cdist(..., "cityblock")``) is a scalar
 loop. The loop below, compiled by numba, runs in SIMD registers with each output chunk held in
-L1 cache while the features stream past: about 7–8·10⁹ terms per second per core here, against
-about 2·10⁹ for ``cdist`` (``bench/engine_bench.py --only kernels`` compares the kernels).
+L1 cache while the features stream past: several times ``cdist``'s rate (DEVELOPERS.md,
+"Measured limits"; ``bench/engine_bench.py --only kernels`` compares the kernels end to end).
 
 numba is imported on first use, so models with other kernels never load it. The function is
 compiled in memory (no on-disk cache: the serving filesystem may be read-only), once per
@@ -24,8 +24,7 @@ log = logging.getLogger(__name__)
 
 #: Training columns per chunk inside the compiled loop: one query row's chunk of output
 #: (16 KiB in float64) stays in the 32 KiB L1 cache through all d feature passes, and the
-#: chunk's training values (d × 2048) stay in L2 across the tile's query rows. Measured at
-#: d = 16: 7.4·10⁹ terms/s at 2,048 columns, 5.1·10⁹ at 4,096.
+#: chunk's training values (d × 2048) stay in L2 across the tile's query rows.
 CHUNK = 2048
 
 _lock = threading.Lock()
