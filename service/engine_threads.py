@@ -84,6 +84,21 @@ def _thread_knobs(lib) -> tuple:
     return lib.get_num_threads, put
 
 
+def _numpy_blas(libs: list) -> list:
+    """The BLAS libraries numpy's own products run on, among the loaded ones.
+
+    The engine calls BLAS through numpy only; a second OpenBLAS (scipy's, in a notebook or a
+    bench that also loads scipy) is never on its path and costs a thread-count query and a
+    set and restore per call if held as well. Those bundled with numpy sit in its package
+    folder (or its ``numpy.libs`` sibling); where none does (numpy linked against a system
+    BLAS), every loaded BLAS is held.
+    """
+    home = os.path.dirname(os.path.realpath(np.__file__))
+    folders = (home + os.sep, home + ".libs" + os.sep)
+    own = [lib for lib in libs if os.path.realpath(lib.filepath).startswith(folders)]
+    return own or list(libs)
+
+
 class _SingleThreadedBlas:
     """Context holding BLAS at one thread while the engine runs (re-entrant, counted).
 
@@ -109,8 +124,8 @@ class _SingleThreadedBlas:
                 if knobs is None:
                     from threadpoolctl import ThreadpoolController
 
-                    ctl = ThreadpoolController().select(user_api="blas")
-                    knobs = self._knobs = [_thread_knobs(lib) for lib in ctl.lib_controllers]
+                    libs = ThreadpoolController().select(user_api="blas").lib_controllers
+                    knobs = self._knobs = [_thread_knobs(lib) for lib in _numpy_blas(libs)]
                 for get, put in knobs:
                     threads = get()
                     if threads is not None and threads != 1:

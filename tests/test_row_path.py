@@ -236,3 +236,46 @@ def test_kth_value_is_exact(n):
         for k in {0, 1, 4, min(n - 1, 9)}:
             assert kth_value(v, k) == full[k]
             assert kth_value(v, k, largest=True) == full[n - 1 - k]
+
+
+def test_numpy_blas_runs_one_thread_during_a_row_and_other_blas_is_left_alone(
+    data, monkeypatch
+):
+    """BLAS threads would split the single row's product and wait on each other; only the
+    BLAS numpy's products run on is held (a second OpenBLAS, scipy's here, is not on the
+    path and keeps its setting)."""
+    import os
+
+    import scipy.linalg  # noqa: F401  (loads scipy's own OpenBLAS, as a notebook would)
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    import service.engine as engine_mod
+
+    home = os.path.dirname(os.path.realpath(np.__file__))
+
+    def threads_by_owner() -> dict[str, set[int]]:
+        seen: dict[str, set[int]] = {"numpy": set(), "other": set()}
+        for info in threadpool_info():
+            if info["user_api"] == "blas":
+                owner = "numpy" if os.path.realpath(info["filepath"]).startswith(
+                    (home + os.sep, home + ".libs" + os.sep)) else "other"
+                seen[owner].add(info["num_threads"])
+        return seen
+
+    during = []
+    finish = engine_mod.finish_tile
+
+    def spy(*args, **kwargs):
+        during.append(threads_by_owner())
+        return finish(*args, **kwargs)
+
+    monkeypatch.setattr(engine_mod, "finish_tile", spy)
+    x_s, dual, reference = data
+    model = _model("rbf", x_s, dual, reference)
+    with threadpool_limits(2, user_api="blas"):
+        assert threads_by_owner()["numpy"] == {2}  # control: the limit took
+        model.predict(_raw_rows(1, seed=3))
+        after = threads_by_owner()
+    assert during and during[0]["numpy"] == {1}
+    assert during[0]["other"] in (set(), {2})  # scipy's BLAS untouched (absent if not split)
+    assert after["numpy"] == {2}
