@@ -39,8 +39,12 @@ def _compile() -> Callable | None:
     except Exception as exc:  # ImportError, or numba refusing this numpy version
         log.warning("numba unavailable (%s); the laplacian kernel uses the slower numpy form", exc)
         return None
+    if numba.config.DISABLE_JIT:  # the loop would run as Python, far slower than numpy
+        return None
 
-    @numba.njit(nogil=True, fastmath=True, boundscheck=False, error_model="numpy", cache=False)
+    # strict IEEE arithmetic (no fastmath): measured as fast here, and a huge but finite
+    # input's infinite distance must stay infinite
+    @numba.njit(nogil=True, boundscheck=False, error_model="numpy", cache=False)
     def scaled_l1_loop(q, xt, j0, scale, out):
         m, w = out.shape
         d = xt.shape[0]

@@ -207,6 +207,17 @@ def test_huge_finite_values_are_predicted(data):
     assert y.shape == (2, 3) and np.isfinite(y[1]).all()
 
 
+def test_a_row_beyond_every_scale_gets_the_laplacian_s_limit(data):
+    """exp(−γ·∞) = 0: a row whose L1 distances overflow to ∞ is predicted as the intercept
+    (the compiled loop keeps IEEE arithmetic, so ∞ stays ∞)."""
+    x_s, dual, reference = data
+    model = _model("laplacian", x_s, dual, reference)
+    x = _raw_rows(2, seed=1)
+    x[0, :] = 1e308
+    y = model.predict(x)
+    np.testing.assert_array_equal(y[0], model.intercept)
+
+
 def test_single_rows_leave_blas_threads_as_they_were(data):
     from threadpoolctl import threadpool_info, threadpool_limits
 
