@@ -312,16 +312,16 @@ def finish_tile(spec: KernelSpec, out: np.ndarray, scratch: np.ndarray | None = 
         return np.exp(out, out=out)
     # Matérn: t = √(c r²) = √(−u); the polynomial factor goes to scratch, exp(−t) to out
     np.minimum(out, 0.0, out=out)
-    np.negative(out, out=out)
-    np.sqrt(out, out=out)
     if scratch is None:
         scratch = np.empty_like(out)
+    if name == "matern52":
+        np.multiply(out, -1.0 / 3.0, out=scratch)  # t²/3 = −u/3: one pass, before the root
+    np.negative(out, out=out)
+    np.sqrt(out, out=out)
     if name == "matern32":
         np.add(out, 1.0, out=scratch)  # 1 + t
     else:
-        np.multiply(out, out, out=scratch)  # 1 + t + t²/3
-        scratch *= 1.0 / 3.0
-        scratch += out
+        scratch += out  # 1 + t + t²/3
         scratch += 1.0
     np.negative(out, out=out)
     np.exp(out, out=out)
