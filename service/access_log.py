@@ -39,6 +39,8 @@ FIELDS = ("time", "request_id", "method", "route", "model", "version", "status",
 #: count for the access log and the error handlers: plain dict entries, cheaper than ``g``.
 LABELS = "kridge.model_labels"
 ROWS = "kridge.rows"
+#: The route pattern, left by a layer that answers before Flask matches a rule.
+ROUTE = "kridge.route"
 #: Where the request of a logged call waits for its access-log line (popped then).
 _REQUEST = "kridge.request"
 _SANE_ID = re.compile(r"[A-Za-z0-9._:-]{1,64}")
@@ -143,11 +145,12 @@ def _record(environ: dict, rid: str, status: int | None, started: float) -> dict
             except StoreError:
                 model = None
     rule = getattr(req, "url_rule", None)
+    route = rule.rule if rule is not None else environ.get(ROUTE)
     return {
         "time": utc_now(),
         "request_id": rid,
         "method": environ.get("REQUEST_METHOD"),
-        "route": rule.rule if rule is not None else None,
+        "route": route,
         "model": model,
         "version": version,
         "status": status,

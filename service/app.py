@@ -22,8 +22,10 @@ def create_app(settings: Settings | None = None, watch: bool = True) -> Flask:
     settings = settings or Settings.from_env()
     app = Flask(__name__)
     app.config["MAX_CONTENT_LENGTH"] = settings.max_body_bytes
-    app.extensions[KEY] = AppState.build(settings, watch)
+    app.extensions[KEY] = app_state = AppState.build(settings, watch)
     errors.install(app, settings.max_body_bytes)
+    # WSGI layers, innermost first: the predict shortcut, then request ids and the log
+    app.wsgi_app = predict.PredictShortcut(app.wsgi_app, app_state)
     access_log.install(app, settings.access_log)
 
     app.register_blueprint(discovery.bp)
