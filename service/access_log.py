@@ -81,11 +81,12 @@ class RequestLog:
     """WSGI middleware around the Flask app: the request id on every response and, with a
     sink, the access-log line.
 
-    Plain WSGI rather than Flask's before/after-request hooks: the hooks cost a request
-    about 20 µs (each is wrapped and looked up per request, and reads ``g`` and the request
-    through context proxies); here it is one function call and one wrapped
-    ``start_response``. Every response Flask makes passes through ``start_response``, error
-    answers included, so every one carries the header.
+    Plain WSGI rather than Flask's before/after-request hooks, which Flask looks up and
+    wraps on every request and which read ``g`` and the request through context proxies:
+    here it is one function call and one wrapped ``start_response``, and the predict
+    shortcut in front of Flask (:mod:`service.routes.predict`) is covered too. Every
+    response passes through ``start_response``, error answers included, so every one
+    carries the header.
     """
 
     def __init__(self, wsgi_app: Callable, sink: AccessLog | None):

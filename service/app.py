@@ -1,9 +1,10 @@
 """The Flask application factory.
 
 The factory builds the worker's services (settings, store, live models) into one
-:class:`~service.app_state.AppState` on the app, installs the error handlers and the access
-log, and registers the blueprints; the routes live in :mod:`service.routes` and read their
-services through :func:`service.app_state.state`. Routes and fields are fixed by the README's
+:class:`~service.app_state.AppState` on the app, installs the error handlers, puts two WSGI
+layers in front of Flask (the predict shortcut, then request ids and the access log) and
+registers the blueprints; the routes live in :mod:`service.routes` and read their services
+through :func:`service.app_state.state`. Routes and fields are fixed by the README's
 HTTP API.
 """
 

@@ -4,7 +4,7 @@ Two ways in, one answer. The Flask view serves every request. :class:`PredictSho
 WSGI layer in front of Flask, answers the common request — POST with a JSON body of known
 length, no query, a live model already loaded — by the same :func:`answer` without Flask's
 per-request machinery (request and app contexts, URL matching, the Request and Response
-objects: about 100 µs of Python a request on a small machine). Anything else, and any
+objects: about 100 µs of Python a request on a 2-core VM). Anything else, and any
 request whose answer would not be a 200, goes to Flask untouched (the body it read is put
 back), so routing, errors, their bodies and their counting stay Flask's alone.
 """
