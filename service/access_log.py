@@ -21,11 +21,12 @@ import logging
 import os
 import re
 import secrets
-import time
+from collections.abc import Callable, Iterable
 from datetime import datetime, timezone
+from time import perf_counter
 
 import orjson
-from flask import Flask, Response, g, request
+from flask import Flask, Request
 
 from service.store import StoreError, check_name
 
@@ -34,6 +35,14 @@ log = logging.getLogger("kridge.access")
 HEADER = "X-Request-ID"
 FIELDS = ("time", "request_id", "method", "route", "model", "version", "status", "rows",
           "latency_ms")
+#: Keys of the WSGI environ where the predict route leaves (model, version) and its row
+#: count for the access log and the error handlers: plain dict entries, cheaper than ``g``.
+LABELS = "kridge.model_labels"
+ROWS = "kridge.rows"
+#: The route pattern, left by a layer that answers before Flask matches a rule.
+ROUTE = "kridge.route"
+#: Where the request of a logged call waits for its access-log line (popped then).
+_REQUEST = "kridge.request"
 _SANE_ID = re.compile(r"[A-Za-z0-9._:-]{1,64}")
 
 
@@ -68,49 +77,84 @@ def utc_now() -> str:
     return now.strftime("%Y-%m-%dT%H:%M:%S.") + f"{now.microsecond // 1000:03d}Z"
 
 
-def install(app: Flask, target: str | None) -> None:
-    """Register the request-id and access-log hooks on ``app``.
+class RequestLog:
+    """WSGI middleware around the Flask app: the request id on every response and, with a
+    sink, the access-log line.
 
-    The predict route leaves ``g.model_labels`` (name, version) and ``g.rows`` behind; other
-    routes log the model named in the path (when valid) and no version or rows.
+    Plain WSGI rather than Flask's before/after-request hooks, which Flask looks up and
+    wraps on every request and which read ``g`` and the request through context proxies:
+    here it is one function call and one wrapped ``start_response``, and the predict
+    shortcut in front of Flask (:mod:`service.routes.predict`) is covered too. Every
+    response passes through ``start_response``, error answers included, so every one
+    carries the header.
     """
-    sink = AccessLog(target) if target else None
 
-    @app.before_request
-    def _start() -> None:
-        g.request_started = time.perf_counter()
-        g.request_id = request_id(request.headers.get(HEADER))
+    def __init__(self, wsgi_app: Callable, sink: AccessLog | None):
+        self.wsgi_app = wsgi_app
+        self.sink = sink
 
-    @app.after_request
-    def _finish(response: Response) -> Response:
-        rid = g.get("request_id") or request_id(None)
-        response.headers[HEADER] = rid
+    def __call__(self, environ: dict, start_response: Callable) -> Iterable[bytes]:
+        started = perf_counter()
+        rid = request_id(environ.get("HTTP_X_REQUEST_ID"))
+        sink = self.sink
+        status: list[str] = []
+
+        def start(code: str, headers: list, exc_info=None):
+            headers.append((HEADER, rid))
+            if sink is not None:
+                status.append(code)
+            return start_response(code, headers, exc_info)
+
+        body = self.wsgi_app(environ, start)
         if sink is not None:
-            sink.write(_record(rid, response.status_code))
-        return response
+            sink.write(_record(environ, rid, int(status[-1][:3]) if status else None,
+                               started))
+        return body
 
 
-def _record(rid: str, status: int) -> dict:
-    started = g.get("request_started")
-    labels = g.get("model_labels")
+class LoggedRequest(Request):
+    """Flask's request, also left in the environ so that the access log can read the
+    matched route afterwards (Flask clears werkzeug's own reference when the request ends)."""
+
+    def __init__(self, environ: dict, *args, **kwargs):
+        super().__init__(environ, *args, **kwargs)
+        environ[_REQUEST] = self
+
+
+def install(app: Flask, target: str | None) -> None:
+    """Wrap ``app``'s WSGI callable in :class:`RequestLog` (with a sink when ``target``).
+
+    The predict route leaves (name, version) under :data:`LABELS` and its row count under
+    :data:`ROWS` in the environ; other routes log the model named in the path (when valid)
+    and no version or rows.
+    """
+    if target:
+        app.request_class = LoggedRequest
+    app.wsgi_app = RequestLog(app.wsgi_app, AccessLog(target) if target else None)
+
+
+def _record(environ: dict, rid: str, status: int | None, started: float) -> dict:
+    req = environ.pop(_REQUEST, None)  # popped: no request ↔ environ cycle left behind
+    labels = environ.get(LABELS)
     if labels:
         model, version = labels[0], int(labels[1])
     else:
-        model, version = (request.view_args or {}).get("name"), None
+        model, version = (getattr(req, "view_args", None) or {}).get("name"), None
         if model is not None:
             try:
                 check_name(model)
             except StoreError:
                 model = None
-    rule = request.url_rule
+    rule = getattr(req, "url_rule", None)
+    route = rule.rule if rule is not None else environ.get(ROUTE)
     return {
         "time": utc_now(),
         "request_id": rid,
-        "method": request.method,
-        "route": rule.rule if rule is not None else None,
+        "method": environ.get("REQUEST_METHOD"),
+        "route": route,
         "model": model,
         "version": version,
         "status": status,
-        "rows": g.get("rows"),
-        "latency_ms": round((time.perf_counter() - started) * 1e3, 3) if started else None,
+        "rows": environ.get(ROWS),
+        "latency_ms": round((perf_counter() - started) * 1e3, 3),
     }

@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import logging
 
-from flask import Flask, g, request
+from flask import Flask, request
 from werkzeug.exceptions import HTTPException
 
 from service import metrics
+from service.access_log import LABELS
 from service.errors import ApiError
 from service.routes import json_response
 
@@ -15,7 +16,7 @@ log = logging.getLogger("kridge.service")
 
 
 def api_error(exc: ApiError):
-    label = g.get("model_labels") or ((request.view_args or {}).get("name", ""), "")
+    label = request.environ.get(LABELS) or ((request.view_args or {}).get("name", ""), "")
     metrics.ERRORS.labels(label[0], label[1], exc.code).inc()
     return json_response(exc.body(), exc.status)
 
