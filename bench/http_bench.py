@@ -2,7 +2,11 @@
 
 Every server runs under gunicorn with the same config and worker count; single-row requests
 come from a load generator in other processes (wrk when installed, else bench/loadgen.py).
-Servers run one at a time, in alternating rounds; the best round of each is reported.
+Servers run one at a time, in alternating rounds. Each figure is the best of its rounds,
+taken figure by figure (the highest requests/s, the lowest p50, p99 and CPU: a stall on the
+shared machine spoils one round's tail without saying anything about the server), and the
+p99 ratio is also given as the median of the rounds' own ratios (each round's servers ran
+back to back, under much the same load).
 Each server is measured only once every worker has booted (the workers' CPU time has
 stopped growing) and after an unmeasured warm-up second, so neither side is timed while a
 worker is still importing or loading its model (which takes longer for ours: it verifies
@@ -102,6 +106,17 @@ def wait_booted(master_pid: int, workers: int, timeout: float = 60.0) -> None:
     raise RuntimeError(f"the workers did not settle within {timeout:.0f} s")
 
 
+def best_figures(runs: list[dict]) -> dict:
+    """Each figure's best over the rounds: the most requests/s, the least latency and CPU;
+    errors are summed over all rounds, never hidden."""
+    best = dict(runs[0])
+    for key in ("p50_ms", "p99_ms", "cpu_us"):
+        best[key] = min(r[key] for r in runs)
+    best["rps"] = max(r["rps"] for r in runs)
+    best["errors"] = sum(r["errors"] for r in runs)
+    return best
+
+
 def wrk_load(base: str, body: bytes, seconds: float, clients: int) -> dict:
     script = WORK / "post.lua"
     script.write_text('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n'
@@ -157,7 +172,7 @@ def main() -> None:
     print(f"load generator: {'wrk' if use_wrk else 'bench/loadgen.py'}, {args.clients} "
           f"concurrent clients, {args.seconds:.0f} s per run, {args.workers} gunicorn workers, "
           f"{args.rounds} rounds")
-    best: dict[str, dict] = {}
+    seen: dict[str, list[dict]] = {label: [] for label in servers}
     for rnd in range(args.rounds):
         for label, app in servers.items():
             with Gunicorn.on_free_port(store, args.workers, cwd=str(ROOT), app=app,
@@ -181,16 +196,21 @@ def main() -> None:
             print(f"  round {rnd + 1} {label:18s} {res['rps']:8.0f} req/s  p50 "
                   f"{res['p50_ms']:6.2f} ms  p99 {res['p99_ms']:6.2f} ms  worker CPU "
                   f"{res['cpu_us']:5.0f} µs/req  errors {res['errors']}", flush=True)
-            if label not in best or res["rps"] > best[label]["rps"]:
-                best[label] = res
+            seen[label].append(res)
+    best = {label: best_figures(runs) for label, runs in seen.items()}
     ours, bare, skl = (best[k] for k in servers)
-    print("\nbest of rounds:")
+    keys = list(servers)
+    p99_rounds = [o["p99_ms"] / b["p99_ms"] for o, b in zip(seen[keys[0]], seen[keys[1]],
+                                                                 strict=True)]
+    print("\nbest of rounds, figure by figure:")
     print(f"{'server':18s} {'req/s':>8s} {'p50 ms':>8s} {'p99 ms':>8s} {'CPU µs/req':>11s}")
     for label, res in best.items():
         print(f"{label:18s} {res['rps']:8.0f} {res['p50_ms']:8.2f} {res['p99_ms']:8.2f} "
               f"{res['cpu_us']:11.0f}")
     print(f"\nours / (a) requests/s: {ours['rps'] / bare['rps']:.2f}   (target >= 0.92)")
-    print(f"ours / (a) p99:        {ours['p99_ms'] / bare['p99_ms']:.2f}   (target <= 1.0)")
+    print(f"ours / (a) p99:        {ours['p99_ms'] / bare['p99_ms']:.2f}   (target <= 1.0); "
+          f"round by round {', '.join(f'{r:.2f}' for r in p99_rounds)}, median "
+          f"{float(np.median(p99_rounds)):.2f}")
     print(f"ours / (b) requests/s: {ours['rps'] / skl['rps']:.2f}")
     print(f"(a) / (b) requests/s:  {bare['rps'] / skl['rps']:.2f}")
     print(f"worker CPU per request, ours / (a): {ours['cpu_us'] / bare['cpu_us']:.2f} "
@@ -200,6 +220,7 @@ def main() -> None:
         "workers": args.workers, "seconds": args.seconds, "best": best,
         "ratio_rps_ours_to_bare": ours["rps"] / bare["rps"],
         "ratio_p99_ours_to_bare": ours["p99_ms"] / bare["p99_ms"],
+        "ratio_p99_ours_to_bare_by_round": p99_rounds,
         "ratio_rps_ours_to_sklearn": ours["rps"] / skl["rps"],
         "ratio_cpu_ours_to_bare": ours["cpu_us"] / bare["cpu_us"]})
 
