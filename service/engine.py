@@ -63,9 +63,15 @@ ROW_TILE = 128
 #: (:mod:`service.l1_distance`) keeps a chunk of training values in L2 across the tile's
 #: rows; 16 rows × 4,096 columns keeps the exp and the product with α in L2 as well.
 ROW_TILE_L1 = 16
-#: Below this many query rows everything runs in the caller's thread: the work (~50 µs per
-#: row at 20,000 training rows) is then too small to repay a thread hand-off.
+#: From this many query rows a batch is split by rows across the engine's threads.
 PARALLEL_MIN_ROWS = 64
+#: A smaller batch (no neighbour distances asked) with at least this many kernel values
+#: (rows × training rows) is split by training columns instead, one share per thread, the
+#: partial sums added at the end: from here the work (≥ 0.15 ms for rbf, ≥ 0.4 ms for the
+#: Matérn kernels, whose square root and exp dominate) repays the hand-off of a few tens of
+#: µs. Below it, and for every single-tile batch (one row at 20,000 training rows), the
+#: caller's thread does all.
+COLUMN_SPLIT_MIN = 1 << 16
 
 
 class Engine:
@@ -262,15 +268,18 @@ class Engine:
         return split
 
     def _rows(
-        self, q: np.ndarray, out: np.ndarray, near: np.ndarray | None = None, raw: bool = False
+        self, q: np.ndarray, out: np.ndarray, near: np.ndarray | None = None, raw: bool = False,
+        columns: tuple[int, int] | None = None,
     ) -> None:
         """Write k(q, X)·α for the rows ``q`` (m, d) into ``out`` (m, t), in this thread;
-        with ``near`` (m,) also the k-th neighbour distances."""
+        with ``near`` (m,) also the k-th neighbour distances. ``columns``: only the
+        training rows [j0, j1) contribute (a share of a column split; not with ``near``)."""
         m = q.shape[0]
         spec, n, dual = self.spec, self.n, self.dual
+        first, n = (0, n) if columns is None else columns  # n: the end of the range now
         l1 = self.aug is None
         r = min(m, self.row_tile)
-        cols = min(n, max(1, self.tile_elements // r))
+        cols = min(n - first, max(1, self.tile_elements // r))
         single = self.dtype == np.float32
         flat, flat2 = buffers(r * cols, self.dtype)
         qbuf, acc, gather = self._scratch(r)
@@ -287,7 +296,7 @@ class Engine:
                 if single:
                     qs = qs.astype(np.float32)
             oi = out[i : i + r]
-            for t, j in enumerate(range(0, n, cols)):
+            for t, j in enumerate(range(first, n, cols)):
                 w = min(cols, n - j)
                 tile = flat[: ri * w].reshape(ri, w)
                 scratch = flat2[: ri * w].reshape(ri, w)
@@ -300,12 +309,12 @@ class Engine:
                         lo, hi, at = split[t]
                         np.take(tile, at, axis=1, out=gather[:ri, lo:hi], mode="clip")
                     finish_tile(spec, tile, scratch)
-                if j == 0 and not single:
-                    np.matmul(tile, dual[:w], out=oi)
+                if j == first and not single:
+                    np.matmul(tile, dual[j : j + w], out=oi)
                 else:
                     a = acc[:ri]
                     np.matmul(tile, dual[j : j + w], out=a)
-                    if j == 0:
+                    if j == first:
                         oi[:] = a  # float32 tile sums, accumulated in float64
                     else:
                         oi += a
@@ -341,6 +350,21 @@ class Engine:
             self._kth(gather, near)
         return out
 
+    def _column_split(self, q: np.ndarray, out: np.ndarray, raw: bool) -> None:
+        """A small batch on every thread: thread i sums over its own share of the training
+        rows into its own (m, t) part; the parts are added in a fixed order, so the answer
+        does not depend on which thread finished first."""
+        step = -(-self.n // self.threads)
+        shares = [(j, min(j + step, self.n)) for j in range(0, self.n, step)]
+        parts = [out] + [np.empty_like(out) for _ in shares[1:]]
+        pool = thread_pool(self.threads)
+        futures = [pool.submit(self._rows, q, part, None, raw, share)
+                   for part, share in zip(parts[1:], shares[1:], strict=True)]
+        self._rows(q, out, None, raw, shares[0])  # the caller's thread takes the first share
+        for f, part in zip(futures, parts[1:], strict=True):
+            f.result()
+            out += part
+
     def predict(
         self, q: np.ndarray, near: np.ndarray | None = None, raw: bool = False
     ) -> np.ndarray:
@@ -371,7 +395,10 @@ class Engine:
             return out
         if m < PARALLEL_MIN_ROWS or self.threads == 1:
             with single_blas:
-                self._rows(q, out, near, raw)
+                if near is None and self.threads > 1 and m * self.n >= COLUMN_SPLIT_MIN:
+                    self._column_split(q, out, raw)
+                else:
+                    self._rows(q, out, near, raw)
             if raw:
                 out += self.offset
             return out

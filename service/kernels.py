@@ -297,8 +297,8 @@ def finish_tile(spec: KernelSpec, out: np.ndarray, scratch: np.ndarray | None = 
     """The kernel's elementwise step, in place: k from its affine part u (see
     :func:`augmented_columns`).
 
-    u is γ qᵀx + c₀ for the dot kernels and −c‖q − x‖² for distance kernels (Matérn clips it
-    at 0 from above against rounding; for rbf a u a hair above 0 maps to 1 + O(1e-15)).
+    u is γ qᵀx + c₀ for the dot kernels and −c‖q − x‖² for distance kernels (for rbf a u a
+    hair above 0 from rounding maps to 1 + O(1e-15), for Matérn to 1 − O(1e-16)).
     ``scratch`` (same shape) serves Matérn and the cubic polynomial.
     """
     name = spec.name
@@ -310,13 +310,14 @@ def finish_tile(spec: KernelSpec, out: np.ndarray, scratch: np.ndarray | None = 
         return np.tanh(out, out=out)
     if name == "rbf":
         return np.exp(out, out=out)
-    # Matérn: t = √(c r²) = √(−u); the polynomial factor goes to scratch, exp(−t) to out
-    np.minimum(out, 0.0, out=out)
+    # Matérn: t = √(c r²) = √|u| (|u| rather than −u clipped at 0: one pass for two; a u a
+    # hair above 0 from rounding then gives k = 1 − O(1e-16) instead of 1); the polynomial
+    # factor goes to scratch, exp(−t) to out
+    np.abs(out, out=out)
     if scratch is None:
         scratch = np.empty_like(out)
     if name == "matern52":
-        np.multiply(out, -1.0 / 3.0, out=scratch)  # t²/3 = −u/3: one pass, before the root
-    np.negative(out, out=out)
+        np.multiply(out, 1.0 / 3.0, out=scratch)  # t²/3: one pass, before the root
     np.sqrt(out, out=out)
     if name == "matern32":
         np.add(out, 1.0, out=scratch)  # 1 + t

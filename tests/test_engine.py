@@ -25,7 +25,8 @@ ROOT = Path(__file__).resolve().parents[1]
 D = 6
 N_TRAIN = 1_500
 #: 1 and 7 take the lean path, 1000 the parallel one; 2·ROW_TILE + 3 ends in a partial tile.
-BATCHES = (1, 7, 1_000, 2 * ROW_TILE + 3)
+#: 50 rows × 1,500 training rows pass COLUMN_SPLIT_MIN: with two threads, a column split
+BATCHES = (1, 7, 50, 1_000, 2 * ROW_TILE + 3)
 RTOL = 1e-10
 
 sklearn = pytest.importorskip("sklearn")
@@ -121,6 +122,7 @@ def test_many_small_tiles(model_data, name):
         eng = Engine(spec, x, dual, threads=threads, tile_elements=997, row_tile=9)
         _assert_close(eng.predict(q), want)
         _assert_close(eng.predict(q[:1]), want[:1])
+        _assert_close(eng.predict(q[:50]), want[:50])  # column shares of many small tiles
 
 
 def test_single_target_vector_dual(model_data):
@@ -286,3 +288,26 @@ def test_scoring_a_large_csv_streams(tmp_path):
     first = (tmp_path / "out.csv").read_text().splitlines()[1].split(",")
     want = model.predict(values[:1])[0]
     assert float(first[3]) == pytest.approx(want, rel=1e-12)
+
+
+def test_a_small_batch_is_split_by_columns_across_threads(model_data, monkeypatch):
+    """50 rows: one share of the training rows per thread, together exactly [0, n); the
+    same batch on one thread is not split."""
+    from service.engine import COLUMN_SPLIT_MIN
+
+    x, dual = model_data
+    assert 50 * N_TRAIN >= COLUMN_SPLIT_MIN > 7 * N_TRAIN  # what BATCHES relies on
+    seen = []
+    rows = Engine._rows
+
+    def spy(self, q, out, near=None, raw=False, columns=None):
+        seen.append(columns)
+        return rows(self, q, out, near, raw, columns)
+
+    monkeypatch.setattr(Engine, "_rows", spy)
+    q = _rng(9).standard_normal((50, D))
+    Engine(_spec("matern32"), x, dual, threads=2).predict(q)
+    assert sorted(seen) == [(0, 750), (750, N_TRAIN)]
+    seen.clear()
+    Engine(_spec("matern32"), x, dual, threads=1).predict(q)
+    assert seen == [None]

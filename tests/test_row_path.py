@@ -23,9 +23,9 @@ sklearn = pytest.importorskip("sklearn")
 
 D = 5
 N_TRAIN = 1_500
-#: 1 and 7 take the single-tile and the lean path, 259 ends in a partial row tile, 1,000 the
-#: parallel path
-BATCHES = (1, 7, 259, 1_000)
+#: 1 and 7 take the single-tile and the lean path, 50 a column split across threads (when
+#: no neighbour distances are asked), 259 ends in a partial row tile, 1,000 the parallel path
+BATCHES = (1, 7, 50, 259, 1_000)
 FEATURES = [f"f{j}" for j in range(D)]
 TARGETS = ["y1", "y2", "y3"]
 MEAN = np.array([20.0, -3.0, 0.5, 1e3, 0.0])
