@@ -67,10 +67,9 @@ ROW_TILE_L1 = 16
 PARALLEL_MIN_ROWS = 64
 #: A smaller batch (no neighbour distances asked) with at least this many kernel values
 #: (rows × training rows) is split by training columns instead, one share per thread, the
-#: partial sums added at the end: from here the work (≥ 0.15 ms for rbf, ≥ 0.4 ms for the
-#: Matérn kernels, whose square root and exp dominate) repays the hand-off of a few tens of
-#: µs. Below it, and for every single-tile batch (one row at 20,000 training rows), the
-#: caller's thread does all.
+#: partial sums added at the end: from here the work repays the hand-off (DEVELOPERS.md,
+#: "Measured limits"). Below it, and for every single-tile batch (one row at 20,000 training
+#: rows), the caller's thread does all.
 COLUMN_SPLIT_MIN = 1 << 16
 
 
