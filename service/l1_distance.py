@@ -79,6 +79,17 @@ def _loop() -> Callable | None:
     return _kernel
 
 
+def _give_up(exc: Exception) -> None:
+    """Serve the numpy form from now on: compiling failed (a platform that forbids
+    executable memory, say), and retrying would cost a compile attempt per call."""
+    global _kernel
+    with _lock:
+        if _kernel is not None:
+            log.warning("compiling the L1 loop failed (%s: %s); the laplacian kernel uses the "
+                        "slower numpy form", type(exc).__name__, exc)
+        _kernel = None
+
+
 def compiled() -> bool:
     """True when the numba loop serves (False: the numpy form)."""
     return _loop() is not None
@@ -86,10 +97,8 @@ def compiled() -> bool:
 
 def prepare(dtype: np.dtype) -> None:
     """Compile the loop for ``dtype`` now, so that no request pays the ~0.5 s compile."""
-    loop = _loop()
-    if loop is not None:
-        q = np.zeros((1, 1), dtype=dtype)
-        loop(q, q, 0, 1.0, np.empty((1, 1), dtype=dtype))
+    q = np.zeros((1, 1), dtype=dtype)
+    scaled_l1(q, q, 0, 1.0, np.empty((1, 1), dtype=dtype))
 
 
 def _numpy_l1(q: np.ndarray, xt: np.ndarray, j0: int, scale: float, out: np.ndarray) -> None:
@@ -122,7 +131,10 @@ def scaled_l1(q: np.ndarray, xt: np.ndarray, j0: int, scale: float, out: np.ndar
     ``out``.
     """
     loop = _loop()
-    if loop is None:
-        _numpy_l1(q, xt, j0, scale, out)
-        return out
-    return loop(q, xt, j0, scale, out)
+    if loop is not None:
+        try:
+            return loop(q, xt, j0, scale, out)
+        except Exception as exc:  # the first call of a dtype compiles; see _give_up
+            _give_up(exc)
+    _numpy_l1(q, xt, j0, scale, out)
+    return out

@@ -62,3 +62,23 @@ def test_laplacian_engine_without_numba_matches_scikit_learn(without_numba):
     engine = Engine(KernelSpec("laplacian", gamma=0.3), x, ref.dual_coef_, threads=1)
     q = rng.normal(size=(70, 6))
     np.testing.assert_allclose(engine.predict(q)[:, 0], ref.predict(q), rtol=1e-10, atol=1e-12)
+
+
+def test_a_failed_compile_falls_back_to_numpy_once(monkeypatch, caplog):
+    """Where the JIT cannot run (a platform forbidding executable memory, say), the first
+    call's compile error must not reach the caller: the numpy form serves from then on."""
+    calls = []
+
+    def broken(*args):
+        calls.append(1)
+        raise RuntimeError("cannot allocate executable memory")
+
+    monkeypatch.setattr(l1_distance, "_tried", True)
+    monkeypatch.setattr(l1_distance, "_kernel", broken)
+    rng = np.random.default_rng(2)
+    q, x = rng.normal(size=(3, 4)), rng.normal(size=(50, 4))
+    for _ in range(3):
+        out = l1_distance.scaled_l1(q, np.ascontiguousarray(x.T), 0, -1.0, np.empty((3, 50)))
+        np.testing.assert_allclose(out, reference(q, x, -1.0), rtol=1e-13)
+    assert calls == [1] and not l1_distance.compiled()
+    assert "numpy form" in caplog.text
