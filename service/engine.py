@@ -65,12 +65,16 @@ ROW_TILE = 128
 ROW_TILE_L1 = 16
 #: From this many query rows a batch is split by rows across the engine's threads.
 PARALLEL_MIN_ROWS = 64
-#: A smaller batch (no neighbour distances asked) with at least this many kernel values
-#: (rows × training rows) is split by training columns instead, one share per thread, the
-#: partial sums added at the end: from here the work repays the hand-off (DEVELOPERS.md,
-#: "Measured limits"). Below it, and for every single-tile batch (one row at 20,000 training
-#: rows), the caller's thread does all.
-COLUMN_SPLIT_MIN = 1 << 16
+#: A smaller batch (no neighbour distances asked) whose work is at least this many rbf
+#: kernel values' worth (rows × training rows × :data:`SPLIT_WEIGHT`) is split by training
+#: columns instead, one share per thread, the partial sums added at the end: from here the
+#: work repays the hand-off and the two threads' turns at the GIL between numpy calls
+#: (DEVELOPERS.md, "Measured limits"). Below it, and for every single-tile batch, the
+#: caller's thread does all.
+COLUMN_SPLIT_MIN = 1 << 18
+#: Cost of one kernel value relative to rbf's (at d = 16): the Matérn kernels' square root
+#: and exp, the laplacian's d absolute differences.
+SPLIT_WEIGHT = {"matern32": 2.5, "matern52": 2.5, "laplacian": 2.0}
 
 
 class Engine:
@@ -180,6 +184,7 @@ class Engine:
         self._fast_ok = self.aug is not None and self.dtype == np.float64
         self._dual_ext = np.vstack([self.dual, self.offset[None, :]]) if self._fast_ok else None
         self._fast_rows = self.tile_elements // self.n if self._fast_ok else 0
+        self._split_from = COLUMN_SPLIT_MIN / SPLIT_WEIGHT.get(spec.name, 1.0)
 
     @property
     def gives_neighbours(self) -> bool:
@@ -394,7 +399,7 @@ class Engine:
             return out
         if m < PARALLEL_MIN_ROWS or self.threads == 1:
             with single_blas:
-                if near is None and self.threads > 1 and m * self.n >= COLUMN_SPLIT_MIN:
+                if near is None and self.threads > 1 and m * self.n >= self._split_from:
                     self._column_split(q, out, raw)
                 else:
                     self._rows(q, out, near, raw)

@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from service import engine
 from service import engine_threads as engine_mod
 from service.engine import ROW_TILE, Engine
 from service.kernels import KERNEL_NAMES, default_spec, kernel_matrix
@@ -25,7 +26,7 @@ ROOT = Path(__file__).resolve().parents[1]
 D = 6
 N_TRAIN = 1_500
 #: 1 and 7 take the lean path, 1000 the parallel one; 2·ROW_TILE + 3 ends in a partial tile.
-#: 50 rows × 1,500 training rows pass COLUMN_SPLIT_MIN: with two threads, a column split
+#: 50 rows take the column split on two threads (the threshold lowered by ``split_small``)
 BATCHES = (1, 7, 50, 1_000, 2 * ROW_TILE + 3)
 RTOL = 1e-10
 
@@ -98,9 +99,16 @@ def test_kernel_matrix_matches_reference(name):
         assert np.all(np.diag(square) == 1.0)
 
 
+@pytest.fixture
+def split_small(monkeypatch):
+    """Column splits from 50 rows of these 1,500 training rows on, for every kernel."""
+    monkeypatch.setattr(engine, "COLUMN_SPLIT_MIN", 50 * N_TRAIN)
+    monkeypatch.setattr(engine, "SPLIT_WEIGHT", {})
+
+
 @pytest.mark.parametrize("name", KERNEL_NAMES)
 @pytest.mark.parametrize("m", BATCHES)
-def test_engine_matches_reference(model_data, name, m):
+def test_engine_matches_reference(model_data, name, m, split_small):
     x, dual = model_data
     spec = _spec(name)
     q = _rng(m).standard_normal((m, D)) * 1.2
@@ -112,7 +120,7 @@ def test_engine_matches_reference(model_data, name, m):
 
 
 @pytest.mark.parametrize("name", ["rbf", "laplacian", "polynomial", "matern52"])
-def test_many_small_tiles(model_data, name):
+def test_many_small_tiles(model_data, name, split_small):
     """Tiles far smaller than the data: column tiles with a remainder, partial row tiles."""
     x, dual = model_data
     spec = _spec(name)
@@ -290,13 +298,16 @@ def test_scoring_a_large_csv_streams(tmp_path):
     assert float(first[3]) == pytest.approx(want, rel=1e-12)
 
 
-def test_a_small_batch_is_split_by_columns_across_threads(model_data, monkeypatch):
-    """50 rows: one share of the training rows per thread, together exactly [0, n); the
-    same batch on one thread is not split."""
-    from service.engine import COLUMN_SPLIT_MIN
+def test_a_small_batch_is_split_by_columns_across_threads(monkeypatch):
+    """Enough work (weighted by the kernel's cost per value) is shared out by training rows,
+    one share per thread, together exactly [0, n); less work, or one thread, is not."""
+    from service.engine import COLUMN_SPLIT_MIN, SPLIT_WEIGHT
 
-    x, dual = model_data
-    assert 50 * N_TRAIN >= COLUMN_SPLIT_MIN > 7 * N_TRAIN  # what BATCHES relies on
+    n = 12_000
+    rows_matern = int(np.ceil(COLUMN_SPLIT_MIN / SPLIT_WEIGHT["matern32"] / n))  # 9
+    assert rows_matern * n < COLUMN_SPLIT_MIN  # the weight is what tips it
+    rng = _rng(8)
+    x, dual = rng.standard_normal((n, D)), rng.standard_normal((n, 1))
     seen = []
     rows = Engine._rows
 
@@ -305,9 +316,10 @@ def test_a_small_batch_is_split_by_columns_across_threads(model_data, monkeypatc
         return rows(self, q, out, near, raw, columns)
 
     monkeypatch.setattr(Engine, "_rows", spy)
-    q = _rng(9).standard_normal((50, D))
+    q = rng.standard_normal((rows_matern, D))
     Engine(_spec("matern32"), x, dual, threads=2).predict(q)
-    assert sorted(seen) == [(0, 750), (750, N_TRAIN)]
-    seen.clear()
-    Engine(_spec("matern32"), x, dual, threads=1).predict(q)
-    assert seen == [None]
+    assert sorted(seen) == [(0, n // 2), (n // 2, n)]
+    for name, threads in (("rbf", 2), ("matern32", 1)):
+        seen.clear()
+        Engine(_spec(name), x, dual, threads=threads).predict(q)
+        assert seen == [None], name

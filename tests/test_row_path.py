@@ -23,8 +23,8 @@ sklearn = pytest.importorskip("sklearn")
 
 D = 5
 N_TRAIN = 1_500
-#: 1 and 7 take the single-tile and the lean path, 50 a column split across threads (when
-#: no neighbour distances are asked), 259 ends in a partial row tile, 1,000 the parallel path
+#: 1 and 7 take the single-tile and the lean path, 50 the lean path over several laplacian
+#: row tiles, 259 ends in a partial row tile, 1,000 the parallel path
 BATCHES = (1, 7, 50, 259, 1_000)
 FEATURES = [f"f{j}" for j in range(D)]
 TARGETS = ["y1", "y2", "y3"]
