@@ -140,7 +140,7 @@ class _SingleThreadedBlas:
         knobs = self._knobs
         if knobs is None:
             return False
-        for get, _ in knobs:  # a loop: all() over a generator costs twice as much here
+        for get, _ in knobs:  # noqa: SIM110 (all() over a generator costs twice as much here)
             if get() != 1:
                 return False
         return True
