@@ -149,11 +149,11 @@ class Engine:
         default_rows = ROW_TILE_L1 if spec.uses == "l1" else ROW_TILE
         self.row_tile = max(1, min(row_tile or default_rows, self.tile_elements))
         if spec.uses == "l1":
-            # (d, n): the per-feature passes want each feature's values contiguous. A
-            # column-major X gives that for free; a row-major one gets a private copy.
+            # (d, n): the compiled L1 loop reads each feature's values as one contiguous
+            # run. A column-major X gives that for free; a row-major one gets a private copy.
             self.xt = self.x.T
-            if not self.xt.flags.c_contiguous or self.xt.dtype != self.dtype:
-                self.xt = np.ascontiguousarray(self.xt, dtype=self.dtype)
+            if not self.xt.flags.c_contiguous:
+                self.xt = np.ascontiguousarray(self.xt)
             prepare_l1(self.dtype)
             self.aug = None
             self.width = self.d
