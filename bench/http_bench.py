@@ -87,11 +87,6 @@ def workers_cpu(master_pid: int) -> tuple[int, float]:
     return count, total
 
 
-def workers_cpu_seconds(master_pid: int) -> float:
-    """User + system CPU seconds of the gunicorn master's worker processes."""
-    return workers_cpu(master_pid)[1]
-
-
 def wait_booted(master_pid: int, workers: int, timeout: float = 60.0) -> None:
     """Return once ``workers`` workers exist and none used CPU for 0.3 s: all have imported
     the app and loaded the model (/readyz answers as soon as the first one has)."""
@@ -184,14 +179,14 @@ def main() -> None:
                 else:
                     run_load("127.0.0.1", g.port, "/models/bench/predict", body, 1,
                              args.clients)
-                cpu0 = workers_cpu_seconds(g.proc.pid)
+                cpu0 = workers_cpu(g.proc.pid)[1]
                 if use_wrk:
                     res = wrk_load(g.base, body, args.seconds, args.clients)
                 else:
                     res = run_load("127.0.0.1", g.port, "/models/bench/predict", body,
                                    args.seconds, args.clients)
                 # server CPU per request: what the handler costs, whatever the client's share
-                res["cpu_us"] = ((workers_cpu_seconds(g.proc.pid) - cpu0)
+                res["cpu_us"] = ((workers_cpu(g.proc.pid)[1] - cpu0)
                                  / max(res["rps"] * args.seconds, 1) * 1e6)
             print(f"  round {rnd + 1} {label:18s} {res['rps']:8.0f} req/s  p50 "
                   f"{res['p50_ms']:6.2f} ms  p99 {res['p99_ms']:6.2f} ms  worker CPU "

@@ -28,7 +28,7 @@ from time import perf_counter
 import orjson
 from flask import Flask, Request
 
-from service.store import StoreError, check_name
+from service.store.names import valid_name
 
 log = logging.getLogger("kridge.access")
 
@@ -140,11 +140,8 @@ def _record(environ: dict, rid: str, status: int | None, started: float) -> dict
         model, version = labels[0], int(labels[1])
     else:
         model, version = (getattr(req, "view_args", None) or {}).get("name"), None
-        if model is not None:
-            try:
-                check_name(model)
-            except StoreError:
-                model = None
+        if not valid_name(model):
+            model = None
     rule = getattr(req, "url_rule", None)
     route = rule.rule if rule is not None else environ.get(ROUTE)
     return {

@@ -145,6 +145,11 @@ class LiveModels:
                 raise NotFound(f"model {name!r} has nothing to serve: {why}")
         return slot.model
 
+    def loaded(self, name: str) -> Model | None:
+        """The live model when it is loaded already, else None; never loads or waits."""
+        slot = self.slots.get(name)
+        return slot.model if slot is not None else None
+
     def _cached_pinned(self, name: str, version: int) -> Model | None:
         with self._lock:
             model = self.pinned.get((name, version))

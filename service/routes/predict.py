@@ -27,7 +27,7 @@ from service.errors import ApiError
 from service.model import Model
 from service.routes import model_name, not_found
 from service.store import NotFound, StoreError
-from service.store.names import NAME_RE
+from service.store.names import valid_name
 
 bp = Blueprint("predict", __name__)
 RULE = "/models/<name>/predict"
@@ -124,10 +124,9 @@ class PredictShortcut:
         """The answer, or None to leave the request to Flask (body put back)."""
         t_start = perf_counter()
         # a name the store refuses, a model not loaded yet: Flask's 404s and loading
-        if not NAME_RE.fullmatch(name) or name in (".", "..") or not sends_json(environ):
+        if not valid_name(name) or not sends_json(environ):
             return None
-        slot = self.state.models.slots.get(name)
-        model = slot.model if slot is not None else None
+        model = self.state.models.loaded(name)
         settings = self.state.settings
         length = environ.get("CONTENT_LENGTH", "")
         if (model is None or not length.isdigit() or int(length) > settings.max_body_bytes

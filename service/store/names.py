@@ -44,9 +44,14 @@ def store_root(path: str | os.PathLike | None = None) -> Path:
     return Path(path or default_store())
 
 
+def valid_name(name: object) -> bool:
+    """True for a model name the store accepts (see :func:`check_name`)."""
+    return isinstance(name, str) and bool(NAME_RE.fullmatch(name)) and name not in (".", "..")
+
+
 def check_name(name: str) -> str:
     """Refuse model names that could leave the store or surprise a shell."""
-    if not isinstance(name, str) or not NAME_RE.fullmatch(name) or name in (".", ".."):
+    if not valid_name(name):
         raise StoreError(
             f"invalid model name {name!r}: use 1-64 characters of a-z, 0-9, '.', '_', '-', "
             "starting with a letter or digit"
