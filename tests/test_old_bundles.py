@@ -9,8 +9,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from cli_helpers import run_cli
+
 from service import load_model
 from service.model import verify
 from service.store import Store

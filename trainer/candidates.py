@@ -14,8 +14,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.kernels import KernelSpec, kernel_matrix
-from trainer.loo import eigen_kernel, feasible_ridges, kfold_residuals, loo_residuals
+from service.kernels import KernelSpec, kernel_block, kernel_matrix
+from trainer.loo import (
+    eigen_kernel,
+    feasible_ridges,
+    fold_residuals,
+    kfold_residuals,
+    loo_residuals,
+    stack_folds,
+)
 from trainer.validation import Problem
 
 
@@ -57,6 +64,17 @@ def _score(res: np.ndarray, inv_var: np.ndarray) -> tuple[np.ndarray, np.ndarray
     return score, np.sqrt(mse)
 
 
+def _own_fold_residuals(problem: Problem, spec: KernelSpec, ridges: np.ndarray,
+                        psd: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Residuals of folds that each standardize and centre on their own training rows."""
+    parts = []
+    for i in range(len(problem.folds)):
+        x_t, x_v, y_t, y_v = problem.fold_rows(i)
+        parts.append(fold_residuals(kernel_matrix(spec, x_t), kernel_block(spec, x_v, x_t),
+                                    y_t, y_v, ridges, psd))
+    return stack_folds(parts)
+
+
 def evaluate(problem: Problem, spec: KernelSpec, ridges: np.ndarray | None = None) -> Curve:
     """Cross-validated error of one kernel setting along a ridge grid (LOO or k-fold)."""
     t0 = time.perf_counter()
@@ -73,6 +91,8 @@ def evaluate(problem: Problem, spec: KernelSpec, ridges: np.ndarray | None = Non
             if psd:
                 np.maximum(w, 0.0, out=w)
             res = loo_residuals(w, q, problem.y_c, ridges)
+        elif problem.raw is not None:
+            res, ok = _own_fold_residuals(problem, spec, ridges, psd)
         else:
             res, ok = kfold_residuals(k, problem.y_c, problem.folds, ridges, psd)
     except (FloatingPointError, np.linalg.LinAlgError) as exc:

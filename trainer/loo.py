@@ -93,27 +93,36 @@ def feasible_ridges(w_raw: np.ndarray, ridges: np.ndarray) -> np.ndarray:
     return (ridges + lo) > RCOND_FLOOR * (ridges + max(hi, 0.0))
 
 
+def fold_residuals(k_tt: np.ndarray, k_vt: np.ndarray, y_t: np.ndarray, y_v: np.ndarray,
+                   ridges: np.ndarray, psd: bool) -> tuple[np.ndarray, np.ndarray]:
+    """Validation residuals of one fold for all ridges, from one decomposition.
+
+    For training part T and validation part V: ŷ_V(λ) = K_VT Q diag(1/(w + λ)) Qᵀ y_T with
+    K_TT = Q diag(w) Qᵀ (``k_tt`` is destroyed). Returns (R, |V|, t) residuals y_V − ŷ_V and
+    the feasible-ridge mask.
+    """
+    n_t, t = y_t.shape
+    w, q = eigen_kernel(k_tt, psd=False)
+    ok = feasible_ridges(w, ridges)
+    if psd:
+        np.maximum(w, 0.0, out=w)
+    a = k_vt @ q  # (v, m)
+    qy = q.T @ y_t  # (m, t)
+    inv = 1.0 / (w[:, None] + ridges[None, :])  # (m, R)
+    pred = a @ (inv[:, :, None] * qy[:, None, :]).reshape(n_t, -1)
+    return y_v[None] - np.moveaxis(pred.reshape(len(y_v), ridges.size, t), 1, 0), ok
+
+
 def kfold_residuals(k: np.ndarray, y_c: np.ndarray, folds: list[tuple[np.ndarray, np.ndarray]],
                     ridges: np.ndarray, psd: bool) -> tuple[np.ndarray, np.ndarray]:
-    """Validation residuals of every fold for all ridges, one decomposition per fold.
+    """Validation residuals of every fold for all ridges (:func:`fold_residuals` on slices
+    of one kernel matrix). Returns (R, Σ|V|, t) residuals in fold order and the mask."""
+    return stack_folds([fold_residuals(np.ascontiguousarray(k[np.ix_(tr, tr)]),
+                                       k[np.ix_(val, tr)], y_c[tr], y_c[val], ridges, psd)
+                        for tr, val in folds])
 
-    For training part T and validation part V: ŷ_V(λ) = K_VT Q diag(1/(w + λ)) Qᵀ y_T.
-    Returns (R, Σ|V|, t) residuals in fold order and the feasible-ridge mask.
-    """
-    t = y_c.shape[1]
-    out = np.empty((ridges.size, sum(len(v) for _, v in folds), t))
-    ok = np.ones(ridges.size, dtype=bool)
-    at = 0
-    for tr, val in folds:
-        w, q = eigen_kernel(np.ascontiguousarray(k[np.ix_(tr, tr)]), psd=False)
-        ok &= feasible_ridges(w, ridges)
-        if psd:
-            np.maximum(w, 0.0, out=w)
-        a = k[np.ix_(val, tr)] @ q  # (v, m)
-        qy = q.T @ y_c[tr]  # (m, t)
-        inv = 1.0 / (w[:, None] + ridges[None, :])  # (m, R)
-        pred = a @ (inv[:, :, None] * qy[:, None, :]).reshape(len(tr), -1)
-        out[:, at:at + len(val), :] = (y_c[val][None]
-                                       - np.moveaxis(pred.reshape(len(val), ridges.size, t), 1, 0))
-        at += len(val)
-    return out, ok
+
+def stack_folds(parts: list[tuple[np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray]:
+    """Folds' (residuals, mask) pairs → residuals in fold order, ridges feasible in all."""
+    return (np.concatenate([r for r, _ in parts], axis=1),
+            np.logical_and.reduce([ok for _, ok in parts]))

@@ -8,7 +8,9 @@ Three schemes, chosen by the data:
   decompositions);
 * rows in time order (``--time``): forward-chaining folds (:func:`time_series_folds`), since
   leave-one-out is optimistic on an autocorrelated series (a row's neighbours in time are
-  near-copies of it).
+  near-copies of it). Each such fold standardizes its features and centres its targets on
+  its own training rows (:meth:`Problem.fold_scaling`), so nothing of the validation block
+  or the rows after it reaches the fit that predicts it.
 """
 
 from __future__ import annotations
@@ -50,6 +52,8 @@ class Problem:
     inv_var: np.ndarray  # (t,) 1 / Var(y_t)
     ridge_fixed: float | None
     folds: list[tuple[np.ndarray, np.ndarray]] | None = None  # k-fold: (train, validation)
+    #: time folds: the raw rows, so that each fold standardizes on its own training rows
+    raw: tuple[np.ndarray, np.ndarray] | None = None
     evaluated: int = 0
     seconds: float = 0.0
     extra: dict = field(default_factory=dict)
@@ -60,6 +64,29 @@ class Problem:
         scale = k_diag_mean if k_diag_mean > 0 and math.isfinite(k_diag_mean) else 1.0
         lo, hi = RIDGE_RELATIVE
         return scale * np.geomspace(lo, hi, RIDGE_GRID_SIZE)
+
+    def fold_scaling(self, i: int) -> FoldScaling:
+        """Fold ``i``'s standardization and target means, from its training rows only."""
+        x, y = self.raw
+        train = self.folds[i][0]
+        return FoldScaling(Standardizer.fit(x[train]), y[train].mean(axis=0))
+
+    def fold_rows(self, i: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(x_train, x_valid, y_train, y_valid) of time fold ``i``, standardized and centred
+        by :meth:`fold_scaling`."""
+        x, y = self.raw
+        train, valid = self.folds[i]
+        own = self.fold_scaling(i)
+        return (own.scaler(x[train]), own.scaler(x[valid]), y[train] - own.y_mean,
+                y[valid] - own.y_mean)
+
+
+@dataclass(frozen=True)
+class FoldScaling:
+    """What a fold learns from its training rows before any kernel: scaler and target means."""
+
+    scaler: Standardizer
+    y_mean: np.ndarray
 
 
 def time_series_folds(n: int, n_splits: int = TIME_FOLDS,
@@ -96,11 +123,13 @@ def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float 
     var = y_c.var(axis=0)
     var[var <= 0] = 1.0
     info: dict = {"fallback": False}
-    folds = None
+    folds = raw = None
     if time_ordered:
+        raw = (x_tr, y_tr)
         if n > EXACT_MAX_ROWS:  # every k-th row keeps the time order and the whole span
             keep = np.unique(np.linspace(0, n - 1, FALLBACK_ROWS).round().astype(int))
             x_s, y_c = x_s[keep], y_c[keep] - y_c[keep].mean(axis=0)
+            raw = (x_tr[keep], y_tr[keep])
             info["fallback"] = {
                 "reason": f"{n} training rows > {EXACT_MAX_ROWS}: folds on every "
                           f"{n / keep.size:.1f}-th row in time order",
@@ -110,7 +139,8 @@ def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float 
         info["time_folds"] = {
             "folds": len(folds), "validation_rows": int(len(folds[0][1])),
             "gap_rows": int(folds[0][1][0] - folds[0][0][-1] - 1),
-            "how": "forward-chaining contiguous blocks in time order (TimeSeriesSplit with gap)",
+            "how": "forward-chaining contiguous blocks in time order (TimeSeriesSplit with "
+                   "gap); each fold standardized and centred on its own training rows",
         }
     elif n > EXACT_MAX_ROWS:
         rng = np.random.default_rng(seed)
@@ -126,7 +156,7 @@ def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float 
             "subsample_rows": FALLBACK_ROWS,
             "folds": FALLBACK_FOLDS,
         }
-    return Problem(x_s, y_c, 1.0 / var, ridge_fixed, folds), info
+    return Problem(x_s, y_c, 1.0 / var, ridge_fixed, folds, raw), info
 
 
 def scheme_text(info: dict) -> str:

@@ -1,0 +1,51 @@
+"""Every error kridge reports is what its name says: the time-ordered folds fit on their own
+past only, the intervals name the residuals that calibrated them, and the tuning record
+counts what was computed."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from service.kernels import KernelSpec
+from trainer import tuning, validation
+from trainer.fit import fit_exact
+
+
+def _series(n: int = 120, seed: int = 5) -> tuple[np.ndarray, np.ndarray]:
+    """A drifting autocorrelated series: the later rows sit elsewhere than the early ones."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n, dtype=float)
+    x = np.column_stack([np.sin(t / 9) + t / 40, np.cumsum(rng.normal(0, 0.3, n)),
+                         rng.normal(0, 1, n)])
+    y = np.column_stack([np.cos(x[:, 0]) + 0.5 * x[:, 1] + 0.1 * rng.normal(0, 1, n)])
+    return x, y
+
+
+def test_time_fold_error_is_that_of_models_fitted_on_each_folds_past():
+    # reference: each fold refitted from scratch by trainer.fit.fit_exact (its own
+    # standardization and intercept, Cholesky) on the fold's training rows only
+    x, y = _series()
+    spec, ridge = KernelSpec("rbf", gamma=0.4), 0.05
+    got = tuning.tune(x, y, kernel="rbf", given=tuning.Given(gamma=0.4, ridge=ridge),
+                      quiet=True, log=lambda *_: None, time_ordered=True)
+    residuals = [y[val] - fit_exact(x[tr], y[tr], spec, ridge).predict(x[val])
+                 for tr, val in validation.time_series_folds(len(x))]
+    want = np.sqrt(np.mean(np.concatenate(residuals) ** 2, axis=0))
+    np.testing.assert_allclose(got.account["chosen"]["cv_rmse"], want, rtol=1e-7)
+
+
+def test_a_time_folds_scaler_ignores_its_validation_block():
+    x, y = _series()
+    problem, _ = validation.standardized_problem(x, y, None, 0, time_ordered=True)
+    first_train, first_val = problem.folds[0]
+    x2, y2 = x.copy(), y.copy()
+    x2[first_val] *= 50.0  # only the first fold's validation block (and so later folds) move
+    y2[first_val] += 1e3
+    moved, _ = validation.standardized_problem(x2, y2, None, 0, time_ordered=True)
+    for p in (problem, moved):
+        assert np.array_equal(p.folds[0][0], first_train)
+    a, b = problem.fold_scaling(0), moved.fold_scaling(0)
+    np.testing.assert_array_equal(a.scaler.mean, b.scaler.mean)
+    np.testing.assert_array_equal(a.scaler.scale, b.scaler.scale)
+    np.testing.assert_array_equal(a.y_mean, b.y_mean)
+    np.testing.assert_allclose(a.scaler.mean, x[first_train].mean(axis=0))
