@@ -49,3 +49,30 @@ def test_a_time_folds_scaler_ignores_its_validation_block():
     np.testing.assert_array_equal(a.scaler.scale, b.scaler.scale)
     np.testing.assert_array_equal(a.y_mean, b.y_mean)
     np.testing.assert_allclose(a.scaler.mean, x[first_train].mean(axis=0))
+
+
+def _train(csv, store, name: str, **extra) -> dict:
+    from service.store import Store
+    from trainer.train import TrainOptions, train
+
+    opts = TrainOptions(data=str(csv), targets=["hardness_s"], name=name, store=str(store),
+                        kernel="rbf", gamma=0.3, ridge=0.01, quiet=True, report=False, **extra)
+    summary = train(opts, log=lambda *_: None)
+    return Store(str(store)).read_manifest(name, summary["version"])
+
+
+def test_interval_name_is_the_method_that_calibrated_the_served_model(small_csv, store_dir,
+                                                                      monkeypatch):
+    # the jackknife limit lowered so that both sides of it, and the band where only the
+    # training part is under it (60 rows: 48 training rows), run in a test
+    from trainer import calibration
+
+    monkeypatch.setattr(calibration, "LOO_MAX_ROWS", 50)
+    band = _train(small_csv, store_dir, "band")["intervals"]
+    assert band["name"] == "split-conformal"
+    assert "jackknife" not in (band["holdout_coverage_method"] or "")
+    assert "split-conformal" in band["holdout_coverage_method"]
+    monkeypatch.setattr(calibration, "LOO_MAX_ROWS", 60)
+    small = _train(small_csv, store_dir, "small")["intervals"]
+    assert small["name"] == "jackknife"
+    assert small["holdout_coverage_method"].startswith("jackknife")

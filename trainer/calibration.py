@@ -50,6 +50,15 @@ COVERAGE_LEVELS = (0.8, 0.9, 0.95)
 LOO_MAX_ROWS = 8000
 
 
+def uses_jackknife(rows: int, timed: bool) -> bool:
+    """Whether a model of ``rows`` rows is calibrated by the jackknife (else split conformal).
+
+    Decided once from the served model's rows, so that the training-part model, whose
+    intervals are checked on the holdout, uses the same method as the served one.
+    """
+    return rows <= LOO_MAX_ROWS and not timed
+
+
 def conformal_half_width(abs_residuals: np.ndarray, coverage: float) -> np.ndarray:
     """Half-width per target from (c, t) absolute residuals in any order: the
     ⌈(c + 1)·coverage⌉-th smallest (:func:`service.intervals.half_width`)."""
@@ -89,13 +98,14 @@ def check_on_holdout(part: Fit, actual: np.ndarray, predicted: np.ndarray,
             "jackknife half-widths from the training-part model's exact leave-one-out "
             "residuals, applied to its predictions on the holdout rows (which neither the fit "
             "nor the calibration saw)")
-    if timed and actual.shape[0] >= 4:
+    if actual.shape[0] >= 4:
         half = actual.shape[0] // 2
         abs_res = np.abs(actual - predicted)
+        order = "earlier half of the holdout" if timed else "first half of the holdout rows"
         return HoldoutCheck(
             interval_coverage(abs_res[:half], actual[half:], predicted[half:]),
-            "split-conformal half-widths from the earlier half of the holdout (residuals of "
-            "the training-part model), applied to its predictions on the later half")
+            f"split-conformal half-widths from the {order} (residuals of the training-part "
+            "model), applied to its predictions on the other half")
     return HoldoutCheck(None, None)
 
 

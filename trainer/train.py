@@ -191,9 +191,9 @@ def train(opts: TrainOptions, log=print) -> dict:
     holdout_abs = None
     holdout_points = None
     held = calibration.HoldoutCheck(None, None)
+    jackknife = calibration.uses_jackknife(n, timed)
     if ho.size:
-        part = fit_exact(x[tr], y[tr], spec, ridge,
-                         want_loo=tr.size <= calibration.LOO_MAX_ROWS and not timed)
+        part = fit_exact(x[tr], y[tr], spec, ridge, want_loo=jackknife)
         pred = part.predict(x[ho])
         metrics["holdout"] = _per_target(opts.targets, y[ho], pred)
         holdout_abs = np.abs(y[ho] - pred)
@@ -203,8 +203,7 @@ def train(opts: TrainOptions, log=print) -> dict:
         held = calibration.check_on_holdout(part, y[ho], pred, timed)
 
     t_fit = time.perf_counter()
-    final: Fit = fit_exact(x, y, spec, ridge,
-                           want_loo=n <= calibration.LOO_MAX_ROWS and not timed)
+    final: Fit = fit_exact(x, y, spec, ridge, want_loo=jackknife)
     fit_seconds = time.perf_counter() - t_fit
     if final.loo_residuals is not None:
         metrics["loo"] = _per_target(opts.targets, y, y - final.loo_residuals)
