@@ -1,8 +1,9 @@
 """What a Nyström fit reports: held-out scores, split-conformal residuals and the manifest.
 
 The holdout scores the final model honestly and the calibration part gives split-conformal
-intervals with their finite-sample guarantee (Lei, G'Sell, Rinaldo, Tibshirani & Wasserman,
-JASA 2018), because the final model never saw either part.
+intervals (Lei, G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018), because the final model
+never saw either part; their finite-sample guarantee holds for exchangeable rows, so not for
+rows split in time order.
 """
 
 from __future__ import annotations
@@ -95,15 +96,22 @@ def training_section(*, rows: int, reason: str, landmarks: dict, parts: dict, sr
     }
 
 
-def intervals_section(sc: Scores) -> dict | None:
-    """The manifest's ``intervals`` entry (None without a calibration part)."""
+def intervals_section(sc: Scores, by_time: bool) -> dict | None:
+    """The manifest's ``intervals`` entry (None without a calibration part).
+
+    The split-conformal guarantee needs exchangeable rows; rows in time order are not (the
+    calibration stretch precedes the rows served), so there it is not claimed.
+    """
     if sc.calib is None:
         return None
+    promise = ("no finite-sample guarantee: rows in time order are not exchangeable, so "
+               "read the coverage measured on the later holdout stretch" if by_time else
+               "a finite-sample guarantee for rows exchangeable with the training data")
     return {
+        "name": "split-conformal",
         "method": ("split-conformal: the ⌈(c+1)·coverage⌉-th smallest absolute residual "
                    "of the final model on a calibration part it never saw (Lei, G'Sell, "
-                   "Rinaldo, Tibshirani & Wasserman 2018): a finite-sample guarantee for "
-                   "rows like the training data"),
+                   f"Rinaldo, Tibshirani & Wasserman 2018): {promise}"),
         "calibration_rows": int(sc.calib.shape[0]),
         "holdout_coverage": sc.coverage,
         "holdout_coverage_method": None if sc.coverage is None else

@@ -70,15 +70,31 @@ class BlockResult:
 
 def row_parts(plan: Plan, block: Block, n_rows: int, t: np.ndarray | None) -> np.ndarray:
     """Part index (0 train, 1 validate, 2 holdout, 3 calibrate) of every row of a block."""
-    out = np.zeros(n_rows, dtype=np.int8)
     if plan.time_cuts is not None:
+        out = np.zeros(n_rows, dtype=np.int8)
         v_cut, c_cut, h_cut = plan.time_cuts
         out[t >= v_cut] = 1
         out[t >= c_cut] = 3
         out[t >= h_cut] = 2
         return out
-    u = np.random.default_rng([plan.seed, 2, block.index]).random(n_rows)
-    fv, fh, fc = plan.fractions
+    return parts_of_keys(part_keys(plan.seed, block.index, n_rows), plan.fractions)
+
+
+def part_keys(seed: int, block_index: int, n_rows: int) -> np.ndarray:
+    """The seeded uniform draw that decides the part of every row of a block.
+
+    Pass 1 keeps the keys of its sample rows and pass 2 draws them again, so both passes put
+    a row in the same part: sample rows outside the training part never become landmarks or
+    tuning rows.
+    """
+    return np.random.default_rng([seed, 2, block_index]).random(n_rows)
+
+
+def parts_of_keys(u: np.ndarray, fractions: tuple[float, float, float]) -> np.ndarray:
+    """Part index of rows with keys ``u``: validate, holdout, calibrate below their
+    cumulative fractions, train above."""
+    fv, fh, fc = fractions
+    out = np.zeros(u.shape[0], dtype=np.int8)
     out[u < fv + fh + fc] = 3
     out[u < fv + fh] = 2
     out[u < fv] = 1

@@ -15,6 +15,7 @@ import numpy as np
 
 from trainer.data import usable_rows
 from trainer.errors import UserError
+from trainer.nystrom_parts import part_keys
 from trainer.reader import Source
 
 #: Rows kept in memory from pass 1 for landmarks, tuning and the novelty reference.
@@ -37,6 +38,7 @@ class Scan:
     sample_keys: np.ndarray | None = None
     sample: np.ndarray | None = None  # (s, d + t) raw values
     sample_time: np.ndarray | None = None
+    sample_part_key: np.ndarray | None = None  # each sample row's part draw (pass 2's too)
     blocks: list = field(default_factory=list)  # (block, first data row)
 
     def add(self, x: np.ndarray) -> None:
@@ -58,19 +60,24 @@ class Scan:
                                                                               x.max(axis=0))
         self.count += nb
 
-    def keep_sample(self, keys: np.ndarray, rows: np.ndarray, t: np.ndarray | None) -> None:
-        """Keep the rows with the SAMPLE_ROWS smallest keys seen so far (a uniform sample)."""
+    def keep_sample(self, keys: np.ndarray, rows: np.ndarray, t: np.ndarray | None,
+                    part_key: np.ndarray) -> None:
+        """Keep the rows with the SAMPLE_ROWS smallest keys seen so far (a uniform sample),
+        with their time and their part draw."""
         if self.sample is None:
             self.sample_keys, self.sample, self.sample_time = keys, rows, t
+            self.sample_part_key = part_key
         else:
             self.sample_keys = np.concatenate([self.sample_keys, keys])
             self.sample = np.concatenate([self.sample, rows])
+            self.sample_part_key = np.concatenate([self.sample_part_key, part_key])
             if t is not None:
                 self.sample_time = np.concatenate([self.sample_time, t])
         if self.sample_keys.size > SAMPLE_ROWS:
             top = np.argpartition(self.sample_keys, SAMPLE_ROWS - 1)[:SAMPLE_ROWS]
             top.sort()
             self.sample_keys, self.sample = self.sample_keys[top], self.sample[top]
+            self.sample_part_key = self.sample_part_key[top]
             if self.sample_time is not None:
                 self.sample_time = self.sample_time[top]
 
@@ -100,5 +107,5 @@ def scan(src: Source, features, targets, time_col, drop: bool, seed: int,
         if t is not None:
             out.times.append(t)
         keys = np.random.default_rng([seed, 1, block.index]).random(v.shape[0])[keep]
-        out.keep_sample(keys, rows, t)
+        out.keep_sample(keys, rows, t, part_keys(seed, block.index, v.shape[0])[keep])
     return out

@@ -29,7 +29,7 @@ from trainer.nystrom_manifest import (
     score_parts,
     training_section,
 )
-from trainer.nystrom_parts import Plan, part_fractions, run_pass2, time_cuts
+from trainer.nystrom_parts import Plan, part_fractions, parts_of_keys, run_pass2, time_cuts
 from trainer.nystrom_scan import scan
 from trainer.nystrom_tune import final_ridge, sample_problem, tune_on_sample
 from trainer.reader import BLOCK_BYTES, Source
@@ -83,8 +83,8 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     sample_y = sample[:, d:]
     if cuts is not None:
         in_train = sc.sample_time < cuts[0]
-    else:  # the sample's own split draw, independent of the parts of pass 2
-        in_train = np.random.default_rng([opts.seed, 3]).random(sample.shape[0]) >= fv + fh + fc
+    else:  # the part each sample row gets in pass 2
+        in_train = parts_of_keys(sc.sample_part_key, (fv, fh, fc)) == 0
     tr_s, tr_y = sample_s[in_train], sample_y[in_train]
     if tr_s.shape[0] < 10:
         raise UserError(f"{src.path}: too few training rows for Nyström ({tr_s.shape[0]})")
@@ -119,12 +119,13 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     val = held["validate"]
     if opts.ridge is None and val.x.shape[0] >= 2:
         grow = sums.count / max(problem.x_s.shape[0], 1) if problem else 1.0
-        ridge = final_ridge(path, spec, landmarks, val, ridge, grow)
+        ridge = final_ridge(path, spec, landmarks, val, ridge, grow, problem.inv_var)
         if tuning_info:
             tuning_info["final_ridge"] = {
                 "ridge": ridge, "validation_rows": int(val.x.shape[0]),
                 "how": "41 log-spaced values around the sample's choice, scored on the "
-                       "validation part with the sums of all training rows"}
+                       "validation part with the sums of all training rows (validation MSE / "
+                       "Var(target), averaged over the targets)"}
             tuning_info["summary"] += (f"; final ridge {ridge:.4g} on {val.x.shape[0]} "
                                        "validation rows")
     beta = path.dual(ridge)
@@ -168,7 +169,7 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
         "tuning": tuning_info,
         "metrics": scored.metrics,
         "envelope": env,
-        "intervals": intervals_section(scored),
+        "intervals": intervals_section(scored, cuts is not None),
         "precision": opts.precision,
         "precision_check": check,
         "libraries": library_versions(),

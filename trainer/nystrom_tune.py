@@ -186,12 +186,15 @@ def tune_on_sample(opts, problem: SampleProblem, log,
 
 
 def final_ridge(path: nystrom.RidgePath, spec: KernelSpec, landmarks: np.ndarray,
-                held, ridge: float, grow: float) -> float:
+                held, ridge: float, grow: float, inv_var: np.ndarray) -> float:
     """The ridge once more, with the sums of all training rows, on the validation part.
 
     41 log-spaced values from ridge/100 to ridge·grow·100: the sample's choice, scaled up to
     ``grow`` times as many rows (the penalty is on a sum over rows), is inside the range.
+    The criterion is the tuning's: validation MSE / Var(target) (``inv_var`` = 1 / Var),
+    averaged over the targets.
     """
     ridges = np.geomspace(ridge * 1e-2, ridge * max(grow, 1.0) * 1e2, 41)
     res = nystrom.validation_errors(path, spec, landmarks, held.x, held.y, ridges)
-    return float(ridges[int(np.argmin(np.mean(res**2, axis=(1, 2))))])
+    score = (np.mean(res**2, axis=1) * inv_var[None, :]).mean(axis=1)
+    return float(ridges[int(np.argmin(score))])
