@@ -31,7 +31,7 @@ def test_time_fold_error_is_that_of_models_fitted_on_each_folds_past():
     residuals = [y[val] - fit_exact(x[tr], y[tr], spec, ridge).predict(x[val])
                  for tr, val in validation.time_series_folds(len(x))]
     want = np.sqrt(np.mean(np.concatenate(residuals) ** 2, axis=0))
-    np.testing.assert_allclose(got.account["chosen"]["cv_rmse"], want, rtol=1e-7)
+    np.testing.assert_allclose(got.account["chosen"]["rmse"], want, rtol=1e-7)
 
 
 def test_a_time_folds_scaler_ignores_its_validation_block():
@@ -76,3 +76,58 @@ def test_interval_name_is_the_method_that_calibrated_the_served_model(small_csv,
     small = _train(small_csv, store_dir, "small")["intervals"]
     assert small["name"] == "jackknife"
     assert small["holdout_coverage_method"].startswith("jackknife")
+
+
+def _counting_eigh(monkeypatch) -> list:
+    import scipy.linalg
+
+    calls: list = []
+    real = scipy.linalg.eigh
+
+    def eigh(*args, **kw):
+        calls.append(1)
+        return real(*args, **kw)
+
+    monkeypatch.setattr(scipy.linalg, "eigh", eigh)
+    return calls
+
+
+def test_tuning_record_counts_every_decomposition_and_names_its_error(monkeypatch):
+    x, y = _series(90)
+    monkeypatch.setattr(validation, "EXACT_MAX_ROWS", 40)
+    monkeypatch.setattr(validation, "FALLBACK_ROWS", 60)
+    for time_ordered, name in ((False, "k-fold"), (True, "time-fold")):
+        calls = _counting_eigh(monkeypatch)
+        got = tuning.tune(x, y, kernel="rbf", given=tuning.Given(gamma=0.4), quiet=True,
+                          log=lambda *_: None, time_ordered=time_ordered).account
+        assert got["decompositions"] == len(calls) > 2
+        assert got["error_method"] == name
+        assert f"{name} RMSE" in got["summary"] and "LOO" not in got["summary"]
+        assert all("loo_rmse" not in c and "rmse" in c for c in got["curves"])
+    calls = _counting_eigh(monkeypatch)
+    exact = tuning.tune(x[:30], y[:30], kernel="rbf", given=tuning.Given(gamma=0.4), quiet=True,
+                        log=lambda *_: None).account
+    assert exact["decompositions"] == len(calls) and exact["error_method"] == "LOO"
+
+
+def test_every_error_is_labelled_by_its_method_in_summary_inspect_and_report(
+        small_csv, store_dir, monkeypatch, capsys):
+    from cli_helpers import run_cli
+
+    from service.store import Store
+
+    monkeypatch.setattr(validation, "EXACT_MAX_ROWS", 30)
+    monkeypatch.setattr(validation, "FALLBACK_ROWS", 40)
+    code, out, err = run_cli(capsys, "train", small_csv, "--target", "hardness_s", "--name",
+                             "folds", "--kernel", "rbf", "--gamma", "0.3")
+    assert code == 0, err
+    lines = dict(line.split(None, 1) for line in out.splitlines() if line.strip())
+    assert "k-fold RMSE" in lines["tuning"] and "LOO RMSE" not in lines["tuning"]
+    assert lines["LOO"].startswith("hardness_s: RMSE")  # the final model's own exact LOO
+    man = Store(str(store_dir)).read_manifest("folds", 1)
+    assert man["tuning"]["error_method"] == "k-fold"
+    assert man["intervals"]["residuals"] == "LOO" and man["intervals"]["name"] == "jackknife"
+    code, out, _ = run_cli(capsys, "inspect", "folds")
+    assert "k-fold RMSE" in out and "LOO RMSE" not in out
+    page = (store_dir / "folds" / "versions" / "1" / "report.html").read_text()
+    assert "Tuning: k-fold RMSE against ridge" in page and "LOO RMSE" not in page

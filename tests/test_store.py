@@ -109,7 +109,7 @@ def damage_missing(store_dir):
 
 
 def damage_schema(store_dir):
-    _rewrite_manifest(store_dir, 2, lambda m: m.update(schema=SCHEMA + 98))
+    _rewrite_manifest(store_dir, 2, lambda m: m.update(schema=99))
 
 
 def damage_half_written(store_dir):

@@ -115,14 +115,14 @@ def calibrate(final: Fit, holdout_abs: np.ndarray | None, check: HoldoutCheck,
     (None, None) when there is nothing to calibrate on."""
     if final.loo_residuals is not None:
         calib = np.abs(final.loo_residuals)
-        name = "jackknife"
+        name, source = "jackknife", "LOO"
         how = ("jackknife: final model ± the ⌈(c+1)·coverage⌉-th smallest absolute exact "
                "leave-one-out residual of the final model. No finite-sample coverage "
                "guarantee (Barber, Candès, Ramdas & Tibshirani, Ann. Statist. 2021): the "
                "coverage measured on the holdout (when there is one) is stored beside it")
     elif holdout_abs is not None:
         calib = holdout_abs
-        name = "split-conformal"
+        name, source = "split-conformal", "holdout"
         how = ("split-conformal quantile of the holdout residuals of the model fitted on the "
                "training part (Lei et al. 2018); the served model is refitted on all rows, "
                "holdout included, so the finite-sample guarantee is approximate for it"
@@ -132,6 +132,7 @@ def calibrate(final: Fit, holdout_abs: np.ndarray | None, check: HoldoutCheck,
     return calib, {
         "name": name,
         "method": how,
+        "residuals": source,
         "calibration_rows": int(calib.shape[0]),
         "holdout_coverage": check.coverage,
         "holdout_coverage_method": check.how,

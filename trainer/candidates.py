@@ -50,7 +50,7 @@ class Curve:
             "kernel": self.spec.name,
             "params": self.spec.params(),
             "ridge": [float(v) for v in self.ridges],
-            "loo_rmse": [[float(v) for v in row] if good else None
+            "rmse": [[float(v) for v in row] if good else None
                          for row, good in zip(self.rmse, ok, strict=True)],
             "score": [float(v) if good else None for v, good in zip(self.score, ok, strict=True)],
         }
@@ -106,6 +106,6 @@ def evaluate(problem: Problem, spec: KernelSpec, ridges: np.ndarray | None = Non
                      np.full((ridges.size, t), np.nan), failure=f"{type(exc).__name__}: {exc}")
     score, rmse = _score(res, problem.inv_var)
     score[~ok] = np.inf
-    problem.evaluated += 1
+    problem.evaluated += problem.decompositions
     problem.seconds += time.perf_counter() - t0
     return Curve(spec, np.asarray(ridges, dtype=np.float64), score, rmse)

@@ -56,7 +56,7 @@ def cmd_train(args) -> int:
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
-    from trainer.show import headline, precision_line, print_pairs
+    from trainer.show import error_lines, precision_line, print_pairs
 
     print_pairs([
         ("model", f"{summary['name']} v{summary['version']}"
@@ -68,8 +68,7 @@ def cmd_train(args) -> int:
         ("targets", ", ".join(summary["targets"])),
         ("kernel", summary["kernel"]),
         ("ridge", f"{summary['ridge']:.6g}"),
-        ("LOO", headline(summary["metrics"], "loo")),
-        ("holdout", headline(summary["metrics"], "holdout")),
+        *error_lines(summary["metrics"]),
         *([("tuning", summary["tuning"])] if summary.get("tuning") else []),
         *([("report", summary["report"])] if summary.get("report") else []),
         ("precision", precision_line(summary["precision"], summary["precision_check"])),
@@ -80,7 +79,7 @@ def cmd_train(args) -> int:
 
 
 def cmd_versions(args) -> int:
-    from trainer.show import fmt, table
+    from trainer.show import first_error, fmt, table
 
     st = _store(args)
     live = st.live_version(args.model)
@@ -91,17 +90,14 @@ def cmd_versions(args) -> int:
         except StoreError as exc:
             rows.append(["*" if v == live else "", v, "?", "broken", str(exc).split(": ", 1)[-1]])
             continue
-        metrics = m.get("metrics", {})
-        first = next(iter((metrics.get("holdout") or metrics.get("loo") or {}).values()), {})
         rows.append([
             "*" if v == live else "", v, m.get("created", "?"),
-            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}",
-            f"rmse={fmt(first.get('rmse', float('nan')))}" if first else "",
+            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}", first_error(m.get("metrics", {})),
         ])
     if args.json:
         print(json.dumps({"model": args.model, "live": live, "versions": [r[1] for r in rows]}))
     else:
-        table(["live", "version", "created", "kernel", "holdout/LOO"], rows)
+        table(["live", "version", "created", "kernel", "error"], rows)
     return 0
 
 

@@ -109,6 +109,7 @@ def intervals_section(sc: Scores, by_time: bool) -> dict | None:
                "a finite-sample guarantee for rows exchangeable with the training data")
     return {
         "name": "split-conformal",
+        "residuals": "calibration",
         "method": ("split-conformal: the ⌈(c+1)·coverage⌉-th smallest absolute residual "
                    "of the final model on a calibration part it never saw (Lei, G'Sell, "
                    f"Rinaldo, Tibshirani & Wasserman 2018): {promise}"),

@@ -87,7 +87,7 @@ def _run_specs(problem: SampleProblem, specs: list[KernelSpec]) -> list[Curve]:
     eigendecompositions would run one at a time on one core each; one at a time, BLAS uses
     every core.
     """
-    problem.evaluated += len(specs)
+    problem.evaluated += 2 * len(specs)  # K_mm and the normal matrix, per setting
     return [_evaluate(problem, s) for s in specs]
 
 
@@ -168,12 +168,13 @@ def tune_on_sample(opts, problem: SampleProblem, log,
     info = {
         "method": what + "; one eigendecomposition per kernel setting serves every ridge",
         "criterion": "validation MSE / Var(target), averaged over the targets",
+        "error_method": "validation",
         "error_label": "validation RMSE",
         "kernels": kernels,
         "searched": [p for p in ("gamma", "ridge") if getattr(opts, p) is None],
         "grid": {"gamma_range": ranges},
         "chosen": {"kernel": best.spec.name, "params": best.spec.params(), "ridge": ridge,
-                   "score": best.best_score, "cv_rmse": [float(v) for v in best.rmse[best.best]]},
+                   "score": best.best_score, "rmse": [float(v) for v in best.rmse[best.best]]},
         "curves": [c.as_json() for c in curves],
         "coarse_curves": [c.as_json() for c in coarse_curves] if two_stage else None,
         "decompositions": evaluated,

@@ -18,6 +18,7 @@ import numpy as np
 from service.cautions import BEFORE_ACTING
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
 from trainer.cautions import R2_POOR, poor_holdout
+from trainer.show import ERROR_KINDS
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
@@ -86,7 +87,8 @@ def _pyplot():
 
 
 def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
-    """LOO error against ridge, one line per kernel parameter setting, one panel per kernel."""
+    """Tuning error (by its method) against ridge, one line per kernel parameter setting,
+    one panel per kernel."""
     curves = [c for c in tuning.get("curves", []) if len(c["ridge"]) > 1]
     if not curves:
         return None
@@ -103,13 +105,13 @@ def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
         cmap = plt.get_cmap("viridis")
         for c, g in zip(own, gammas, strict=True):
             if single:
-                err = [np.nan if r is None else r[0] for r in c["loo_rmse"]]
+                err = [np.nan if r is None else r[0] for r in c["rmse"]]
             else:  # RMSE/SD averaged over targets: sqrt of the criterion
                 err = [np.nan if s is None else math.sqrt(s) for s in c["score"]]
             pos = 0.5 if g is None or hi == lo else math.log(g / lo) / math.log(hi / lo)
             ax.plot(c["ridge"], err, color=cmap(pos), lw=1)
         if chosen.get("kernel") == name:
-            val = chosen.get("cv_rmse", [np.nan])[0] if single else math.sqrt(chosen["score"])
+            val = chosen.get("rmse", [np.nan])[0] if single else math.sqrt(chosen["score"])
             ax.plot([chosen["ridge"]], [val], marker="*", ms=12, color="crimson",
                     label="chosen", ls="none")
             ax.legend(loc="best", fontsize=8)
@@ -118,7 +120,7 @@ def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
         ax.set_xlabel("ridge λ")
         ax.set_title(f"{name}" + ("" if not finite else f" (γ {lo:.3g} → {hi:.3g}, dark → light)"),
                      fontsize=9)
-    label = tuning.get("error_label", "LOO RMSE")
+    label = tuning["error_label"]
     axes[0][0].set_ylabel(f"{label} ({targets[0]})" if single else f"{label} / SD (mean)")
     fig.tight_layout()
     return _png(fig)
@@ -164,14 +166,14 @@ def _residuals_in_time(time: np.ndarray, actual: np.ndarray, predicted: np.ndarr
     return _png(fig)
 
 
-def _calib_hist(calib: np.ndarray, targets: list[str]) -> str:
+def _calib_hist(calib: np.ndarray, targets: list[str], source: str) -> str:
     plt = _pyplot()
     t = len(targets)
     fig, axes = plt.subplots(1, t, figsize=(4.5 * t, 3.2), squeeze=False)
     for j, name in enumerate(targets):
         ax = axes[0][j]
         ax.hist(calib[:, j], bins=30, color="slategray")
-        ax.set_xlabel(f"|LOO residual| {name}")
+        ax.set_xlabel(f"|{source} residual| {name}")
         ax.set_ylabel("rows")
     fig.tight_layout()
     return _png(fig)
@@ -179,9 +181,9 @@ def _calib_hist(calib: np.ndarray, targets: list[str]) -> str:
 
 def _metrics_rows(metrics: dict) -> list[list]:
     rows = []
-    for kind in ("loo", "holdout"):
+    for kind, label in ERROR_KINDS:
         for target, m in (metrics.get(kind) or {}).items():
-            rows.append([_Raw(_esc(kind)), _Raw(_esc(target)), m["rmse"], m["mae"], m["r2"],
+            rows.append([_Raw(_esc(label)), _Raw(_esc(target)), m["rmse"], m["mae"], m["r2"],
                          m["rows"]])
     return rows
 
@@ -264,14 +266,14 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
     parts.append("<h2>Metrics</h2>")
     parts.append(_table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
                         _metrics_rows(manifest.get("metrics", {})), left=2))
-    parts.append("<p class=note>loo: exact leave-one-out of the final model (all rows); "
-                 "holdout: the model fitted on the training part, scored on the held-out rows."
-                 "</p>")
+    parts.append("<p class=note>LOO: exact leave-one-out of the final model (all rows); "
+                 "holdout: scored on held-out rows by a model that never saw them; "
+                 "validation: the Nyström validation part, which chose the final ridge.</p>")
 
     if tuning:
         img = _curve_plot(tuning, targets)
         if img:
-            label = tuning.get("error_label", "leave-one-out RMSE")
+            label = tuning["error_label"]
             parts.append(f"<h2>Tuning: {_esc(label)} against ridge</h2>")
             parts.append(img)
             parts.append("<p class=note>One line per kernel parameter setting tried; "
@@ -309,7 +311,8 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
                                  "rows"], rows))
             parts.append(f"<p class=note>{_esc(note)}</p>")
         if calib is not None:
-            parts.append(_calib_hist(np.asarray(calib, dtype=float), targets))
+            parts.append(_calib_hist(np.asarray(calib, dtype=float), targets,
+                                     intervals.get("residuals", "calibration")))
     else:
         parts.append("<p>No interval calibration stored.</p>")
 

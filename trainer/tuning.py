@@ -39,6 +39,7 @@ from trainer.validation import (
     RIDGE_GRID_SIZE,
     RIDGE_RELATIVE,
     Problem,
+    error_method,
     scheme_text,
     standardized_problem,
 )
@@ -192,14 +193,15 @@ def tune(x_tr: np.ndarray, y_tr: np.ndarray, *, kernel: str = "rbf",
         best = _refine_ridge(problem, best)
     ridge = float(given.ridge) if given.ridge is not None else float(best.ridges[best.best])
     info.update(_account(problem, curves, best, ridge, kernels, kernel, given, what, ranges,
-                         y_tr.shape[1], runner.how, time.perf_counter() - t0))
+                         y_tr.shape[1], runner.how, time.perf_counter() - t0,
+                         error_method(info)))
     log(f"tuning: {info['summary']}")
     return Tuned(best.spec, ridge, info)
 
 
 def _account(problem: Problem, curves: list[Curve], best: Curve, ridge: float,
              kernels: list[str], kernel: str, given: Given, what: str,
-             ranges: dict, targets: int, how: str, seconds: float) -> dict:
+             ranges: dict, targets: int, how: str, seconds: float, error: str) -> dict:
     """The JSON-ready account of a finished search (the manifest's ``tuning``)."""
     spec = best.spec
     chosen_rmse = [float(v) for v in best.rmse[best.best]]
@@ -210,10 +212,10 @@ def _account(problem: Problem, curves: list[Curve], best: Curve, ridge: float,
         per_kernel[name] = {
             "params": b.spec.params(), "ridge": float(b.ridges[b.best]),
             "score": b.best_score if math.isfinite(b.best_score) else None,
-            "loo_rmse": [float(v) for v in b.rmse[b.best]],
+            "rmse": [float(v) for v in b.rmse[b.best]],
         }
     cv = problem.folds is not None
-    crit_txt = ("CV MSE" if cv else "LOO MSE") + (
+    crit_txt = f"{error} MSE" + (
         " / Var(target), averaged over the targets" if targets > 1 else "")
     searched = [p for p in ("gamma", "degree", "coef0")
                 if any(p in KERNEL_PARAMS[k] for k in kernels) and getattr(given, p) is None]
@@ -222,11 +224,13 @@ def _account(problem: Problem, curves: list[Curve], best: Curve, ridge: float,
     rmse_txt = ", ".join(f"{v:.4g}" for v in chosen_rmse)
     summary = (f"{spec.describe()}, ridge={ridge:.4g} chosen by {what} "
                f"({problem.evaluated} decompositions, {len(curves)} settings × ridge grid; "
-               f"{'CV' if cv else 'LOO'} RMSE {rmse_txt}; {seconds:.1f} s)")
+               f"{error} RMSE {rmse_txt}; {seconds:.1f} s)")
     return {
         "method": what + ("" if cv else
                           " (closed form from one eigendecomposition per kernel setting)"),
         "criterion": crit_txt,
+        "error_method": error,
+        "error_label": f"{error} RMSE",
         "searched": searched,
         "fixed": {p: float(getattr(given, p)) for p in ("gamma", "degree", "coef0", "ridge")
                   if getattr(given, p) is not None},
@@ -242,7 +246,7 @@ def _account(problem: Problem, curves: list[Curve], best: Curve, ridge: float,
             "gamma_range": ranges,
         },
         "chosen": {"kernel": spec.name, "params": spec.params(), "ridge": ridge,
-                   "score": best.best_score, "cv_rmse": chosen_rmse,
+                   "score": best.best_score, "rmse": chosen_rmse,
                    "ridge_at_grid_edge": bool(given.ridge is None
                                               and best.ridges.size == RIDGE_GRID_SIZE
                                               and best.best in (0, best.ridges.size - 1))},

@@ -65,6 +65,11 @@ class Problem:
         lo, hi = RIDGE_RELATIVE
         return scale * np.geomspace(lo, hi, RIDGE_GRID_SIZE)
 
+    @property
+    def decompositions(self) -> int:
+        """Eigendecompositions one candidate costs: one for LOO, one per fold."""
+        return 1 if self.folds is None else len(self.folds)
+
     def fold_scaling(self, i: int) -> FoldScaling:
         """Fold ``i``'s standardization and target means, from its training rows only."""
         x, y = self.raw
@@ -157,6 +162,13 @@ def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float 
             "folds": FALLBACK_FOLDS,
         }
     return Problem(x_s, y_c, 1.0 / var, ridge_fixed, folds, raw), info
+
+
+def error_method(info: dict) -> str:
+    """The short name of the validation scheme, carried by every error it produced."""
+    if "time_folds" in info:
+        return "time-fold"
+    return "k-fold" if info["fallback"] else "LOO"
 
 
 def scheme_text(info: dict) -> str:

@@ -51,7 +51,8 @@ class Runner:
             with parallel_config(backend="loky", inner_max_num_threads=1):
                 out = Parallel(n_jobs=min(self.cores, len(specs)))(
                     delayed(evaluate)(problem, s) for s in specs)
-            problem.evaluated += len(specs)  # the workers counted on their own copies
+            # the workers counted on their own copies
+            problem.evaluated += len(specs) * problem.decompositions
             self.bar.update(len(specs))
             return out
         out = []
