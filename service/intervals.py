@@ -15,12 +15,14 @@ import math
 
 import numpy as np
 
+from service.errors import UserError
+
 
 def check_coverage(coverage: float) -> float:
     """``coverage`` if it lies strictly between 0 and 1, else ValueError (a coverage of 0
     would make the quantile rank 0, which silently indexes the largest residual)."""
     if not 0 < coverage < 1:
-        raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
+        raise UserError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
     return coverage
 
 

@@ -131,3 +131,23 @@ def test_every_error_is_labelled_by_its_method_in_summary_inspect_and_report(
     assert "k-fold RMSE" in out and "LOO RMSE" not in out
     page = (store_dir / "folds" / "versions" / "1" / "report.html").read_text()
     assert "Tuning: k-fold RMSE against ridge" in page and "LOO RMSE" not in page
+
+
+def test_the_runtimes_argument_checks_raise_the_one_user_error_type(monkeypatch):
+    # the command line maps this one type to exit 2; any other ValueError is a bug (exit 70)
+    import pytest
+
+    from service.errors import UserError
+    from service.intervals import check_coverage
+    from service.settings import drain_seconds, worker_count
+
+    with pytest.raises(UserError, match="gamma"):
+        KernelSpec("rbf", gamma=-1.0)
+    with pytest.raises(UserError, match="coverage"):
+        check_coverage(1.5)
+    monkeypatch.setenv("KRIDGE_WORKERS", "many")
+    with pytest.raises(UserError, match="KRIDGE_WORKERS"):
+        worker_count()
+    monkeypatch.setenv("KRIDGE_DRAIN_SECONDS", "-1")
+    with pytest.raises(UserError, match="KRIDGE_DRAIN_SECONDS"):
+        drain_seconds()

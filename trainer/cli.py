@@ -288,38 +288,12 @@ def build_parser() -> argparse.ArgumentParser:
 #: error (2) and a failed verify (1), and shown with its traceback.
 EXIT_BUG = 70
 
-#: Functions whose ValueError means "this argument is not allowed": the user's to fix.
-#: Every other ValueError is a bug in kridge and keeps its traceback.
-ARGUMENT_CHECKS = {
-    ("kernels.py", "__post_init__"),  # KernelSpec: unknown kernel, bad gamma/degree/coef0
-    ("kernels.py", "default_spec"),
-    ("intervals.py", "check_coverage"),  # --coverage outside (0, 1)
-    ("settings.py", "_int"),  # KRIDGE_* environment variables
-    ("settings.py", "_float"),
-}
-
-
-def _is_argument_check(exc: BaseException) -> bool:
-    """True when ``exc`` was raised directly by one of :data:`ARGUMENT_CHECKS`."""
-    tb = exc.__traceback__
-    if tb is None:
-        return False
-    while tb.tb_next is not None:
-        tb = tb.tb_next
-    code = tb.tb_frame.f_code
-    return (os.path.basename(code.co_filename), code.co_name) in ARGUMENT_CHECKS
-
 
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
         return args.func(args)
-    except (UserError, StoreError) as exc:
-        print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_USER
-    except ValueError as exc:
-        if not _is_argument_check(exc):
-            return _bug(args.command)
+    except (UserError, StoreError) as exc:  # by type: the checks raise UserError
         print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_USER
     except BrokenPipeError:
