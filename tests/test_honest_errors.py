@@ -7,8 +7,9 @@ from __future__ import annotations
 import numpy as np
 
 from service.kernels import KernelSpec
-from trainer import tuning, validation
-from trainer.fit import fit_exact
+from trainer.exact.fit import fit_exact
+from trainer.tuning import search as tuning
+from trainer.validation import folds as validation
 
 
 def _series(n: int = 120, seed: int = 5) -> tuple[np.ndarray, np.ndarray]:
@@ -22,7 +23,7 @@ def _series(n: int = 120, seed: int = 5) -> tuple[np.ndarray, np.ndarray]:
 
 
 def test_time_fold_error_is_that_of_models_fitted_on_each_folds_past():
-    # reference: each fold refitted from scratch by trainer.fit.fit_exact (its own
+    # reference: each fold refitted from scratch by trainer.exact.fit.fit_exact (its own
     # standardization and intercept, Cholesky) on the fold's training rows only
     x, y = _series()
     spec, ridge = KernelSpec("rbf", gamma=0.4), 0.05
@@ -53,7 +54,7 @@ def test_a_time_folds_scaler_ignores_its_validation_block():
 
 def _train(csv, store, name: str, **extra) -> dict:
     from service.store import Store
-    from trainer.train import TrainOptions, train
+    from trainer.job import TrainOptions, train
 
     opts = TrainOptions(data=str(csv), targets=["hardness_s"], name=name, store=str(store),
                         kernel="rbf", gamma=0.3, ridge=0.01, quiet=True, report=False, **extra)

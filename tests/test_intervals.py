@@ -11,7 +11,7 @@ from sklearn.datasets import make_friedman1
 from service.intervals import conformal_rank, half_width, largest_coverage
 from service.model import load_model
 from trainer.calibration import conformal_half_width, interval_coverage
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 
 
 def test_conformal_rank_rule():

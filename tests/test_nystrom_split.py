@@ -31,7 +31,7 @@ def _ids(x_s: np.ndarray, mean: np.ndarray, scale: np.ndarray) -> set[int]:
 @pytest.mark.parametrize("in_time", [False, True])
 def test_landmarks_tuning_and_fit_rows_never_include_held_out_rows(tmp_path, monkeypatch,
                                                                     in_time):
-    import trainer.nystrom_train as job
+    import trainer.nystrom.job as job
 
     seen: dict = {}
     sample_problem, run_pass2 = job.sample_problem, job.run_pass2
@@ -71,9 +71,9 @@ def test_landmarks_tuning_and_fit_rows_never_include_held_out_rows(tmp_path, mon
 def test_final_ridge_minimises_the_stated_criterion():
     # the criterion the manifest states: validation MSE / Var(target), averaged over targets
     from service.kernels import KernelSpec
-    from trainer import nystrom
-    from trainer.nystrom_parts import HeldRows
-    from trainer.nystrom_tune import final_ridge
+    from trainer.nystrom import numerics as nystrom
+    from trainer.nystrom.parts import HeldRows
+    from trainer.nystrom.tune import final_ridge
 
     rng = np.random.default_rng(11)
     x = rng.uniform(-1.5, 1.5, (1600, 2))

@@ -22,9 +22,9 @@ from service import load_model
 from service.kernels import KernelSpec
 from service.model import verify
 from service.store import SCHEMA, NotFound, Store, StoreError, check_name, check_version
-from trainer.data import read_table, split_columns
-from trainer.fit import fit_exact
-from trainer.train import TrainOptions, train
+from trainer.exact.fit import fit_exact
+from trainer.job import TrainOptions, train
+from trainer.read.columns import read_table, split_columns
 
 TARGETS = ["hardness_s", "gloss_gu"]
 

@@ -41,7 +41,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.intervals import half_width
-from trainer.fit import Fit
+from trainer.exact.fit import Fit
 
 #: Nominal coverages reported on the holdout.
 COVERAGE_LEVELS = (0.8, 0.9, 0.95)

@@ -34,7 +34,7 @@ def _store(args) -> Store:
 
 
 def cmd_train(args) -> int:
-    from trainer.train import TrainOptions, train
+    from trainer.job import TrainOptions, train
 
     opts = TrainOptions(
         data=args.data, targets=args.target, name=args.name, features=args.features,

@@ -16,7 +16,7 @@ import numpy as np
 
 from service.kernels import KernelSpec
 from service.store import now_iso
-from trainer.fit import Fit
+from trainer.exact.fit import Fit
 
 
 def time_text(value: float, clock: bool) -> str | float:

@@ -19,9 +19,9 @@ import numpy as np
 
 from service.cautions import BEFORE_ACTING
 from service.model import Model, check_coverage
-from trainer.data import iter_chunks
 from trainer.errors import UserError
-from trainer.reader import BLOCK_BYTES
+from trainer.read.columns import iter_chunks
+from trainer.read.source import BLOCK_BYTES
 
 
 def _progress(quiet: bool):

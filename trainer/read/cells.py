@@ -1,6 +1,6 @@
 """Cells as files hold them: blocks and chunks, missing values, numbers and times.
 
-Shared by every input format of :mod:`trainer.reader`. Empty cells (and the usual spellings of
+Shared by every input format of :mod:`trainer.read.source`. Empty cells (and the usual spellings of
 missing: ``NA``, ``NaN``, ``null`` …) become NaN; the caller decides what a missing value
 means. A time cell is an ISO 8601 timestamp (UTC when it names no offset) or a plain number.
 """

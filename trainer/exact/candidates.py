@@ -1,7 +1,7 @@
 """One tuning candidate: a kernel parameter setting scored along a ridge grid.
 
 :func:`evaluate` computes the cross-validated error of one setting for every ridge value at
-once (exact leave-one-out or k-fold, as the :class:`~trainer.validation.Problem` says) and
+once (exact leave-one-out or k-fold, as the :class:`~trainer.validation.folds.Problem` says) and
 returns it as a :class:`Curve`. The criterion is the mean over targets of MSE / Var(target),
 so targets in different units weigh the same.
 """
@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.kernels import KernelSpec, kernel_block, kernel_matrix
-from trainer.loo import (
+from trainer.exact.loo import (
     eigen_kernel,
     feasible_ridges,
     fold_residuals,
@@ -23,7 +23,7 @@ from trainer.loo import (
     loo_residuals,
     stack_folds,
 )
-from trainer.validation import Problem
+from trainer.validation.folds import Problem
 
 
 @dataclass

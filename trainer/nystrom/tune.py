@@ -1,6 +1,6 @@
 """Kernel and ridge for a Nyström fit, chosen on rows of pass 1's sample.
 
-The width search is exact tuning's (:mod:`trainer.tuning`: the same data-driven range, log
+The width search is exact tuning's (:mod:`trainer.tuning.search`: the same data-driven range, log
 grid, edge extensions and bisections); each kernel setting costs one eigendecomposition of
 K_mm and one of the m × m normal matrix, which then serve every ridge value. After pass 2
 the ridge is chosen once more with the sums of all training rows against the validation part.
@@ -16,11 +16,11 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from service.kernels import KERNEL_PARAMS, KernelSpec
-from trainer import nystrom
 from trainer.errors import UserError
+from trainer.nystrom import numerics
 
 if TYPE_CHECKING:
-    from trainer.candidates import Curve
+    from trainer.exact.candidates import Curve
 
 #: Rows of the sample the width search fits on (the rest of the tuning rows validate).
 TUNE_ROWS = 24_000
@@ -35,7 +35,7 @@ FINE_EXTENSIONS = 2
 class SampleProblem:
     """Tuning rows from the sample: fit part and validation part (standardized)."""
 
-    x_s: np.ndarray  # the fit rows (named as trainer.tuning's width search expects)
+    x_s: np.ndarray  # the fit rows (named as trainer.tuning.search's width search expects)
     y: np.ndarray
     x_val: np.ndarray
     y_val: np.ndarray
@@ -64,15 +64,15 @@ def sample_problem(x_s: np.ndarray, y: np.ndarray, times: np.ndarray | None,
 
 
 def _evaluate(problem: SampleProblem, spec: KernelSpec, ridges: np.ndarray | None = None):
-    from trainer.candidates import Curve
-    from trainer.validation import RIDGE_GRID_SIZE, RIDGE_RELATIVE
+    from trainer.exact.candidates import Curve
+    from trainer.validation.folds import RIDGE_GRID_SIZE, RIDGE_RELATIVE
 
     if ridges is None:
         ridges = (np.array([problem.ridge_fixed]) if problem.ridge_fixed is not None
                   else np.geomspace(*RIDGE_RELATIVE, RIDGE_GRID_SIZE))
-    path = nystrom.ridge_path(spec, problem.landmarks,
-                              nystrom.accumulate(spec, problem.landmarks, problem.x_s, problem.y))
-    res = nystrom.validation_errors(path, spec, problem.landmarks, problem.x_val,
+    path = numerics.ridge_path(spec, problem.landmarks,
+                              numerics.accumulate(spec, problem.landmarks, problem.x_s, problem.y))
+    res = numerics.validation_errors(path, spec, problem.landmarks, problem.x_val,
                                     problem.y_val, ridges)
     mse = np.mean(res**2, axis=1)
     score = (mse * problem.inv_var[None, :]).mean(axis=1)
@@ -119,10 +119,10 @@ def tune_on_sample(opts, problem: SampleProblem, log,
     :data:`COARSE_LANDMARKS` landmarks, where a decomposition costs (m_c/m)³ of a full one;
     then a few width steps around its choice with all m landmarks, which decide.
     """
-    from trainer import tuning
+    from trainer.tuning import search
 
     t0 = time.perf_counter()
-    kernels = list(tuning.AUTO_KERNELS) if opts.kernel == "auto" else [opts.kernel]
+    kernels = list(search.AUTO_KERNELS) if opts.kernel == "auto" else [opts.kernel]
     runner = _run_specs
     m = problem.landmarks.shape[0]
     two_stage = m > COARSE_LANDMARKS and (opts.gamma is None) and any(
@@ -134,9 +134,9 @@ def tune_on_sample(opts, problem: SampleProblem, log,
         coarse = replace(problem, landmarks=problem.landmarks[subset], evaluated=0)
     curves, ranges = [], {}
     for name in kernels:
-        for base in tuning.kernel_candidates(name, opts):
+        for base in search.kernel_candidates(name, opts):
             if "gamma" in KERNEL_PARAMS[name] and opts.gamma is None:
-                got, ranges[name] = tuning.search_widths(coarse, base, name, runner,
+                got, ranges[name] = search.search_widths(coarse, base, name, runner,
                                                           opts.seed)
             else:
                 gamma = {"gamma": float(opts.gamma)} if "gamma" in KERNEL_PARAMS[name] else {}
@@ -186,7 +186,7 @@ def tune_on_sample(opts, problem: SampleProblem, log,
 
 
 
-def final_ridge(path: nystrom.RidgePath, spec: KernelSpec, landmarks: np.ndarray,
+def final_ridge(path: numerics.RidgePath, spec: KernelSpec, landmarks: np.ndarray,
                 held, ridge: float, grow: float, inv_var: np.ndarray) -> float:
     """The ridge once more, with the sums of all training rows, on the validation part.
 
@@ -196,6 +196,6 @@ def final_ridge(path: nystrom.RidgePath, spec: KernelSpec, landmarks: np.ndarray
     averaged over the targets.
     """
     ridges = np.geomspace(ridge * 1e-2, ridge * max(grow, 1.0) * 1e2, 41)
-    res = nystrom.validation_errors(path, spec, landmarks, held.x, held.y, ridges)
+    res = numerics.validation_errors(path, spec, landmarks, held.x, held.y, ridges)
     score = (np.mean(res**2, axis=1) * inv_var[None, :]).mean(axis=1)
     return float(ridges[int(np.argmin(score))])

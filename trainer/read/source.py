@@ -5,9 +5,9 @@ openpyxl in read-only mode. A file is read in blocks, so a file larger than memo
 trained on or scored; only the columns asked for are converted. A cell that is not a number
 stops the read with the file line (or sheet row) and the column.
 
-:class:`Source` is the one entry point; the formats live in :mod:`trainer.csv_dialect` and
-:mod:`trainer.csv_blocks` (CSV), :mod:`trainer.tables` (Parquet, Excel), and what they share
-(blocks, missing values, times) in :mod:`trainer.cells`.
+:class:`Source` is the one entry point; the formats live in :mod:`.csv_dialect` and
+:mod:`.csv_blocks` (CSV), :mod:`.tables` (Parquet, Excel), and what they share (blocks,
+missing values, times) in :mod:`.cells`.
 """
 
 from __future__ import annotations
@@ -15,11 +15,11 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 from service.store import sha256_file
-from trainer.cells import BLOCK_ROWS, MISSING, Block, Chunk, check_path, parse_time_text
-from trainer.csv_blocks import BLOCK_BYTES, CsvFile
-from trainer.csv_dialect import SEPARATORS, detect
 from trainer.errors import UserError
-from trainer.tables import ExcelSheet, ParquetTable
+from trainer.read.cells import BLOCK_ROWS, MISSING, Block, Chunk, check_path, parse_time_text
+from trainer.read.csv_blocks import BLOCK_BYTES, CsvFile
+from trainer.read.csv_dialect import SEPARATORS, detect
+from trainer.read.tables import ExcelSheet, ParquetTable
 
 __all__ = ["BLOCK_BYTES", "BLOCK_ROWS", "MISSING", "SEPARATORS", "Block", "Chunk", "Source",
            "parse_time_text"]

@@ -2,7 +2,7 @@
 
 Three schemes, chosen by the data:
 
-* exact leave-one-out (closed form, :mod:`trainer.loo`) up to :data:`EXACT_MAX_ROWS` rows;
+* exact leave-one-out (closed form, :mod:`trainer.exact.loo`) up to :data:`EXACT_MAX_ROWS` rows;
 * above that, the n³ decompositions get too slow: k-fold cross-validation on a random
   subsample (the fold systems are solved for the whole ridge path through their own
   decompositions);
@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.fit import Standardizer
+from trainer.exact.fit import Standardizer
 
 #: Above this many training rows, tuning uses k-fold CV on a subsample instead of exact LOO.
 #: One kernel's search needs about 13 decompositions (8 coarse widths, up to 2 edge

@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg as sla
 
-from trainer.fit import safe_lapack
+from trainer.exact.fit import safe_lapack
 
 #: 1 − H_ii below this (relative) counts as a row the smoother interpolates: LOO undefined.
 LEVERAGE_FLOOR = 1e-10
@@ -46,7 +46,7 @@ def eigen_kernel(k: np.ndarray, psd: bool = True) -> tuple[np.ndarray, np.ndarra
     n = k.shape[0]
     if not np.isfinite(k).all():
         raise FloatingPointError("kernel matrix has non-finite entries")
-    with safe_lapack(n):  # large factorizations must stay on one BLAS thread (trainer.fit)
+    with safe_lapack(n):  # large factorizations must stay on one BLAS thread (trainer.exact.fit)
         w, q = sla.eigh(k, driver="evd", overwrite_a=True, check_finite=False)
     if psd:
         np.maximum(w, 0.0, out=w)

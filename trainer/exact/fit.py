@@ -145,13 +145,3 @@ def fit_exact(
     return Fit(spec, ridge, scaler, intercept, x_s, dual, loo)
 
 
-def scores(y_true: np.ndarray, y_pred: np.ndarray) -> dict[str, float]:
-    """RMSE, MAE and R² (1 − SS_res/SS_tot) of one target."""
-    err = y_true - y_pred
-    ss_tot = float(((y_true - y_true.mean()) ** 2).sum())
-    return {
-        "rmse": float(np.sqrt(np.mean(err**2))),
-        "mae": float(np.mean(np.abs(err))),
-        "r2": float(1.0 - (err**2).sum() / ss_tot) if ss_tot > 0 else float("nan"),
-        "rows": int(y_true.shape[0]),
-    }

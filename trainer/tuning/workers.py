@@ -15,8 +15,8 @@ import sys
 from threadpoolctl import threadpool_info
 
 from service.kernels import KernelSpec
-from trainer.candidates import Curve, evaluate
-from trainer.validation import EXACT_MAX_ROWS, Problem
+from trainer.exact.candidates import Curve, evaluate
+from trainer.validation.folds import EXACT_MAX_ROWS, Problem
 
 #: Smallest number of rows for which candidates run in worker processes.
 PARALLEL_FROM = 1000

@@ -13,10 +13,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from trainer.data import usable_rows
 from trainer.errors import UserError
-from trainer.nystrom_parts import part_keys
-from trainer.reader import Source
+from trainer.read.columns import usable_rows
+from trainer.read.source import Source
+from trainer.validation.splits import part_keys
 
 #: Rows kept in memory from pass 1 for landmarks, tuning and the novelty reference.
 SAMPLE_ROWS = 50_000

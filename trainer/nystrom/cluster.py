@@ -14,7 +14,7 @@ from trainer.errors import UserError
 
 
 def map_blocks(address: str, plan, blocks: list) -> Iterator:
-    """Results of :func:`trainer.nystrom_parts.block_sums` for every (block, first row), in
+    """Results of :func:`trainer.nystrom.parts.block_sums` for every (block, first row), in
     block order, each fetched when the caller asks for it (one block's m × m sums at a time
     here, however many blocks there are)."""
     try:
@@ -22,7 +22,7 @@ def map_blocks(address: str, plan, blocks: list) -> Iterator:
     except ImportError:
         raise UserError("--cluster needs dask.distributed "
                         "(pip install 'kridge[cluster]')") from None
-    from trainer.nystrom_parts import block_sums
+    from trainer.nystrom.parts import block_sums
 
     try:
         client = Client(address, timeout="10s")

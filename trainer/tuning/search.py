@@ -1,13 +1,13 @@
 """Automatic choice of kernel parameters and ridge by cross-validated error.
 
 Each candidate kernel setting is scored for a whole ridge grid at once
-(:mod:`trainer.candidates`), by exact leave-one-out up to a size limit, by k-fold on a
+(:mod:`trainer.exact.candidates`), by exact leave-one-out up to a size limit, by k-fold on a
 subsample above it, by forward-chaining folds in time order with ``--time``
-(:mod:`trainer.validation`); the closed forms are in :mod:`trainer.loo`.
+(:mod:`trainer.validation.folds`); the closed forms are in :mod:`trainer.exact.loo`.
 
 The search
 ----------
-* kernel widths (γ) on a log scale whose ends follow the data (:mod:`trainer.widths`): a
+* kernel widths (γ) on a log scale whose ends follow the data (:mod:`trainer.tuning.widths`): a
   coarse grid of 8 widths, extended outwards when the best lies on an edge, then refined by
   two rounds of log-scale bisection around the best;
 * ridge: 30 values from 1e-7 to 1e3 times the mean diagonal of K (for rbf-type kernels the
@@ -33,9 +33,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.kernels import KERNEL_PARAMS, KernelSpec
-from trainer.candidates import Curve, evaluate
 from trainer.errors import UserError
-from trainer.validation import (
+from trainer.exact.candidates import Curve, evaluate
+from trainer.tuning.widths import width_range
+from trainer.tuning.workers import Runner
+from trainer.validation.folds import (
     RIDGE_GRID_SIZE,
     RIDGE_RELATIVE,
     Problem,
@@ -43,8 +45,6 @@ from trainer.validation import (
     scheme_text,
     standardized_problem,
 )
-from trainer.widths import width_range
-from trainer.workers import Runner
 
 #: Coarse grid of kernel widths, edge extensions and bisection rounds.
 WIDTH_GRID_SIZE = 8

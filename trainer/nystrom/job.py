@@ -1,13 +1,13 @@
 """The Nyström training job: a file of any size → a bundle served like any other.
 
 Two passes over the file, block by block (never the whole file in memory): pass 1
-(:mod:`trainer.nystrom_scan`) checks and counts every row and gathers the standardization,
+(:mod:`trainer.nystrom.scan`) checks and counts every row and gathers the standardization,
 ranges and a uniform sample; the landmarks are drawn from the sample's training rows and the
-kernel width and a first ridge are chosen on the sample (:mod:`trainer.nystrom_tune`); pass 2
-(:mod:`trainer.nystrom_parts`) splits the rows into parts and adds the training part into the
-Nyström sums (:mod:`trainer.nystrom`), here or on a Dask cluster. The ridge is chosen once
+kernel width and a first ridge are chosen on the sample (:mod:`trainer.nystrom.tune`); pass 2
+(:mod:`trainer.nystrom.parts`) splits the rows into parts and adds the training part into the
+Nyström sums (:mod:`trainer.nystrom.numerics`), here or on a Dask cluster. The ridge is chosen once
 more with the full sums, and the held-out parts score the model and calibrate its intervals
-(:mod:`trainer.nystrom_manifest`).
+(:mod:`trainer.nystrom.scores`).
 """
 
 from __future__ import annotations
@@ -20,19 +20,26 @@ from pathlib import Path
 import numpy as np
 
 from service.store import Store, now_iso
-from trainer import envelope_stats, nystrom
-from trainer.data import feature_names, is_clock, row_counts
+from trainer import envelope_stats
 from trainer.errors import UserError
-from trainer.nystrom_manifest import (
+from trainer.manifest import library_versions, time_span
+from trainer.nystrom import numerics
+from trainer.nystrom.parts import Plan
+from trainer.nystrom.pass2 import run_pass2
+from trainer.nystrom.scan import scan
+from trainer.nystrom.scores import (
     intervals_section,
     predictor,
     score_parts,
     training_section,
 )
-from trainer.nystrom_parts import Plan, part_fractions, parts_of_keys, run_pass2, time_cuts
-from trainer.nystrom_scan import scan
-from trainer.nystrom_tune import final_ridge, sample_problem, tune_on_sample
-from trainer.reader import BLOCK_BYTES, Source
+from trainer.nystrom.tune import final_ridge, sample_problem, tune_on_sample
+from trainer.plan import explicit_spec
+from trainer.precision import precision_check
+from trainer.publish import publish_and_summarize
+from trainer.read.columns import feature_names, is_clock, row_counts
+from trainer.read.source import BLOCK_BYTES, Source
+from trainer.validation.splits import part_fractions, parts_of_keys, time_cuts
 
 
 def _progress(quiet: bool):
@@ -55,8 +62,6 @@ def _memory_bytes() -> int | None:
 
 def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     """The Nyström job (see the module notes); returns the train summary."""
-    from trainer.manifest import library_versions, time_span
-    from trainer.train import explicit_spec, precision_check, publish_and_summarize
 
     src = Source(opts.data, opts.sep, opts.decimal)
     features = feature_names(src, opts.targets, opts.features, opts.time)
@@ -89,13 +94,13 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     if tr_s.shape[0] < 10:
         raise UserError(f"{src.path}: too few training rows for Nyström ({tr_s.shape[0]})")
     memory = _memory_bytes()
-    m = opts.landmarks or nystrom.default_landmarks(int(n * (1 - fh - fc - fv)), memory)
+    m = opts.landmarks or numerics.default_landmarks(int(n * (1 - fh - fc - fv)), memory)
     if m < 1:
         raise UserError(f"--landmarks must be at least 1, got {m}")
     m = min(m, tr_s.shape[0])
     scheme = opts.landmark_scheme or "uniform"
     rng = np.random.default_rng([opts.seed, 4])
-    landmarks = np.ascontiguousarray(tr_s[nystrom.pick_landmarks(tr_s, m, scheme, rng)])
+    landmarks = np.ascontiguousarray(tr_s[numerics.pick_landmarks(tr_s, m, scheme, rng)])
 
     tuning_info = problem = None
     spec = explicit_spec(opts, d)
@@ -115,7 +120,7 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     sums, held = run_pass2(plan, sc.blocks, opts.cluster, progress)
     if sums.count < 2:
         raise UserError(f"{src.path}: no training rows left for the final fit")
-    path = nystrom.ridge_path(spec, landmarks, sums)
+    path = numerics.ridge_path(spec, landmarks, sums)
     val = held["validate"]
     if opts.ridge is None and val.x.shape[0] >= 2:
         grow = sums.count / max(problem.x_s.shape[0], 1) if problem else 1.0
@@ -143,15 +148,14 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
         env["time_span"] = span
     counts = row_counts(sc.rows_read, sc.with_target, sc.dropped, n, targets)
     parts = {"train": int(sums.count), **{p: int(h.x.shape[0]) for p, h in held.items()}}
-    check = None
-    if opts.precision == "float32":
-        check = precision_check(spec, landmarks, beta, sample_s[:5000], targets, sample_y)
+    check = precision_check(opts.precision, spec, landmarks, beta, sample_s[:5000], targets,
+                            sample_y, log)
     landmark_info = {
         "count": int(m), "scheme": scheme, "rank_kept": int(path.rank),
         "from": f"the {tr_s.shape[0]} training rows of a uniform sample of "
                 f"{sample.shape[0]} rows",
         "how_many": (f"--landmarks {opts.landmarks}" if opts.landmarks else
-                     nystrom.describe_default(parts["train"], memory))}
+                     numerics.describe_default(parts["train"], memory))}
     manifest = {
         "created": now_iso(),
         "features": features,

@@ -14,9 +14,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.kernels import KernelSpec, kernel_block
-from trainer import nystrom
-from trainer.fit import scores
-from trainer.nystrom_parts import HeldRows
+from trainer.metrics import per_target
+from trainer.nystrom import numerics
+from trainer.nystrom.parts import HeldRows
 
 #: Holdout rows kept for the report's actual-against-predicted plot.
 PLOT_ROWS = 5000
@@ -27,8 +27,8 @@ def predictor(spec: KernelSpec, landmarks: np.ndarray, beta: np.ndarray,
     """f(x_s) = k(x_s, L)·β + ȳ on standardized rows, a block of rows at a time."""
     def predict(x_s: np.ndarray) -> np.ndarray:
         out = np.empty((x_s.shape[0], beta.shape[1]))
-        for i in range(0, x_s.shape[0], nystrom.SUB_ROWS):
-            part = np.ascontiguousarray(x_s[i:i + nystrom.SUB_ROWS])
+        for i in range(0, x_s.shape[0], numerics.SUB_ROWS):
+            part = np.ascontiguousarray(x_s[i:i + numerics.SUB_ROWS])
             out[i:i + part.shape[0]] = kernel_block(spec, part, landmarks) @ beta + intercept
         return out
     return predict
@@ -52,7 +52,7 @@ def score_parts(predict, targets: list[str], held: dict[str, HeldRows], seed: in
     calib = np.abs(cal.y - predict(cal.x)) if cal.x.shape[0] else None
     if hold.x.shape[0]:
         ph = predict(hold.x)
-        metrics["holdout"] = {t: scores(hold.y[:, j], ph[:, j]) for j, t in enumerate(targets)}
+        metrics["holdout"] = per_target(targets, hold.y, ph)
         keep = np.random.default_rng([seed, 5]).permutation(hold.x.shape[0])[:PLOT_ROWS]
         if hold.t is not None:
             keep = np.sort(keep)
@@ -63,7 +63,7 @@ def score_parts(predict, targets: list[str], held: dict[str, HeldRows], seed: in
             coverage = interval_coverage(calib, hold.y, ph, COVERAGE_LEVELS)
     if val.x.shape[0]:
         pv = predict(val.x)
-        metrics["validation"] = {t: scores(val.y[:, j], pv[:, j]) for j, t in enumerate(targets)}
+        metrics["validation"] = per_target(targets, val.y, pv)
     return Scores(metrics, points, calib, coverage)
 
 

@@ -13,8 +13,8 @@ import csv
 from dataclasses import dataclass
 from pathlib import Path
 
-from trainer.cells import DECIMAL_COMMA, DECIMAL_POINT, check_header
 from trainer.errors import UserError
+from trainer.read.cells import DECIMAL_COMMA, DECIMAL_POINT, check_header
 
 SEPARATORS = (",", ";", "\t", "|")
 

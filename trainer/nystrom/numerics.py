@@ -39,7 +39,7 @@ from service.kernels import (
     prepare_columns,
     prepare_rows,
 )
-from trainer.fit import safe_lapack
+from trainer.exact.fit import safe_lapack
 
 #: Eigenvalues of K_mm below this fraction of the largest are dropped (pseudo-inverse): they
 #: carry round-off, not information, and would blow up T = U S^{-1/2}.

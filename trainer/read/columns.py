@@ -1,6 +1,6 @@
 """Training and scoring data: which columns, which rows, and what missing values mean.
 
-The bytes are read by :mod:`trainer.reader` (CSV in any common dialect, Parquet, Excel).
+The bytes are read by :mod:`trainer.read.source` (CSV in any common dialect, Parquet, Excel).
 This module decides what the numbers are for:
 
 * only the named features, targets and time column are read; other columns are ignored;
@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.reader import BLOCK_BYTES, Chunk, Source
+from trainer.read.source import BLOCK_BYTES, Chunk, Source
 
 MIN_ROWS = 3
 

@@ -13,7 +13,8 @@ from pathlib import Path
 
 import numpy as np
 
-from trainer.cells import (
+from trainer.errors import UserError
+from trainer.read.cells import (
     BLOCK_ROWS,
     Block,
     Chunk,
@@ -23,7 +24,6 @@ from trainer.cells import (
     one_time,
     times_of,
 )
-from trainer.errors import UserError
 
 
 class ParquetTable:

@@ -17,16 +17,16 @@ from pathlib import Path
 
 import numpy as np
 
-from trainer.cells import DECIMAL_COMMA, MISSING, Block, Chunk, mostly_text, times_of
-from trainer.csv_dialect import CsvLayout
 from trainer.errors import UserError
+from trainer.read.cells import DECIMAL_COMMA, MISSING, Block, Chunk, mostly_text, times_of
+from trainer.read.csv_dialect import CsvLayout
 
 #: Bytes per CSV block: about 100,000 rows of ten numbers; bounds memory per block.
 BLOCK_BYTES = 8 << 20
 
 
 class CsvFile:
-    """A CSV file of a known layout (:func:`trainer.csv_dialect.detect`)."""
+    """A CSV file of a known layout (:func:`trainer.read.csv_dialect.detect`)."""
 
     def __init__(self, path: Path, layout: CsvLayout):
         self.path = path
