@@ -137,3 +137,29 @@ def calibrate(final: Fit, holdout_abs: np.ndarray | None, check: HoldoutCheck,
         "holdout_coverage": check.coverage,
         "holdout_coverage_method": check.how,
     }
+
+
+def split_conformal_section(calib: np.ndarray | None, coverage: list | None,
+                            by_time: bool) -> dict | None:
+    """The ``intervals`` entry of a model calibrated on a part it never saw (the Nyström
+    job's calibration part); None without one.
+
+    The split-conformal guarantee needs exchangeable rows; rows in time order are not (the
+    calibration stretch precedes the rows served), so there it is not claimed.
+    """
+    if calib is None:
+        return None
+    promise = ("no finite-sample guarantee: rows in time order are not exchangeable, so "
+               "read the coverage measured on the later holdout stretch" if by_time else
+               "a finite-sample guarantee for rows exchangeable with the training data")
+    return {
+        "name": "split-conformal",
+        "residuals": "calibration",
+        "method": ("split-conformal: the ⌈(c+1)·coverage⌉-th smallest absolute residual "
+                   "of the final model on a calibration part it never saw (Lei, G'Sell, "
+                   f"Rinaldo, Tibshirani & Wasserman 2018): {promise}"),
+        "calibration_rows": int(calib.shape[0]),
+        "holdout_coverage": coverage,
+        "holdout_coverage_method": None if coverage is None else
+        "calibration-part half-widths applied to the final model's holdout predictions",
+    }

@@ -5,10 +5,25 @@ from __future__ import annotations
 
 import time
 
+import numpy as np
+
 from service.model import verifier
 from service.store import Store
 from trainer import cautions
 from trainer.plan import TrainOptions
+
+
+def bundle_arrays(spec, x_train: np.ndarray, dual: np.ndarray, reference: np.ndarray,
+                  calib: np.ndarray | None) -> dict[str, np.ndarray]:
+    """The arrays a bundle stores, for either solver (``x_train``: training or landmark rows,
+    standardized; ``calib``: absolute calibration residuals, stored sorted)."""
+    # The laplacian's per-feature passes read X one feature at a time: store it column-major
+    # so that serving processes read it from the shared memory map without a private copy.
+    x_store = np.asfortranarray(x_train) if spec.uses == "l1" else x_train
+    arrays = {"x_train": x_store, "dual": dual, "novelty_reference": reference}
+    if calib is not None:
+        arrays["abs_residuals"] = np.sort(calib, axis=0)
+    return arrays
 
 
 def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arrays: dict,

@@ -26,7 +26,7 @@ from trainer.manifest import exact_manifest, time_span
 from trainer.metrics import per_target
 from trainer.plan import TrainOptions, explicit_spec
 from trainer.precision import precision_check
-from trainer.publish import publish_and_summarize
+from trainer.publish import bundle_arrays, publish_and_summarize
 from trainer.read import columns
 from trainer.validation.splits import split_holdout
 
@@ -93,12 +93,7 @@ def train_exact(opts: TrainOptions, store: Store, log, t0: float, reason: str) -
         timed=timed, span=span, fit_seconds=fit_seconds, reason=reason,
         tuning_info=tuning_info, metrics=metrics, envelope=env, intervals=intervals,
         check=check)
-    # The laplacian's per-feature passes read X one feature at a time: store it column-major
-    # so that serving processes read it from the shared memory map without a private copy.
-    x_store = np.asfortranarray(final.x_s) if spec.uses == "l1" else final.x_s
-    arrays = {"x_train": x_store, "dual": final.dual, "novelty_reference": reference}
-    if calib is not None:
-        arrays["abs_residuals"] = np.sort(calib, axis=0)
+    arrays = bundle_arrays(spec, final.x_s, final.dual, reference, calib)
 
     report_args = (tuning_info, holdout_points, calib)
     return publish_and_summarize(opts, store, manifest, arrays, report_args, t0,

@@ -1,4 +1,4 @@
-"""What a Nyström fit reports: held-out scores, split-conformal residuals and the manifest.
+"""What a Nyström fit reports: held-out scores, split-conformal residuals, measured coverage.
 
 The holdout scores the final model honestly and the calibration part gives split-conformal
 intervals (Lei, G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018), because the final model
@@ -67,54 +67,3 @@ def score_parts(predict, targets: list[str], held: dict[str, HeldRows], seed: in
     return Scores(metrics, points, calib, coverage)
 
 
-def training_section(*, rows: int, reason: str, landmarks: dict, parts: dict, src, data: str,
-                     counts: dict, span, holdout: float, by_time: bool, seed: int,
-                     fit_seconds: float, cluster: bool) -> dict:
-    """The manifest's ``training`` entry: method, why, landmarks, rows and parts."""
-    return {
-        "rows": rows,
-        "method": "nystrom",
-        "method_reason": reason,
-        "landmarks": landmarks,
-        "parts": parts,
-        "data_file": data,
-        "data_sha256": src.sha256,
-        "data_format": src.dialect(),
-        "row_counts": counts,
-        "time": span,
-        "holdout_fraction": holdout,
-        "holdout_rows": parts["holdout"],
-        "holdout_kind": "the most recent rows in time" if by_time
-        else "seeded random draw per block",
-        "seed": seed,
-        "fit_seconds": round(fit_seconds, 3),
-        "solver": ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), "
-                   "streamed sums, eigendecompositions of K_mm and of the m × m "
-                   "normal matrix"),
-        "cluster": cluster,
-        "final_fit": "the training part only: holdout and calibration rows stay unseen",
-    }
-
-
-def intervals_section(sc: Scores, by_time: bool) -> dict | None:
-    """The manifest's ``intervals`` entry (None without a calibration part).
-
-    The split-conformal guarantee needs exchangeable rows; rows in time order are not (the
-    calibration stretch precedes the rows served), so there it is not claimed.
-    """
-    if sc.calib is None:
-        return None
-    promise = ("no finite-sample guarantee: rows in time order are not exchangeable, so "
-               "read the coverage measured on the later holdout stretch" if by_time else
-               "a finite-sample guarantee for rows exchangeable with the training data")
-    return {
-        "name": "split-conformal",
-        "residuals": "calibration",
-        "method": ("split-conformal: the ⌈(c+1)·coverage⌉-th smallest absolute residual "
-                   "of the final model on a calibration part it never saw (Lei, G'Sell, "
-                   f"Rinaldo, Tibshirani & Wasserman 2018): {promise}"),
-        "calibration_rows": int(sc.calib.shape[0]),
-        "holdout_coverage": sc.coverage,
-        "holdout_coverage_method": None if sc.coverage is None else
-        "calibration-part half-widths applied to the final model's holdout predictions",
-    }
