@@ -194,20 +194,8 @@ def cmd_demo(args) -> int:
     return run_demo(store=args.store, bind=args.bind, smoke=args.smoke)
 
 
-def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(
-        prog="kridge",
-        description="Kernel ridge regression: train, freeze into a versioned bundle, serve.",
-    )
-    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
-
-    def add(name, func, help_):
-        sp = sub.add_parser(name, help=help_, description=help_)
-        sp.add_argument("--store", help=f"store root (default: $KRIDGE_STORE or ./{DEFAULT_STORE})")
-        sp.set_defaults(func=func)
-        return sp
-
-    t = add("train", cmd_train, "fit a model from a CSV/Parquet file and publish a new version")
+def _train_arguments(t: argparse.ArgumentParser) -> None:
+    """The arguments of ``kridge train``: data and names, kernel, splits, method, output."""
     t.add_argument("data", help="CSV with a header row, .parquet or .xlsx")
     t.add_argument("--target", required=True, type=_csv_list,
                    help="target column(s), comma-separated")
@@ -242,6 +230,23 @@ def build_parser() -> argparse.ArgumentParser:
                    help="Dask scheduler address: run the Nyström accumulation there")
     t.add_argument("--quiet", action="store_true")
     t.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="kridge",
+        description="Kernel ridge regression: train, freeze into a versioned bundle, serve.",
+    )
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def add(name, func, help_):
+        sp = sub.add_parser(name, help=help_, description=help_)
+        sp.add_argument("--store", help=f"store root (default: $KRIDGE_STORE or ./{DEFAULT_STORE})")
+        sp.set_defaults(func=func)
+        return sp
+
+    t = add("train", cmd_train, "fit a model from a CSV/Parquet file and publish a new version")
+    _train_arguments(t)
 
     v = add("versions", cmd_versions, "list versions; * marks the live one")
     v.add_argument("model")

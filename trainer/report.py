@@ -213,22 +213,17 @@ def _cautions(manifest: dict) -> str:
             "less than half of the target's variance on unseen rows.</p>")
 
 
-def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
-           calib: np.ndarray | None) -> str:
-    """The report as one HTML string."""
-    targets = list(manifest["targets"])
-    tr = manifest.get("training", {})
-    kern = manifest["kernel"]
-    parts = [f"<!doctype html><html lang=en><head><meta charset=utf-8>"
-             f"<title>{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}"
-             f" — training report</title><style>{_STYLE}</style></head><body>",
-             f"<h1>{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}: "
-             f"training report</h1>",
-             f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>",
-             _cautions(manifest)]
+def _head(manifest: dict) -> list[str]:
+    title = f"{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}"
+    return [f"<!doctype html><html lang=en><head><meta charset=utf-8>"
+            f"<title>{title} — training report</title><style>{_STYLE}</style></head><body>",
+            f"<h1>{title}: training report</h1>",
+            f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>"]
 
-    parts.append("<h2>Data</h2>")
-    parts.append(_table(["", ""], [
+
+def _data_section(manifest: dict) -> list[str]:
+    tr = manifest.get("training", {})
+    return ["<h2>Data</h2>", _table(["", ""], [
         [_Raw("file"), _Raw(_esc(tr.get("data_file")))],
         [_Raw("sha256"), _Raw(f"<code>{_esc(tr.get('data_sha256'))}</code>")],
         [_Raw("rows"), tr.get("rows")],
@@ -239,11 +234,13 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
         [_Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
                                f" seed {tr.get('seed')})"],
         [_Raw("features"), _Raw(_esc(", ".join(manifest["features"])))],
-        [_Raw("targets"), _Raw(_esc(", ".join(targets)))],
+        [_Raw("targets"), _Raw(_esc(", ".join(manifest["targets"])))],
         [_Raw("final fit"), _Raw(_esc(tr.get("final_fit", "")))],
-    ], left=2))
+    ], left=2)]
 
-    parts.append("<h2>Chosen parameters</h2>")
+
+def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
+    kern = manifest["kernel"]
     params = ", ".join(f"{k}={_num(v, 6)}" for k, v in kern.get("params", {}).items())
     rows = [[_Raw("kernel"), _Raw(_esc(f"{kern['name']}({params})"))],
             [_Raw("ridge λ"), _Raw(_num(manifest["ridge"], 6))]]
@@ -255,68 +252,72 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
                  [_Raw("summary"), _Raw(_esc(tuning.get("summary", "")))]]
     else:
         rows.append([_Raw("how"), _Raw("given on the command line (no tuning)")])
-    parts.append(_table(["", ""], rows, left=2))
+    out = ["<h2>Chosen parameters</h2>", _table(["", ""], rows, left=2)]
     if tuning and len(tuning.get("per_kernel", {})) > 1:
-        parts.append("<p>Best of each kernel compared:</p>")
-        parts.append(_table(["kernel", "parameters", "ridge", "criterion"], [
+        out.append("<p>Best of each kernel compared:</p>")
+        out.append(_table(["kernel", "parameters", "ridge", "criterion"], [
             [_Raw(_esc(k)), _Raw(_esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items())
                                       or "–")), v["ridge"], v["score"]]
             for k, v in tuning["per_kernel"].items()], left=2))
+    return out
 
-    parts.append("<h2>Metrics</h2>")
-    parts.append(_table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
-                        _metrics_rows(manifest.get("metrics", {})), left=2))
-    parts.append("<p class=note>LOO: exact leave-one-out of the final model (all rows); "
-                 "holdout: scored on held-out rows by a model that never saw them; "
-                 "validation: the Nyström validation part, which chose the final ridge.</p>")
 
-    if tuning:
-        img = _curve_plot(tuning, targets)
-        if img:
-            label = tuning["error_label"]
-            parts.append(f"<h2>Tuning: {_esc(label)} against ridge</h2>")
-            parts.append(img)
-            parts.append("<p class=note>One line per kernel parameter setting tried; "
-                         "the star marks the choice.</p>")
+def _metrics_section(manifest: dict, tuning: dict | None) -> list[str]:
+    out = ["<h2>Metrics</h2>",
+           _table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
+                  _metrics_rows(manifest.get("metrics", {})), left=2),
+           "<p class=note>LOO: exact leave-one-out of the final model (all rows); "
+           "holdout: scored on held-out rows by a model that never saw them; "
+           "validation: the Nyström validation part, which chose the final ridge.</p>"]
+    img = _curve_plot(tuning, list(manifest["targets"])) if tuning else None
+    if img:
+        out += [f"<h2>Tuning: {_esc(tuning['error_label'])} against ridge</h2>", img,
+                "<p class=note>One line per kernel parameter setting tried; "
+                "the star marks the choice.</p>"]
+    return out
 
-    if holdout_points:
-        actual = np.asarray(holdout_points["actual"], dtype=float)
-        predicted = np.asarray(holdout_points["predicted"], dtype=float)
-        parts.append("<h2>Holdout: parity and residuals</h2>")
-        parts.append(_parity_and_hist(actual, predicted, targets))
-        if holdout_points.get("time"):
-            span = (manifest.get("training") or {}).get("time") or {}
-            parts.append("<h2>Holdout residuals against time</h2>")
-            parts.append(_residuals_in_time(np.asarray(holdout_points["time"], dtype=float),
-                                            actual, predicted, targets,
-                                            span.get("kind", "").startswith("ISO")))
-    else:
-        actual = predicted = None
 
-    parts.append("<h2>Prediction intervals</h2>")
+def _holdout_section(manifest: dict, points: dict) -> list[str]:
+    targets = list(manifest["targets"])
+    actual = np.asarray(points["actual"], dtype=float)
+    predicted = np.asarray(points["predicted"], dtype=float)
+    out = ["<h2>Holdout: parity and residuals</h2>", _parity_and_hist(actual, predicted, targets)]
+    if points.get("time"):
+        span = (manifest.get("training") or {}).get("time") or {}
+        out += ["<h2>Holdout residuals against time</h2>",
+                _residuals_in_time(np.asarray(points["time"], dtype=float), actual, predicted,
+                                   targets, span.get("kind", "").startswith("ISO"))]
+    return out
+
+
+def _intervals_section(manifest: dict, points: dict | None,
+                       calib: np.ndarray | None) -> list[str]:
     intervals = manifest.get("intervals")
-    if intervals:
-        parts.append(f"<p>{_esc(intervals['method'])}; {intervals['calibration_rows']} "
-                     "calibration residuals.</p>")
-        cov = intervals.get("holdout_coverage")
-        note = intervals.get("holdout_coverage_method")
-        if cov is None and calib is not None and actual is not None:
-            cov = interval_coverage(calib, actual, predicted, COVERAGE_LEVELS)
-            note = ("half-widths from the stored calibration residuals (these include the "
-                    "holdout rows, so the check is optimistic)")
-        if cov:
-            rows = [[_Raw(_esc(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
-                     c["rows"]] for c in cov for j, t in enumerate(targets)]
-            parts.append(_table(["target", "nominal", "holdout coverage", "half-width",
-                                 "rows"], rows))
-            parts.append(f"<p class=note>{_esc(note)}</p>")
-        if calib is not None:
-            parts.append(_calib_hist(np.asarray(calib, dtype=float), targets,
-                                     intervals.get("residuals", "calibration")))
-    else:
-        parts.append("<p>No interval calibration stored.</p>")
+    if not intervals:
+        return ["<h2>Prediction intervals</h2>", "<p>No interval calibration stored.</p>"]
+    targets = list(manifest["targets"])
+    out = ["<h2>Prediction intervals</h2>",
+           f"<p>{_esc(intervals['method'])}; {intervals['calibration_rows']} "
+           "calibration residuals.</p>"]
+    cov = intervals.get("holdout_coverage")
+    note = intervals.get("holdout_coverage_method")
+    if cov is None and calib is not None and points:
+        cov = interval_coverage(calib, np.asarray(points["actual"], dtype=float),
+                                np.asarray(points["predicted"], dtype=float), COVERAGE_LEVELS)
+        note = ("half-widths from the stored calibration residuals (these include the "
+                "holdout rows, so the check is optimistic)")
+    if cov:
+        rows = [[_Raw(_esc(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
+                 c["rows"]] for c in cov for j, t in enumerate(targets)]
+        out += [_table(["target", "nominal", "holdout coverage", "half-width", "rows"], rows),
+                f"<p class=note>{_esc(note)}</p>"]
+    if calib is not None:
+        out.append(_calib_hist(np.asarray(calib, dtype=float), targets,
+                               intervals.get("residuals", "calibration")))
+    return out
 
-    parts.append("<h2>Training envelope</h2>")
+
+def _envelope_section(manifest: dict) -> list[str]:
     env = manifest.get("envelope", {})
     std = manifest.get("standardization", {})
     rows = []
@@ -325,16 +326,29 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
         rows.append([_Raw(_esc(f)), r.get("min"), r.get("max"),
                      (std.get("mean") or [None] * (j + 1))[j],
                      (std.get("scale") or [None] * (j + 1))[j]])
-    parts.append(_table(["feature", "min", "max", "mean", "scale (SD)"], rows))
+    out = ["<h2>Training envelope</h2>",
+           _table(["feature", "min", "max", "mean", "scale (SD)"], rows)]
     nov = env.get("novelty", {})
     if nov:
-        parts.append(_table(["", ""], [
+        out.append(_table(["", ""], [
             [_Raw("novelty method"), _Raw(_esc(nov.get("method", "")))],
             [_Raw("k"), nov.get("k")],
             [_Raw("threshold distance"), nov.get("threshold_distance")],
             [_Raw("calibration"), _Raw(_esc(nov.get("calibration", "")))],
             [_Raw("training rows flagged"), nov.get("training_rows_flagged")],
         ], left=2))
+    return out
+
+
+def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
+           calib: np.ndarray | None) -> str:
+    """The report as one HTML string, section by section."""
+    parts = [*_head(manifest), _cautions(manifest), *_data_section(manifest),
+             *_parameters_section(manifest, tuning), *_metrics_section(manifest, tuning)]
+    if holdout_points:
+        parts += _holdout_section(manifest, holdout_points)
+    parts += _intervals_section(manifest, holdout_points, calib)
+    parts += _envelope_section(manifest)
     parts.append("</body></html>")
     return "\n".join(parts)
 
