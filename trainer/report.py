@@ -18,7 +18,7 @@ import numpy as np
 from service.cautions import BEFORE_ACTING
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
 from trainer.cautions import R2_POOR, poor_holdout
-from trainer.show import ERROR_KINDS
+from trainer.show import ERROR_KINDS, fmt
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
@@ -40,7 +40,7 @@ def _num(value, digits: int = 4) -> str:
     if isinstance(value, float):
         if not math.isfinite(value):
             return "∞" if value > 0 else "–"
-        return f"{value:.{digits}g}"
+        return fmt(value, digits)
     return _esc(value)
 
 

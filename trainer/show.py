@@ -17,6 +17,7 @@ def table(headers: list[str], rows: list[list], out=None) -> None:
 
 
 def fmt(value, digits: int = 4) -> str:
+    """A number as every table and summary of kridge writes it: ``digits`` significant."""
     if isinstance(value, float):
         return f"{value:.{digits}g}"
     return str(value)

@@ -61,11 +61,13 @@ def default_landmarks(rows: int, memory_bytes: int | None = None) -> int:
     4√n grows with the data as the analysis of Nyström KRR suggests (m of order √n keeps the
     optimal learning rate for smooth targets: Rudi, Camoriano & Rosasco 2015, Thm. 1). The
     cap of 2,500 bounds the time: pass 2 costs n·m² multiply-adds (a 1,000,000-row fit with
-    2,500 landmarks is about 6·10¹² flops of BLAS dsyrk, about a minute and a half on two
-    cores). m_mem lets the :data:`WORK_MATRICES` m × m matrices of the solve use at most
-    :data:`MEMORY_SHARE` of ``memory_bytes``. The floor of 2,000 is measured: just above the
-    exact/Nyström switch, 566 landmarks (4√n) cost twice the error of 2,000 for a few seconds
-    saved (README, "Large data: Nyström"; ``bench/scale_bench.py --rows 20000 --landmarks 566``).
+    2,500 landmarks is about 6·10¹² flops of BLAS dsyrk; its time on the development
+    machines: DEVELOPERS.md, "Measured limits"). m_mem lets the :data:`WORK_MATRICES`
+    m × m matrices of the solve use at most :data:`MEMORY_SHARE` of ``memory_bytes``. The
+    floor of 2,000 is measured: just above the exact/Nyström switch, 566 landmarks (4√n) cost
+    twice the error of 2,000 (README, "Large data: Nyström"; ``bench/scale_bench.py --rows
+    20000 --landmarks 566``). Floor and cap leave 4√n in charge only between 250,000 and
+    390,625 rows.
     """
     m = int(min(LANDMARKS_MAX, max(LANDMARKS_MIN, round(LANDMARKS_PER_ROOT * np.sqrt(rows)))))
     if memory_bytes:

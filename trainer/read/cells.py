@@ -130,6 +130,26 @@ def times_of(cells: list, where_row: Callable[[int], str], column: str) -> np.nd
     return out
 
 
+def text_number(text: str, decimal: str) -> float:
+    """A written number whose decimal mark is ``decimal`` ("." or ","); ValueError if none."""
+    t = text.strip()
+    return float(t.replace(",", ".") if decimal == "," else t)
+
+
+def cell_number(value, where: str, decimal: str, hint: str = "") -> float:
+    """A cell (text or a spreadsheet's number) as a finite float: the one rule of every
+    reader. UserError naming ``where`` (file line or sheet row, and column) when it is not."""
+    if isinstance(value, bool) or not isinstance(value, int | float | str):
+        raise UserError(f"{where}: {value!r} is not a number")
+    try:
+        v = text_number(value, decimal) if isinstance(value, str) else float(value)
+    except ValueError:
+        raise UserError(f"{where}: {value!r} is not a number{hint}") from None
+    if not math.isfinite(v):
+        raise UserError(f"{where}: {value!r} is not a finite number")
+    return v
+
+
 def mostly_text(values: list, decimal: str) -> bool:
     """More than half of the non-missing cells are not numbers: a text or time column.
 
@@ -144,7 +164,7 @@ def mostly_text(values: list, decimal: str) -> bool:
             continue
         if isinstance(v, str):
             try:
-                float(v.strip().replace(",", ".") if decimal == "," else v.strip())
+                text_number(v, decimal)
             except ValueError:
                 texts += 1
                 continue

@@ -11,14 +11,21 @@ from __future__ import annotations
 
 import csv
 import io
-import math
 from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.read.cells import DECIMAL_COMMA, MISSING, Block, Chunk, mostly_text, times_of
+from trainer.read.cells import (
+    DECIMAL_COMMA,
+    MISSING,
+    Block,
+    Chunk,
+    cell_number,
+    mostly_text,
+    times_of,
+)
 from trainer.read.csv_dialect import CsvLayout
 
 #: Bytes per CSV block: about 100,000 rows of ten numbers; bounds memory per block.
@@ -155,18 +162,9 @@ class CsvFile:
         cell = written.strip()
         if cell in MISSING:
             return
-        number = cell.replace(",", ".") if self.decimal == "," else cell
-        try:
-            v = float(number)
-        except ValueError:
-            hint = ""
-            if self.decimal == "." and DECIMAL_COMMA.match(cell):
-                hint = " (decimal comma? give --decimal ',')"
-            raise UserError(f"{self.path}: line {line}, column {name!r}: "
-                            f"{written!r} is not a number{hint}") from None
-        if not math.isfinite(v):
-            raise UserError(f"{self.path}: line {line}, column {name!r}: "
-                            f"{written!r} is not a finite number")
+        hint = (" (decimal comma? give --decimal ',')"
+                if self.decimal == "." and DECIMAL_COMMA.match(cell) else "")
+        cell_number(written, f"{self.path}: line {line}, column {name!r}", self.decimal, hint)
 
     def numeric_probe(self, columns: list[str]) -> list[str]:
         """Names among ``columns`` whose first rows are mostly not numbers."""

@@ -18,6 +18,7 @@ from trainer.read.cells import (
     BLOCK_ROWS,
     Block,
     Chunk,
+    cell_number,
     check_header,
     is_missing,
     mostly_text,
@@ -157,16 +158,8 @@ class ExcelSheet:
     def _number(self, value, sheet_row: int, column: str) -> float:
         if is_missing(value):
             return math.nan
-        where = f"{self.path}: sheet {self.sheet!r}, row {sheet_row}, column {column!r}"
-        if isinstance(value, bool) or not isinstance(value, int | float | str):
-            raise UserError(f"{where}: {value!r} is not a number")
-        try:
-            v = float(value.strip().replace(",", ".") if isinstance(value, str) else value)
-        except ValueError:
-            raise UserError(f"{where}: {value!r} is not a number") from None
-        if not math.isfinite(v):
-            raise UserError(f"{where}: {value!r} is not a finite number")
-        return v
+        return cell_number(value, f"{self.path}: sheet {self.sheet!r}, row {sheet_row}, "
+                                  f"column {column!r}", ",")
 
     def numeric_probe(self, columns: list[str]) -> list[str]:
         """Names among ``columns`` whose first 200 rows are mostly not numbers."""

@@ -9,12 +9,12 @@ it saves. (Measurements behind both limits: DEVELOPERS.md, "Measured limits".)
 
 from __future__ import annotations
 
-import os
 import sys
 
 from threadpoolctl import threadpool_info
 
 from service.kernels import KernelSpec
+from service.settings import usable_cores
 from trainer.exact.candidates import Curve, evaluate
 from trainer.validation.folds import EXACT_MAX_ROWS, Problem
 
@@ -30,7 +30,7 @@ class Runner:
     def __init__(self, n: int, quiet: bool, total_hint: int):
         from tqdm.auto import tqdm
 
-        self.cores = os.cpu_count() or 1
+        self.cores = usable_cores()
         self.bar = tqdm(total=total_hint, desc="tuning", unit="fit", leave=False,
                         disable=quiet or not sys.stderr.isatty(), file=sys.stderr)
         self.parallel = self.cores > 1 and PARALLEL_FROM <= n <= EXACT_MAX_ROWS

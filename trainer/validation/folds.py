@@ -24,10 +24,10 @@ from trainer.errors import UserError
 from trainer.exact.fit import Standardizer
 
 #: Above this many training rows, tuning uses k-fold CV on a subsample instead of exact LOO.
-#: One kernel's search needs about 13 decompositions (8 coarse widths, up to 2 edge
-#: extensions, 4 refinement steps, 1 for the ridge refinement); at 4,000 rows that keeps a
-#: single-kernel search under about two minutes on a 2-core machine (timings in
-#: DEVELOPERS.md, "Measured limits"; ``bench/tuning_bench.py`` measures them).
+#: One kernel's search needs up to 15 decompositions (8 coarse widths, up to 2 edge
+#: extensions, 4 bisection steps, 1 for the ridge refinement); the limit bounds that
+#: search's time (timings in DEVELOPERS.md, "Measured limits"; ``bench/tuning_bench.py``
+#: measures them).
 EXACT_MAX_ROWS = 4000
 #: Fallback: subsample size and number of folds.
 FALLBACK_ROWS = 2400
