@@ -23,7 +23,8 @@ from typing import NamedTuple
 import numpy as np
 
 from service.cautions import BEFORE_ACTING
-from service.model import Model, check_coverage
+from service.intervals import CoverageUnavailable
+from service.model import Model
 from service.text_safety import csv_cell
 from trainer.data import iter_chunks
 from trainer.errors import UserError
@@ -60,12 +61,11 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
     half = None
     if coverage is not None:
         try:
-            check_coverage(coverage)
-        except ValueError as exc:
+            half = model.half_width(coverage)
+        except CoverageUnavailable as exc:  # the rule the HTTP service refuses by too
+            raise UserError(str(exc)) from None
+        except ValueError as exc:  # outside (0, 1)
             raise UserError(f"--{exc}") from None
-        if not model.has_intervals:
-            raise UserError(f"{model.name} v{model.version} has no interval calibration")
-        half = model.half_width(coverage)
     chunks = iter_chunks(path, model.features, block_bytes=block_bytes)  # refuses a bad file first
     writer = csv.writer(out, lineterminator="\n", quoting=csv.QUOTE_NONNUMERIC)
     header = list(model.features) + [f"{t}_predicted" for t in model.targets]
