@@ -4,6 +4,8 @@ variable, a data cell) that cannot be used."""
 
 from __future__ import annotations
 
+from service.schemas import ErrorResponse
+
 
 class UserError(ValueError):
     """Something the user can fix (bad input, bad option): the command line shows it as one
@@ -22,4 +24,6 @@ class ApiError(Exception):
         self.details = details
 
     def body(self) -> dict:
-        return {"error": {"code": self.code, "message": self.message, "details": self.details}}
+        """The error body, through :class:`~service.schemas.ErrorResponse` (the document's)."""
+        return ErrorResponse.model_validate({"error": {
+            "code": self.code, "message": self.message, "details": self.details}}).model_dump()
