@@ -79,7 +79,7 @@ class Publisher(StoreReader):
                 }
             manifest = dict(manifest, schema=SCHEMA, model=name, arrays=listed)
             with self._locked(name):
-                existing = self.versions(name)
+                existing = self.version_numbers(name)
                 version = (max(existing) if existing else 0) + 1
                 manifest["version"] = version
                 (work / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")

@@ -95,10 +95,12 @@ class StoreReader:
     def models(self) -> list[str]:
         """Names of models that have at least one version (a folder a publisher is still
         filling, or one left without versions, is no model)."""
-        if not self.root.is_dir():
+        try:
+            names = os.listdir(self.root)
+        except OSError:  # no store yet, or not one this account may list: nothing to serve
             return []
-        return sorted(p.name for p in self.root.iterdir()
-                      if NAME_RE.fullmatch(p.name) and self._version_names(p / "versions"))
+        return sorted(n for n in names
+                      if NAME_RE.fullmatch(n) and self._version_names(self.root / n / "versions"))
 
     @staticmethod
     def _version_names(vdir: Path) -> list[str]:
@@ -109,11 +111,23 @@ class StoreReader:
             return []
 
     def versions(self, name: str) -> list[int]:
-        """Version numbers present, ascending (including broken ones: verify tells)."""
-        vdir = self.model_dir(name) / "versions"
-        if not vdir.is_dir():
+        """Version numbers present, ascending (including broken ones: verify tells);
+        NotFound when there is none: a folder without versions is no model."""
+        found = self.version_numbers(name)
+        if not found:
             raise NotFound(f"no model named {name!r}")
-        return sorted(int(n) for n in self._version_names(vdir))
+        return found
+
+    def version_numbers(self, name: str) -> list[int]:
+        """Version numbers present, ascending; [] when none (or no such folder)."""
+        return sorted(int(n) for n in self._version_names(self.model_dir(name) / "versions"))
+
+    def known(self, name: str) -> bool:
+        """True when ``name`` is a valid model name with at least one version."""
+        try:
+            return bool(self.version_numbers(name))
+        except StoreError:  # not a valid name
+            return False
 
     def live(self, name: str) -> dict | None:
         """Contents of live.json, or None when nothing was released yet.
