@@ -15,8 +15,8 @@ from pydantic import ValidationError
 from service.app_state import state
 from service.errors import ApiError
 from service.model import verifier
-from service.routes import json_response, model_name, not_found
-from service.schemas import ReleaseRequest
+from service.routes import model_name, model_response, not_found
+from service.schemas import ReleaseRequest, ReleaseResponse
 from service.store import NotFound, StoreError, Unwritable
 
 log = logging.getLogger("kridge.service")
@@ -51,7 +51,7 @@ def release(name: str):
     except StoreError as exc:
         log.warning("model %s: release of version %s refused: %s", name, body.version, exc)
         raise refusal(name, exc, "version_refused") from None
-    return json_response({"model": name, **rec})
+    return model_response(ReleaseResponse(model=name, **rec))
 
 
 @bp.post("/models/<name>/rollback")
@@ -62,7 +62,7 @@ def rollback(name: str):
         rec = store.rollback(name, check=verifier(store, name))
     except StoreError as exc:  # nothing earlier, damaged history, or a refused version
         raise refusal(name, exc, "rollback_refused") from None
-    return json_response({"model": name, **rec})
+    return model_response(ReleaseResponse(model=name, **rec))
 
 
 def refusal(name: str, exc: StoreError, code: str) -> ApiError:
