@@ -93,10 +93,9 @@ def ratios(rows: int) -> dict:
     one, auto = out[f"{rows} rbf"]["ratio"], out[f"{rows} auto"]["ratio"]
     low, high = out[f"{rows - 100} rbf"], out[f"{rows + 100} rbf"]
     print(f"one kernel {one:.2f} eighs (target <= 4); auto / one kernel {auto / one:.2f} "
-          f"(target <= 2.5); time at {rows + 100} / at {rows - 100} rows "
-          f"{high['tune_s'] / low['tune_s']:.2f}, in eighs of {rows}: "
-          f"{low['tune_s'] / out[f'{rows} rbf']['eigh_s']:.2f} → "
-          f"{high['tune_s'] / out[f'{rows} rbf']['eigh_s']:.2f}")
+          f"(target <= 2.5); eighs of their own size at {rows - 100} rows {low['ratio']:.2f}, "
+          f"at {rows + 100} rows {high['ratio']:.2f}; seconds {rows + 100} / {rows - 100} "
+          f"{high['tune_s'] / low['tune_s']:.2f} (the load moves this one)")
     return out
 
 
