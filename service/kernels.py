@@ -40,8 +40,7 @@ from service.l1_distance import scaled_l1
 
 __all__ = [
     "DISTANCES", "KERNEL_NAMES", "KERNEL_PARAMS", "KernelBlocks", "KernelSpec", "default_spec",
-    "finish_tile", "kernel_block", "kernel_matrix", "l1_distances", "row_sq_norms",
-    "sqdist_scale", "squared_distances",
+    "finish_tile", "kernel_block", "kernel_matrix", "l1_distances", "squared_distances",
 ]
 
 #: The distances a :class:`KernelBlocks` gives instead of a kernel: ‖q − x‖² and ‖q − x‖₁.
@@ -123,7 +122,7 @@ class KernelBlocks:
 
     # -- step 1: the query operand ---------------------------------------------------------
     def rows_buffer(self, m: int) -> np.ndarray:
-        """A float64 (m, width) buffer for Q̃ with its constant column already set."""
+        """A float64 (m, width) buffer for Q̃ with its constant column (of ones) already set."""
         out = np.empty((m, self.width))
         if self.uses == "sqdist":
             out[:, self.d + 1] = 1.0
