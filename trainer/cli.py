@@ -295,8 +295,8 @@ EXIT_BUG = 70
 #: Functions whose ValueError means "this argument is not allowed": the user's to fix.
 #: Every other ValueError is a bug in kridge and keeps its traceback.
 ARGUMENT_CHECKS = {
-    ("kernels.py", "__post_init__"),  # KernelSpec: unknown kernel, bad gamma/degree/coef0
-    ("kernels.py", "default_spec"),
+    ("kernel_spec.py", "__post_init__"),  # KernelSpec: unknown kernel, bad gamma/degree/coef0
+    ("kernel_spec.py", "default_spec"),
     ("intervals.py", "check_coverage"),  # --coverage outside (0, 1)
     ("settings.py", "_int"),  # KRIDGE_* environment variables
     ("settings.py", "_float"),
