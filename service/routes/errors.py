@@ -35,8 +35,8 @@ def http_error(exc: HTTPException, max_body_bytes: int):
 def unexpected(exc: Exception):
     log.exception("unhandled error on %s %s", request.method, request.path)
     metrics.ERRORS.labels("", "", "internal").inc()
-    return json_response({"error": {"code": "internal", "message": "internal error; "
-                                    "see the service log", "details": None}}, 500)
+    return json_response(ApiError(500, "internal", "internal error; see the service log")
+                         .body(), 500)
 
 
 def install(app: Flask, max_body_bytes: int) -> None:
