@@ -108,8 +108,8 @@ def calls(monkeypatch):
 
 def test_width_search_kmeans_and_novelty_go_through_the_blocks(calls):
     from trainer.envelope_stats import envelope_stats
-    from trainer.nystrom import pick_landmarks
-    from trainer.widths import width_range
+    from trainer.nystrom.numerics import pick_landmarks
+    from trainer.tuning.widths import width_range
 
     x = RNG.standard_normal((300, 4))
     width_range("rbf", x)
@@ -130,8 +130,8 @@ def test_width_search_kmeans_and_novelty_go_through_the_blocks(calls):
 
 
 def test_exact_fit_nystrom_and_engine_go_through_the_blocks(calls):
-    from trainer.fit import fit_exact
-    from trainer.nystrom import accumulate
+    from trainer.exact.fit import fit_exact
+    from trainer.nystrom.numerics import accumulate
 
     x = RNG.standard_normal((80, 3))
     y = np.sin(x[:, :1])
