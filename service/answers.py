@@ -4,6 +4,7 @@ request) and the feature at fault."""
 
 from __future__ import annotations
 
+import threading
 import time
 
 import numpy as np
@@ -13,11 +14,18 @@ from pydantic import ValidationError
 from service.cautions import OUTSIDE_ENVELOPE
 from service.errors import ApiError
 from service.model import Model
+from service.request_body import refuse_before_parsing, too_many_rows
 from service.schemas import MAX_INPUT, RowBatch
+
+#: One request of this process computes at a time: the worker's threads overlap waiting on
+#: slow sockets, never CPU, so workers × engine threads stay within the cores.
+COMPUTE_SLOT = threading.Lock()
 
 
 def parse_body(raw: bytes, max_rows: int) -> RowBatch:
-    """JSON bytes → validated request (structure, strict finite numbers, no extra keys)."""
+    """JSON bytes → validated request (structure, strict finite numbers, no extra keys);
+    a body with more arrays and objects than ``max_rows`` rows need is refused unparsed."""
+    refuse_before_parsing(raw, max_rows)
     try:
         data = orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
@@ -29,9 +37,7 @@ def parse_body(raw: bytes, max_rows: int) -> RowBatch:
                        'request body must be an object like {"rows": [...]}')
     rows = data.get("rows")
     if isinstance(rows, list) and len(rows) > max_rows:
-        raise ApiError(413, "too_many_rows",
-                       f"{len(rows)} rows in one request; the limit is {max_rows} "
-                       "(KRIDGE_MAX_ROWS)")
+        raise too_many_rows(len(rows), max_rows)
     quick = _plain_batch(data, rows)
     if quick is not None:
         return quick
@@ -157,9 +163,10 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
             raise ApiError(422, "coverage_too_high",
                            f"coverage {req.coverage} needs more than the {c} calibration "
                            f"residuals this model has; the largest usable is {c / (c + 1):.4f}")
-    t0 = time.perf_counter()
-    y, env = model.score(x)
-    compute = time.perf_counter() - t0
+    with COMPUTE_SLOT:
+        t0 = time.perf_counter()
+        y, env = model.score(x)
+        compute = time.perf_counter() - t0
     if not np.isfinite(y).all():  # JSON would carry it as null, silently
         i = int(np.argwhere(~np.isfinite(y))[0][0])
         raise ApiError(422, "prediction_not_finite",

@@ -1,4 +1,5 @@
-"""The one error type request handlers raise; the app turns it into the JSON error body."""
+"""The error type request handlers raise (the app turns it into the JSON error body), and
+the one a socket deadline raises."""
 
 from __future__ import annotations
 
@@ -15,3 +16,8 @@ class ApiError(Exception):
 
     def body(self) -> dict:
         return {"error": {"code": self.code, "message": self.message, "details": self.details}}
+
+
+class ClientTooSlow(TimeoutError):
+    """A client that did not send its request, or take its answer, within the worker's
+    deadline (:mod:`service.threaded_worker`); reading a body it ends in a 408."""
