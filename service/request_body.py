@@ -18,6 +18,7 @@ import numpy as np
 from service.errors import ApiError, ClientTooSlow
 
 _READ = 1 << 16
+_BLOCK = 1 << 20
 _SPACE = re.compile(rb"[ \t\r\n]*")
 _QUOTE, _BACKSLASH = 0x22, 0x5C
 _OPEN = (0x5B, 0x7B)  # [ {
@@ -62,25 +63,44 @@ def container_counts(raw: bytes) -> tuple[int, int]:
     strings left out; depth 1 is the body, 2 its members (the rows list), 3 the rows.
 
     A string runs from an unescaped ``"`` to the next; a quote is escaped when an odd run
-    of backslashes precedes it (RFC 8259 §7). Memory: a few bytes per body byte, and four
-    per bracket.
+    of backslashes precedes it (RFC 8259 §7). The bytes are scanned in blocks, carrying
+    the in-string parity and the depth across them, so memory beyond the body is one byte
+    per body byte (the quote mask) and a few per byte of one block.
     """
     b = np.frombuffer(raw, np.uint8)
+    quote = _real_quotes(b, raw)
+    total = rows = 0
+    inside, depth = np.uint8(0), 0
+    for at in range(0, b.size, _BLOCK):
+        part = b[at:at + _BLOCK]
+        parity = np.bitwise_xor.accumulate(quote[at:at + _BLOCK].view(np.uint8)) ^ inside
+        inside = parity[-1]
+        outside = parity == 0
+        opens = ((part == _OPEN[0]) | (part == _OPEN[1])) & outside
+        brackets = part[opens | (((part == _CLOSE[0]) | (part == _CLOSE[1])) & outside)]
+        if not brackets.size:
+            continue
+        is_open = (brackets == _OPEN[0]) | (brackets == _OPEN[1])
+        after = np.cumsum(is_open.astype(np.int8) * 2 - 1, dtype=np.int64) + depth
+        depth = int(after[-1])
+        total += int(np.count_nonzero(is_open))
+        rows += int(np.count_nonzero(is_open & (after == 3)))
+    return total, rows
+
+
+def _real_quotes(b: np.ndarray, raw: bytes) -> np.ndarray:
+    """Mask of the quotes that open or close a string (escaped ones left out)."""
     quote = b == _QUOTE
     if b'\\"' in raw:  # escaped quotes: rare, so their cost is paid only then
-        pos = np.arange(b.size, dtype=np.int32)
-        last_other = np.maximum.accumulate(np.where(b == _BACKSLASH, np.int32(-1), pos))
         q = np.flatnonzero(quote[1:]) + 1
-        quote[q[((q - 1) - last_other[q - 1]) % 2 == 1]] = False
-        del pos, last_other
-    outside = np.bitwise_xor.accumulate(quote.view(np.uint8)) == 0
-    del quote
-    opens = ((b == _OPEN[0]) | (b == _OPEN[1])) & outside
-    brackets = b[opens | (((b == _CLOSE[0]) | (b == _CLOSE[1])) & outside)]
-    del outside
-    is_open = (brackets == _OPEN[0]) | (brackets == _OPEN[1])
-    depth = np.cumsum(is_open.astype(np.int8) * 2 - 1, dtype=np.int32)  # after each bracket
-    return int(np.count_nonzero(opens)), int(np.count_nonzero(is_open & (depth == 3)))
+        q = q[b[q - 1] == _BACKSLASH]  # quotes right after a backslash
+        backslash = b == _BACKSLASH
+        starts = np.flatnonzero(backslash[1:] & ~backslash[:-1]) + 1  # runs of them
+        if backslash[0]:
+            starts = np.concatenate(([0], starts))
+        run = q - starts[np.searchsorted(starts, q - 1, side="right") - 1]
+        quote[q[run % 2 == 1]] = False
+    return quote
 
 
 def refuse_before_parsing(raw: bytes, max_rows: int) -> None:
