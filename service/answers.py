@@ -17,8 +17,10 @@ from service.model import Model
 from service.request_body import refuse_before_parsing, too_many_rows
 from service.schemas import MAX_INPUT, RowBatch
 
-#: One request of this process computes at a time: the worker's threads overlap waiting on
-#: slow sockets, never CPU, so workers × engine threads stay within the cores.
+#: One predict request of this process is parsed, computed and serialized at a time
+#: (:func:`service.routes.predict.answer`): the worker's threads overlap waiting on slow
+#: sockets, never CPU, so workers × engine threads stay within the cores, and a worker
+#: holds one request's parsed rows at a time, as the sizing formula assumes.
 COMPUTE_SLOT = threading.Lock()
 
 
@@ -163,10 +165,9 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
             raise ApiError(422, "coverage_too_high",
                            f"coverage {req.coverage} needs more than the {c} calibration "
                            f"residuals this model has; the largest usable is {c / (c + 1):.4f}")
-    with COMPUTE_SLOT:
-        t0 = time.perf_counter()
-        y, env = model.score(x)
-        compute = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    y, env = model.score(x)
+    compute = time.perf_counter() - t0
     if not np.isfinite(y).all():  # JSON would carry it as null, silently
         i = int(np.argwhere(~np.isfinite(y))[0][0])
         raise ApiError(422, "prediction_not_finite",

@@ -11,9 +11,9 @@ idle client must never hold what other callers need:
 - the body must arrive whole within :data:`BODY_SECONDS` of the head (else 408,
   :class:`service.errors.ClientTooSlow` through the app) and the answer must be taken within
   :data:`SEND_SECONDS` of its first byte (else the connection is closed);
-- one request per worker computes at a time (:data:`service.answers.COMPUTE_SLOT`), so the
-  threads overlap waiting on sockets, never CPU: workers × engine threads stay within the
-  cores as with one request per worker.
+- one predict request per worker is parsed and computed at a time
+  (:data:`service.answers.COMPUTE_SLOT`), so the threads overlap waiting on sockets, never
+  CPU: workers × engine threads stay within the cores, as with one request per worker.
 """
 
 from __future__ import annotations

@@ -171,3 +171,23 @@ def test_a_body_slower_than_its_deadline_gets_408(store):
         err = json.loads(rest.split(b"\r\n\r\n", 1)[1])["error"]
         assert err["code"] == "request_timeout" and "did not arrive" in err["message"]
         assert g.get("/healthz").status_code == 200
+
+
+def test_parsing_and_computing_hold_the_worker_slot(store, monkeypatch):
+    """A worker's threads wait on sockets side by side, but parse and compute one request
+    at a time (the cores and the sizing formula count one per worker)."""
+    from service.answers import COMPUTE_SLOT
+    from service.app import create_app
+    from service.routes import predict
+    from service.settings import Settings
+
+    held = []
+    parse, respond = predict.parse_body, predict.predict_response
+    monkeypatch.setattr(predict, "parse_body",
+                        lambda *a: held.append(COMPUTE_SLOT.locked()) or parse(*a))
+    monkeypatch.setattr(predict, "predict_response",
+                        lambda *a: held.append(COMPUTE_SLOT.locked()) or respond(*a))
+    client = create_app(Settings(store=str(store)), watch=False).test_client()
+    r = client.post("/models/c/predict", json={"rows": [list(TYPICAL_ROW.values())]})
+    assert r.status_code == 200 and held == [True, True]
+    assert not COMPUTE_SLOT.locked()

@@ -23,7 +23,7 @@ from flask import Blueprint, Response, request
 
 from service import metrics
 from service.access_log import LABELS, ROUTE, ROWS
-from service.answers import parse_body, predict_response
+from service.answers import COMPUTE_SLOT, parse_body, predict_response
 from service.app_state import AppState, state
 from service.errors import ApiError
 from service.model import Model
@@ -70,14 +70,15 @@ def answer(name: str, model: Model, raw: bytes, max_rows: int, t_start: float,
     count in ``environ``."""
     version = str(model.version)
     environ[LABELS] = labels = (name, version)
-    req = parse_body(raw, max_rows)
-    t_parsed = perf_counter()
-    body, compute = predict_response(model, req, t_start, t_parsed)
-    results = body["results"]
-    environ[ROWS] = len(results)
-    t = body["timing_ms"]
-    t["total"] = total = round((perf_counter() - t_start) * 1e3, 4)
-    payload = orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY)
+    with COMPUTE_SLOT:  # one request of this worker at a time; the socket work is outside
+        req = parse_body(raw, max_rows)
+        t_parsed = perf_counter()
+        body, compute = predict_response(model, req, t_start, t_parsed)
+        results = body["results"]
+        environ[ROWS] = len(results)
+        t = body["timing_ms"]
+        t["total"] = total = round((perf_counter() - t_start) * 1e3, 4)
+        payload = orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY)
     metrics.count_request(labels, results, compute, total / 1e3)  # last: nothing can fail
     # wire order; with Content-Type in the list werkzeug skips its mimetype work
     return payload, [
