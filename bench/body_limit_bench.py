@@ -20,21 +20,10 @@ sys.path[:0] = [str(ROOT), str(ROOT / "demo_data")]
 
 from bench.http_bench import workers_cpu  # noqa: E402
 from bench.machine import header  # noqa: E402
+from bench.sizing_bench import worker_pid  # noqa: E402
 from service.launch import Gunicorn  # noqa: E402
 
 BODY = b'{"rows": [' + b"[]," * 2_700_000 + b"[]]}"
-
-
-def worker_pid(master: int) -> int:
-    for entry in Path("/proc").iterdir():
-        if entry.name.isdigit():
-            try:
-                fields = (entry / "stat").read_text().rsplit(")", 1)[1].split()
-            except OSError:
-                continue
-            if int(fields[1]) == master:
-                return int(entry.name)
-    raise RuntimeError("no worker")
 
 
 def peak_mib(pid: int) -> float:

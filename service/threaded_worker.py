@@ -112,55 +112,45 @@ class DeadlineWorker(ThreadWorker):
         self.nr_conns += 1
         conn = TConn(self.cfg, DeadlineSocket(client), addr, listener.getsockname())
         conn.head = bytearray()
-        conn.head_done = False
         self.enqueue_req(conn)
 
     def enqueue_req(self, conn) -> None:
         """To a thread once the head is complete; until then in the event loop."""
-        if conn.head_done:
-            conn.head_done = False
-            super().enqueue_req(conn)
-            return
         if conn.parser is not None:  # a kept-alive connection: read-ahead comes first
             conn.head = bytearray(conn.parser.unreader.take_buffered())
         else:
             conn.head.clear()
         conn.timeout = time.monotonic() + HEAD_SECONDS
-        if self._head_complete(conn):
-            return
         conn.sock.setblocking(False)
-        self.pending_conns.append(conn)  # closed by gunicorn's murder_pending at the deadline
-        self.poller.register(conn.sock, selectors.EVENT_READ, partial(self._head_bytes, conn))
+        if self._read_head(conn, polled=False):  # most heads are there already
+            self.pending_conns.append(conn)  # gunicorn's murder_pending closes at the deadline
+            self.poller.register(conn.sock, selectors.EVENT_READ,
+                                 partial(self._read_head, conn, True))
 
-    def _head_bytes(self, conn, _sock) -> None:
-        """Readable during the head: take what arrived; hand over or keep waiting."""
-        try:
-            data = conn.sock.raw.recv(HEAD_LIMIT)
-        except (BlockingIOError, InterruptedError):
-            return
-        except OSError:
-            data = b""
-        if data:
-            conn.head += data
-            if _HEAD_END not in conn.head and len(conn.head) <= HEAD_LIMIT:
-                return  # still registered, still on the deadline's list
-        self.poller.unregister(conn.sock)
-        self.pending_conns.remove(conn)
-        if not data:  # the client left
-            self.nr_conns -= 1
-            conn.close()
-            return
-        self._head_complete(conn)
-
-    def _head_complete(self, conn) -> bool:
-        """Hand ``conn`` to a thread when its head is whole (or too large to wait for)."""
+    def _read_head(self, conn, polled: bool, _sock=None) -> bool:
+        """Take what has arrived; hand the connection to a thread once its head is whole
+        (or too large to wait for), close it when the client left. True while waiting."""
         head = conn.head
         if _HEAD_END not in head and len(head) <= HEAD_LIMIT:
+            try:
+                data = conn.sock.raw.recv(HEAD_LIMIT)
+            except (BlockingIOError, InterruptedError):
+                return True
+            except OSError:
+                data = b""
+            head += data
+            if data and _HEAD_END not in head and len(head) <= HEAD_LIMIT:
+                return True
+        if polled:
+            self.poller.unregister(conn.sock)
+            self.pending_conns.remove(conn)
+        if not head or (_HEAD_END not in head and len(head) <= HEAD_LIMIT):  # client left
+            self.nr_conns -= 1
+            conn.close()
             return False
-        conn.head_done = True
         conn.data_ready = True  # gunicorn's own wait for a first byte is over
-        self.enqueue_req(conn)
-        return True
+        super().enqueue_req(conn)
+        return False
 
     def handle(self, conn):
         """In the thread: give the buffered head to gunicorn's parser, start the body's

@@ -10,13 +10,10 @@ from pathlib import Path
 
 import requests
 from make_coating_data import TYPICAL_ROW
-from service_helpers import Gunicorn, metric_count, metric_samples
+from service_helpers import Gunicorn, metric_count, metric_samples, small_model_store
 
 from service.metrics import UNKNOWN_MODEL
-from trainer.cli import main
 
-ARGS = ["--target", "hardness_s", "--features", ",".join(TYPICAL_ROW), "--gamma", "0.2",
-        "--ridge", "0.5", "--no-report", "--quiet"]
 NAMES = 3000
 
 
@@ -24,10 +21,8 @@ def folder_bytes(path: Path) -> int:
     return sum(f.stat().st_size for f in path.iterdir())
 
 
-def test_random_model_names_add_no_series(tmp_path, small_csv):
-    store = tmp_path / "store"
-    assert main(["train", str(small_csv), "--name", "c", "--release", "--store", str(store),
-                 *ARGS]) == 0
+def test_random_model_names_add_no_series(tmp_path, demo_csv):
+    store = small_model_store(tmp_path, demo_csv)
     metrics_dir = tmp_path / "metrics"
     metrics_dir.mkdir()
     rng = random.Random(5)

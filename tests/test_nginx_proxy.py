@@ -16,13 +16,9 @@ from pathlib import Path
 import pytest
 import requests
 from make_coating_data import TYPICAL_ROW
-from service_helpers import ROOT, Gunicorn, free_port, wait_for
-
-from trainer.cli import main
+from service_helpers import ROOT, Gunicorn, free_port, small_model_store, wait_for
 
 NGINX = shutil.which("nginx") or "/usr/sbin/nginx"
-ARGS = ["--target", "hardness_s", "--features", ",".join(TYPICAL_ROW), "--gamma", "0.2",
-        "--ridge", "0.5", "--no-report", "--quiet"]
 
 if not os.access(NGINX, os.X_OK):
     if os.environ.get("CI"):
@@ -86,12 +82,7 @@ class Nginx:
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory, demo_csv):
-    root = tmp_path_factory.mktemp("nginx")
-    csv = root / "small.csv"
-    csv.write_text("\n".join(demo_csv.read_text().splitlines()[:61]) + "\n")
-    assert main(["train", str(csv), "--name", "c", "--release", "--store",
-                 str(root / "store"), *ARGS]) == 0
-    return root / "store"
+    return small_model_store(tmp_path_factory.mktemp("nginx"), demo_csv)
 
 
 def test_nginx_buffers_slow_clients_and_keeps_the_error_shape(store, tmp_path):

@@ -14,7 +14,7 @@ import requests
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from make_coating_data import TYPICAL_ROW
-from service_helpers import ROOT, Gunicorn
+from service_helpers import ROOT, Gunicorn, small_model_store
 
 from service import answers
 from service.app import create_app
@@ -22,22 +22,14 @@ from service.errors import ApiError
 from service.request_body import container_counts
 from service.routes import predict
 from service.settings import Settings
-from trainer.cli import main
 
-ARGS = ["--target", "hardness_s", "--features", ",".join(TYPICAL_ROW), "--gamma", "0.2",
-        "--ridge", "0.5", "--no-report", "--quiet"]
 #: 2.7 million empty rows: 8.1 MB, inside the default 8 MiB body limit.
 EMPTY_ROWS = b'{"rows": [' + b"[]," * 2_700_000 + b"[]]}"
 
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory, demo_csv):
-    root = tmp_path_factory.mktemp("limits")
-    csv = root / "small.csv"
-    csv.write_text("\n".join(demo_csv.read_text().splitlines()[:61]) + "\n")
-    assert main(["train", str(csv), "--name", "c", "--release", "--store",
-                 str(root / "store"), *ARGS]) == 0
-    return root / "store"
+    return small_model_store(tmp_path_factory.mktemp("limits"), demo_csv)
 
 
 @pytest.fixture

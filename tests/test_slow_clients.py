@@ -17,13 +17,10 @@ import time
 
 import pytest
 from make_coating_data import TYPICAL_ROW
-from service_helpers import Gunicorn, wait_for
+from service_helpers import Gunicorn, small_model_store, wait_for
 
 from service.threaded_worker import HEAD_SECONDS, SEND_SECONDS
-from trainer.cli import main
 
-ARGS = ["--target", "hardness_s", "--features", ",".join(TYPICAL_ROW), "--gamma", "0.2",
-        "--ridge", "0.5", "--no-report", "--quiet"]
 #: Rows of the never-read answer: about 6 MB of JSON, more than the kernel buffers on both
 #: sides of a localhost connection hold (4 MiB send buffer at most, tcp_wmem), so the
 #: server's send really blocks.
@@ -32,12 +29,7 @@ BIG_ROWS = 40_000
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory, demo_csv):
-    root = tmp_path_factory.mktemp("slow")
-    csv = root / "small.csv"
-    csv.write_text("\n".join(demo_csv.read_text().splitlines()[:61]) + "\n")
-    assert main(["train", str(csv), "--name", "c", "--release", "--store",
-                 str(root / "store"), *ARGS]) == 0
-    return root / "store"
+    return small_model_store(tmp_path_factory.mktemp("slow"), demo_csv)
 
 
 def closed_by_server(sock: socket.socket, seconds: float) -> bool:
