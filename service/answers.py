@@ -13,6 +13,7 @@ from pydantic import ValidationError
 
 from service.cautions import OUTSIDE_ENVELOPE
 from service.errors import ApiError
+from service.intervals import CoverageUnavailable
 from service.model import Model
 from service.request_body import refuse_before_parsing, too_many_rows
 from service.schemas import MAX_INPUT, RowBatch
@@ -155,16 +156,10 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
     x = rows_to_array(req, model)
     half = None
     if req.coverage is not None:
-        if not model.has_intervals:
-            raise ApiError(422, "no_intervals",
-                           f"model {model.name} v{model.version} stores no interval "
-                           "calibration; retrain it with a holdout or leave out coverage")
-        half = model.half_width(req.coverage)
-        if not np.isfinite(half).all():
-            c = model.residuals.shape[0]
-            raise ApiError(422, "coverage_too_high",
-                           f"coverage {req.coverage} needs more than the {c} calibration "
-                           f"residuals this model has; the largest usable is {c / (c + 1):.4f}")
+        try:
+            half = model.half_width(req.coverage)
+        except CoverageUnavailable as exc:  # the rule kridge predict refuses by too
+            raise ApiError(422, exc.code, str(exc)) from None
     t0 = time.perf_counter()
     y, env = model.score(x)
     compute = time.perf_counter() - t0

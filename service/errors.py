@@ -3,6 +3,8 @@ the one a socket deadline raises."""
 
 from __future__ import annotations
 
+from service.schemas import ErrorResponse
+
 
 class ApiError(Exception):
     """A 4xx answer: ``{"error": {"code", "message", "details"}}``."""
@@ -15,7 +17,9 @@ class ApiError(Exception):
         self.details = details
 
     def body(self) -> dict:
-        return {"error": {"code": self.code, "message": self.message, "details": self.details}}
+        """The error body, through :class:`~service.schemas.ErrorResponse` (the document's)."""
+        return ErrorResponse.model_validate({"error": {
+            "code": self.code, "message": self.message, "details": self.details}}).model_dump()
 
 
 class ClientTooSlow(TimeoutError):

@@ -7,6 +7,9 @@ smallest |r|, the finite-sample rank of split conformal prediction (Lei, G'Sell,
 Tibshirani & Wasserman, "Distribution-free predictive inference for regression", JASA 2018;
 cited from memory).
 When that rank exceeds c the interval is unbounded: c residuals cannot support the coverage.
+A served model refuses such a coverage (:func:`bounded_half_width`): over HTTP, in
+``kridge predict`` and in the OpenAPI document alike, with the words of
+:func:`coverage_limit`.
 """
 
 from __future__ import annotations
@@ -50,3 +53,41 @@ def largest_coverage(c: int) -> float:
     while math.ceil((c + 1) * cov) > c:
         cov = math.nextafter(cov, 0.0)
     return cov
+
+
+class CoverageUnavailable(ValueError):
+    """A coverage the model's calibration cannot give: no calibration at all
+    (``code`` "no_intervals") or too few residuals for it ("coverage_too_high"). The message
+    says why and, for the second, the largest coverage the model can give."""
+
+    def __init__(self, code: str, message: str):
+        super().__init__(message)
+        self.code = code
+
+
+def coverage_limit(c: int) -> str:
+    """The rule in words, for refusals and the OpenAPI document: which coverages ``c``
+    residuals can give."""
+    return (f"{c} calibration residuals give a finite interval up to coverage "
+            f"{largest_coverage(c)!r} (the half-width is the ⌈(c + 1)·coverage⌉-th smallest "
+            "residual, so ⌈(c + 1)·coverage⌉ must not exceed c)")
+
+
+def bounded_half_width(sorted_abs: np.ndarray | None, coverage: float, who: str
+                       ) -> np.ndarray:
+    """:func:`half_width` of a served model, refusing what it cannot give.
+
+    ValueError unless 0 < coverage < 1; :class:`CoverageUnavailable` when ``sorted_abs`` is
+    None (no calibration) or when the rank ⌈(c + 1)·coverage⌉ exceeds c, where the plain rule
+    would answer an unbounded interval. ``who`` names the model in the message.
+    """
+    if sorted_abs is None:
+        raise CoverageUnavailable("no_intervals",
+                                  f"{who} stores no interval calibration; retrain it with a "
+                                  "holdout or leave out coverage")
+    c = sorted_abs.shape[0]
+    if conformal_rank(c, coverage) is None:
+        raise CoverageUnavailable("coverage_too_high",
+                                  f"coverage {coverage!r} is more than {who} can give: "
+                                  + coverage_limit(c))
+    return half_width(sorted_abs, coverage)

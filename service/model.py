@@ -126,11 +126,11 @@ class Model:
         """Interval half-width per target for a nominal ``coverage``.
 
         The ⌈(c+1)·coverage⌉-th smallest of the c calibration residuals |r|
-        (:mod:`service.intervals`). Infinite when c is too small.
+        (:mod:`service.intervals`). :class:`~service.intervals.CoverageUnavailable` when the
+        model has no calibration or c is too small for ``coverage``.
         """
-        if self.residuals is None:
-            raise StoreError(f"{self.name} v{self.version} stores no interval calibration")
-        return intervals.half_width(self.residuals, coverage)
+        return intervals.bounded_half_width(self.residuals, coverage,
+                                            f"{self.name} v{self.version}")
 
     def _check(self, x) -> np.ndarray:
         x = np.asarray(x, dtype=np.float64)

@@ -13,9 +13,12 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from markupsafe import Markup
+
 from service.kernels import KernelSpec
 from service.metrics import RowCounts
 from service.store import Store, StoreError
+from service.text_safety import html_name
 
 
 def safe_message(store: Store, exc: Exception) -> str:
@@ -145,7 +148,8 @@ def _intervals(manifest: dict) -> tuple[str, list[str]]:
     """(method in words, measured coverage per nominal level) of a version's intervals.
 
     The coverage lines are the trainer's check on rows neither the fit nor the calibration
-    saw: "90 %: 91.0 % on 400 rows" (per target when there are several).
+    saw: "90 %: 91.0 % on 400 rows" (per target when there are several: HTML then, each
+    target name isolated in ``<bdi>``).
     """
     info = manifest.get("intervals")
     if not isinstance(info, dict):
@@ -157,9 +161,11 @@ def _intervals(manifest: dict) -> tuple[str, list[str]]:
         try:
             measured = [f"{100 * float(v):.1f} %" for v in level["empirical"]]
             if len(measured) == len(targets) > 1:
-                measured = [f"{t} {m}" for t, m in zip(targets, measured, strict=True)]
-            lines.append(f"{100 * float(level['nominal']):g} %: {', '.join(measured)} "
-                         f"on {int(level['rows'])} rows")
+                measured = [Markup("{} {}").format(html_name(str(t)), m)
+                            for t, m in zip(targets, measured, strict=True)]
+            lines.append(Markup("{} %: {} on {} rows").format(
+                f"{100 * float(level['nominal']):g}", Markup(", ").join(measured),
+                int(level["rows"])))
         except (KeyError, TypeError, ValueError):
             continue
     return method, lines

@@ -14,12 +14,14 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import orjson
+from markupsafe import Markup
 
 from service.answers import parse_body, predict_response
 from service.envelope import NOVELTY_QUANTILE
 from service.errors import ApiError
 from service.model import Model
 from service.page_data import number
+from service.text_safety import html_name
 
 #: Coverage offered in the form when the version stores interval calibration.
 DEFAULT_COVERAGE = 0.9
@@ -75,7 +77,7 @@ class Outcome:
     coverage: str = ""  # the intervals' nominal coverage, "90 %"
     inside: bool = True
     outside: set[str] = field(default_factory=set)  # features out of their training range
-    verdict: list[str] = field(default_factory=list)
+    verdict: list[str] = field(default_factory=list)  # HTML: names isolated (Markup)
     caution: str | None = None
     error: str | None = None
 
@@ -117,14 +119,18 @@ def try_row(model: Model, row: dict[str, float], coverage: float | None,
 
 def verdict(envelope: dict, k: int) -> list[str]:
     """The envelope report in sentences: which feature is out of range and by how much, and
-    how novel the row is (k-th nearest training row distance over the calibrated threshold)."""
+    how novel the row is (k-th nearest training row distance over the calibrated threshold).
+
+    A line naming a feature is HTML (Markup), the name escaped inside ``<bdi>``, so a
+    right-to-left name cannot reorder the figures that follow it; the others are text."""
     pct = f"{100 * NOVELTY_QUANTILE:g} %"
     lines = []
     for feature, flag in envelope["out_of_range"].items():
         value, lo, hi = flag["value"], flag["min"], flag["max"]
         side, by = ("above", value - hi) if value > hi else ("below", lo - value)
-        lines.append(f"Out of range: {feature} = {number(value, 6)} is {side} its training "
-                     f"range {number(lo, 6)} to {number(hi, 6)} by {number(by, 4)}.")
+        lines.append(Markup("Out of range: {} = {} is {} its training range {} to {} by {}.")
+                     .format(html_name(feature), number(value, 6), side, number(lo, 6),
+                             number(hi, 6), number(by, 4)))
     score = envelope["novelty"]
     if envelope["novel"]:
         lines.append(f"Novel row: novelty {number(score, 3)}. Its {ordinal(k)} nearest "

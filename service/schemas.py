@@ -1,9 +1,16 @@
-"""Request and response shapes (pydantic). The same classes validate requests and generate
-``/openapi.json``, so the document cannot drift from what the service accepts."""
+"""Request and answer shapes (pydantic), the one source of ``/openapi.json``'s schemas.
+
+Requests are validated by these classes; every answer but the predict route's is built
+through them (:func:`service.routes.model_response`), so the document cannot drift from what
+the service accepts or says. The predict answer is shaped by :mod:`service.answers` on the
+hot path without pydantic; a test holds real answers to the generated schema. Answers are
+closed (``additionalProperties: false``): a field a route adds must be declared here first.
+Fields with a default are the ones an answer may leave out.
+"""
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field
 
@@ -40,13 +47,19 @@ class RowBatch(Strict):
     )
 
 
-class RangeFlag(BaseModel):
+class Answer(BaseModel):
+    """An answer's shape: no undeclared field (the route fails its test, not the client)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+
+class RangeFlag(Answer):
     value: float
     min: float
     max: float
 
 
-class Envelope(BaseModel):
+class Envelope(Answer):
     inside: bool = Field(description="Inside every training range and not novel.")
     out_of_range: dict[str, RangeFlag] = Field(
         description="Features outside their training range, with the training min and max."
@@ -58,7 +71,7 @@ class Envelope(BaseModel):
     novel: bool = Field(description="novelty > 1")
 
 
-class Result(BaseModel):
+class Result(Answer):
     value: float | list[float] = Field(description="Prediction in raw units; a list per row "
                                        "when the model has several targets.")
     interval: list[float] | list[list[float]] | None = Field(
@@ -67,13 +80,13 @@ class Result(BaseModel):
     envelope: Envelope
 
 
-class Timing(BaseModel):
-    parse: float
-    compute: float
-    total: float
+class Timing(Answer):
+    parse: float = Field(description="Milliseconds reading and checking the body.")
+    compute: float = Field(description="Milliseconds computing predictions and envelope.")
+    total: float = Field(description="Milliseconds from the request's start to the answer.")
 
 
-class PredictionBatch(BaseModel):
+class PredictionBatch(Answer):
     model: str
     version: int
     results: list[Result]
@@ -83,13 +96,14 @@ class PredictionBatch(BaseModel):
     )
 
 
-class ErrorBody(BaseModel):
+class ErrorBody(Answer):
     code: str = Field(description="Short machine-readable reason, e.g. invalid_row.")
     message: str = Field(description="What is wrong, naming the row and feature at fault.")
-    details: list[dict] | dict | None = None
+    details: list[dict[str, Any]] | dict[str, Any] | None = Field(
+        description="What the message names, field by field (row, feature, allowed values).")
 
 
-class ErrorResponse(BaseModel):
+class ErrorResponse(Answer):
     error: ErrorBody
 
 
@@ -108,59 +122,80 @@ class ReleaseRequest(Strict):
     version: Annotated[int, Field(ge=1, le=MAX_VERSION), BeforeValidator(_whole_number)]
 
 
-class ReleaseResponse(BaseModel):
+class ReleaseResponse(Answer):
+    """The history record the release or rollback wrote, with the model's name."""
+
     model: str
     time: str
+    action: Literal["release", "rollback"]
     version: int
     previous: int | None
-    action: str
+    repaired: str | None = Field(
+        None, description="Present when the release repaired a damaged live.json or history.")
+    restart: bool | None = Field(
+        None, description="Present (true) when rollback starts anew from this record.")
 
 
-class VersionInfo(BaseModel):
+class VersionInfo(Answer):
     version: int
     created: str | None
     live: bool
     kernel: str | None
-    metrics: dict | None
-    fault: str | None = None
+    metrics: dict[str, Any] | None
+    fault: str | None = Field(
+        None, description="Present when the version's manifest cannot be read: why.")
 
 
-class VersionsResponse(BaseModel):
+class VersionsResponse(Answer):
     model: str
     live_version: int | None
     versions: list[VersionInfo]
 
 
-class ModelEntry(BaseModel):
+class ModelEntry(Answer):
     name: str
     live_version: int | None
     versions: list[int]
 
 
-class ModelsResponse(BaseModel):
+class ModelsResponse(Answer):
     models: list[ModelEntry]
 
 
-class ModelSummary(BaseModel):
+class KernelInfo(Answer):
+    name: str
+    params: dict[str, int | float] = Field(description="gamma, degree, coef0 as the kernel "
+                                           "takes them (README, Concepts).")
+
+
+class Range(Answer):
+    min: float
+    max: float
+
+
+class ModelSummary(Answer):
     model: str
     version: int
     created: str | None
     features: list[str]
     targets: list[str]
-    kernel: dict
+    kernel: KernelInfo
     ridge: float
     training_rows: int | None
-    metrics: dict | None
-    ranges: dict[str, dict[str, float]]
-    novelty: dict
-    intervals: bool
+    metrics: dict[str, Any] | None
+    ranges: dict[str, Range] = Field(description="Each feature's training range.")
+    novelty: dict[str, Any] = Field(description="How the novelty score is calibrated.")
+    intervals: bool = Field(description="Whether the version can answer a coverage.")
 
 
-class Health(BaseModel):
+class Health(Answer):
     up: bool
 
 
-class Readiness(BaseModel):
-    ready: bool
-    models: dict[str, int | None]
-    problems: dict[str, str] = {}
+class Readiness(Answer):
+    ready: bool = Field(description="Every live model is served at its live version and no "
+                        "drain is running.")
+    draining: bool = Field(description="A SIGTERM drain is running: still answering, but "
+                           "the balancer should send no more.")
+    models: dict[str, int | None] = Field(description="The version each model is served at.")
+    problems: dict[str, str] = Field(description="Why a model is not ready, by name.")

@@ -3,12 +3,19 @@
 from __future__ import annotations
 
 import csv
+import re
 
 import numpy as np
 import pytest
 from sklearn.datasets import make_friedman1
 
-from service.intervals import conformal_rank, half_width, largest_coverage
+from service.intervals import (
+    CoverageUnavailable,
+    bounded_half_width,
+    conformal_rank,
+    half_width,
+    largest_coverage,
+)
 from service.model import load_model
 from trainer.calibration import conformal_half_width, interval_coverage
 from trainer.train import TrainOptions, train
@@ -81,3 +88,17 @@ def test_one_quantile_rule_for_trainer_loaded_model_and_document():
     for bad in (0.0, 1.0, -0.1, 1.5, float("nan")):
         with pytest.raises(ValueError, match="coverage"):
             conformal_rank(10, bad)
+
+
+def test_a_served_model_refuses_what_its_calibration_cannot_give():
+    srt = np.arange(1.0, 21.0)[:, None]  # 20 residuals 1 … 20
+    top = largest_coverage(20)
+    assert bounded_half_width(srt, top, "m v1")[0] == 20.0  # rank ⌈21·20/21⌉ = 20
+    with pytest.raises(CoverageUnavailable, match=re.escape(f"up to coverage {top!r}")) as exc:
+        bounded_half_width(srt, 0.9524, "m v1")  # 20/21 rounded up: rank 21 of 20
+    assert exc.value.code == "coverage_too_high" and "m v1" in str(exc.value)
+    with pytest.raises(CoverageUnavailable, match="no interval calibration") as exc:
+        bounded_half_width(None, 0.9, "m v1")
+    assert exc.value.code == "no_intervals"
+    with pytest.raises(ValueError, match="between 0 and 1"):
+        bounded_half_width(srt, 1.0, "m v1")

@@ -47,8 +47,8 @@ def test_verdict_names_feature_side_and_distance():
     env = {"inside": False, "novelty": 0.62, "novel": False,
            "out_of_range": {"humidity_pct": {"value": 12.0, "min": 20.0, "max": 85.0}}}
     lines = verdict(env, 5)
-    assert lines[0] == ("Out of range: humidity_pct = 12 is below its training range 20 to 85 "
-                        "by 8.")
+    assert lines[0] == ("Out of range: <bdi>humidity_pct</bdi> = 12 is below its training "
+                        "range 20 to 85 by 8.")
     assert lines[1].startswith("Not novel: novelty 0.62")
     novel = verdict({"inside": False, "novelty": 1.5, "novel": True, "out_of_range": {}}, 5)
     assert novel[0].startswith("Novel row: novelty 1.5. Its 5th nearest training row")

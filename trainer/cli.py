@@ -16,6 +16,7 @@ import sys
 from service.model import PRECISIONS, verifier
 from service.settings import DEFAULT_STORE
 from service.store import NotFound, Store, StoreError, check_version
+from service.text_safety import visible
 from trainer.errors import UserError
 
 EXIT_USER = 2
@@ -48,11 +49,11 @@ def cmd_train(args) -> int:
 
     def log(*a, **k):
         if not args.quiet:
-            print(*a, file=sys.stderr, **k)
+            print(*map(visible, map(str, a)), file=sys.stderr, **k)
 
     summary = train(opts, log=log)
     for warning in summary["warnings"]:  # even with --quiet: they concern the model itself
-        print(f"warning: {warning}", file=sys.stderr)
+        print(f"warning: {visible(warning)}", file=sys.stderr)
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
@@ -160,7 +161,7 @@ def cmd_verify(args) -> int:
             print(f"{args.model} v{v}: ok")
         except StoreError as exc:
             faults += 1
-            print(f"{args.model} v{v}: FAULT: {exc}", file=sys.stderr)
+            print(f"{args.model} v{v}: FAULT: {visible(str(exc))}", file=sys.stderr)
     return EXIT_FAULT if faults else 0
 
 
@@ -319,13 +320,11 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return args.func(args)
     except (UserError, StoreError) as exc:
-        print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_USER
+        return _user_error(args.command, exc)
     except ValueError as exc:
         if not _is_argument_check(exc):
             return _bug(args.command)
-        print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_USER
+        return _user_error(args.command, exc)
     except BrokenPipeError:
         # output piped into e.g. `head`, which exited: stop quietly, as other Unix tools do;
         # point stdout at /dev/null so the interpreter's final flush does not fail again
@@ -333,12 +332,17 @@ def main(argv: list[str] | None = None) -> int:
         os.dup2(devnull, sys.stdout.fileno())
         return 141
     except OSError as exc:  # unreadable/unwritable paths the user named: one line
-        print(f"kridge {args.command}: error: {exc}", file=sys.stderr)
-        return EXIT_USER
+        return _user_error(args.command, exc)
     except KeyboardInterrupt:
         return 130
     except Exception:
         return _bug(args.command)
+
+
+def _user_error(command: str, exc: BaseException) -> int:
+    """The one line on stderr for a mistake of the user's (names shown escaped)."""
+    print(f"kridge {command}: error: {visible(str(exc))}", file=sys.stderr)
+    return EXIT_USER
 
 
 def _bug(command: str) -> int:

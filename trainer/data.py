@@ -19,6 +19,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from service.text_safety import name_refusal
 from trainer.errors import UserError
 from trainer.reader import BLOCK_BYTES, Chunk, Source
 
@@ -141,7 +142,10 @@ def row_counts(read: int, with_target: int, dropped: int, used: int,
 
 def feature_names(src: Source, targets: list[str], features: list[str] | None,
            time: str | None) -> list[str]:
-    """Resolve and check feature names; the default is every other numeric column."""
+    """Resolve and check feature names; the default is every other numeric column.
+
+    Every name used (targets, features, time) must pass :func:`service.text_safety.name_refusal`.
+    """
     for group, names in (("target", targets), ("feature", features or [])):
         if len(set(names)) != len(names):
             raise UserError(f"{group} columns list a name twice: {', '.join(names)}")
@@ -163,6 +167,9 @@ def feature_names(src: Source, targets: list[str], features: list[str] | None,
         raise UserError(f"column(s) {', '.join(sorted(overlap))} cannot be feature and target")
     if not features:
         raise UserError(f"{src.path}: no feature columns left besides the target(s)")
+    refusal = name_refusal([*targets, *features, *([time] if time else [])], src.header)
+    if refusal:
+        raise UserError(f"{src.path}: {refusal}")
     return features
 
 

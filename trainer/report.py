@@ -3,6 +3,9 @@
 Everything is inside the file — plots are PNG images embedded as base64 data URIs and the
 style sheet is inline — so the report opens offline and can be mailed or archived as is.
 Plots use matplotlib's non-interactive Agg backend (no display needed).
+Names from the data are shown literally: in plots through
+:func:`service.text_safety.plot_label` (no mathtext), in the HTML escaped inside ``<bdi>``
+(:func:`service.text_safety.html_name`).
 """
 
 from __future__ import annotations
@@ -16,6 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from service.cautions import BEFORE_ACTING
+from service.text_safety import html_name, plot_label
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
 from trainer.cautions import R2_POOR, poor_holdout
 
@@ -56,9 +60,10 @@ def _table(headers: list[str], rows: list[list], left: int = 1) -> str:
 
 
 def _span_text(span: dict | None) -> str:
+    """The time span as HTML (the column name isolated)."""
     if not span:
         return "– (no --time column: random holdout)"
-    return f"{span['column']}: {span['start']} → {span['end']}"
+    return html_name(span["column"]) + f": {span['start']} → {span['end']}"  # str part escaped
 
 
 class _Raw(str):
@@ -80,6 +85,7 @@ def _pyplot():
     import matplotlib
 
     matplotlib.use("Agg", force=True)
+    matplotlib.rcParams["text.usetex"] = False  # a site's matplotlibrc must not make names TeX
     import matplotlib.pyplot as plt
 
     return plt
@@ -119,7 +125,8 @@ def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
         ax.set_title(f"{name}" + ("" if not finite else f" (γ {lo:.3g} → {hi:.3g}, dark → light)"),
                      fontsize=9)
     label = tuning.get("error_label", "LOO RMSE")
-    axes[0][0].set_ylabel(f"{label} ({targets[0]})" if single else f"{label} / SD (mean)")
+    axes[0][0].set_ylabel(f"{label} ({plot_label(targets[0])})" if single
+                          else f"{label} / SD (mean)")
     fig.tight_layout()
     return _png(fig)
 
@@ -134,12 +141,12 @@ def _parity_and_hist(actual: np.ndarray, predicted: np.ndarray, targets: list[st
         ax.scatter(a, p, s=8, alpha=0.6)
         lo, hi = float(min(a.min(), p.min())), float(max(a.max(), p.max()))
         ax.plot([lo, hi], [lo, hi], color="k", lw=1)
-        ax.set_xlabel(f"actual {name}")
-        ax.set_ylabel(f"predicted {name}")
+        ax.set_xlabel(f"actual {plot_label(name)}")
+        ax.set_ylabel(f"predicted {plot_label(name)}")
         ax.set_title("holdout: predicted against actual", fontsize=9)
         ax = axes[j][1]
         ax.hist(a - p, bins=30, color="slategray")
-        ax.set_xlabel(f"residual (actual − predicted) {name}")
+        ax.set_xlabel(f"residual (actual − predicted) {plot_label(name)}")
         ax.set_ylabel("rows")
         ax.set_title("holdout residuals", fontsize=9)
     fig.tight_layout()
@@ -157,7 +164,7 @@ def _residuals_in_time(time: np.ndarray, actual: np.ndarray, predicted: np.ndarr
         ax = axes[j][0]
         ax.plot(x, actual[:, j] - predicted[:, j], ".", ms=3, color="slategray")
         ax.axhline(0.0, color="k", lw=1)
-        ax.set_ylabel(f"residual {name}")
+        ax.set_ylabel(f"residual {plot_label(name)}")
         ax.set_title("holdout residuals in time order (the most recent rows)", fontsize=9)
     fig.autofmt_xdate()
     fig.tight_layout()
@@ -171,7 +178,7 @@ def _calib_hist(calib: np.ndarray, targets: list[str]) -> str:
     for j, name in enumerate(targets):
         ax = axes[0][j]
         ax.hist(calib[:, j], bins=30, color="slategray")
-        ax.set_xlabel(f"|LOO residual| {name}")
+        ax.set_xlabel(f"|LOO residual| {plot_label(name)}")
         ax.set_ylabel("rows")
     fig.tight_layout()
     return _png(fig)
@@ -181,7 +188,7 @@ def _metrics_rows(metrics: dict) -> list[list]:
     rows = []
     for kind in ("loo", "holdout"):
         for target, m in (metrics.get(kind) or {}).items():
-            rows.append([_Raw(_esc(kind)), _Raw(_esc(target)), m["rmse"], m["mae"], m["r2"],
+            rows.append([_Raw(_esc(kind)), _Raw(html_name(target)), m["rmse"], m["mae"], m["r2"],
                          m["rows"]])
     return rows
 
@@ -233,11 +240,11 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
         [_Raw("rows read"), _Raw(_esc((tr.get("row_counts") or {}).get("summary", "–")))],
         [_Raw("method"), _Raw(_esc(f"{tr.get('method', 'exact')}: "
                                    f"{tr.get('method_reason', '')}"))],
-        [_Raw("time span"), _Raw(_esc(_span_text(tr.get("time"))))],
+        [_Raw("time span"), _Raw(_span_text(tr.get("time")))],
         [_Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
                                f" seed {tr.get('seed')})"],
-        [_Raw("features"), _Raw(_esc(", ".join(manifest["features"])))],
-        [_Raw("targets"), _Raw(_esc(", ".join(targets)))],
+        [_Raw("features"), _Raw(", ".join(map(html_name, manifest["features"])))],
+        [_Raw("targets"), _Raw(", ".join(map(html_name, targets)))],
         [_Raw("final fit"), _Raw(_esc(tr.get("final_fit", "")))],
     ], left=2))
 
@@ -303,7 +310,7 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
             note = ("half-widths from the stored calibration residuals (these include the "
                     "holdout rows, so the check is optimistic)")
         if cov:
-            rows = [[_Raw(_esc(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
+            rows = [[_Raw(html_name(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
                      c["rows"]] for c in cov for j, t in enumerate(targets)]
             parts.append(_table(["target", "nominal", "holdout coverage", "half-width",
                                  "rows"], rows))
@@ -319,7 +326,7 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
     rows = []
     for j, f in enumerate(manifest["features"]):
         r = env.get("ranges", {}).get(f, {})
-        rows.append([_Raw(_esc(f)), r.get("min"), r.get("max"),
+        rows.append([_Raw(html_name(f)), r.get("min"), r.get("max"),
                      (std.get("mean") or [None] * (j + 1))[j],
                      (std.get("scale") or [None] * (j + 1))[j]])
     parts.append(_table(["feature", "min", "max", "mean", "scale (SD)"], rows))

@@ -4,6 +4,11 @@ Output columns: the model's features as read, then ``<target>_predicted`` for ea
 ``<target>_lower``/``<target>_upper`` when a coverage is asked, then the envelope flags
 ``inside``, ``novelty`` and ``out_of_range`` (feature names joined by ``;``).
 
+Numbers are written as plain numbers; every text cell (header, ``inside``, ``out_of_range``)
+is quoted and goes through :func:`service.text_safety.csv_cell`, so a name such as
+``=cmd|' /C calc'!A0`` reaches a spreadsheet as text, and a ``;`` inside a name cannot start
+a new cell where a spreadsheet splits on ``;``.
+
 How many rows fell outside the training envelope is returned with the row count;
 :func:`envelope_note` words it for stderr, with the caution people need before acting on
 extrapolated numbers.
@@ -18,7 +23,9 @@ from typing import NamedTuple
 import numpy as np
 
 from service.cautions import BEFORE_ACTING
-from service.model import Model, check_coverage
+from service.intervals import CoverageUnavailable
+from service.model import Model
+from service.text_safety import csv_cell
 from trainer.data import iter_chunks
 from trainer.errors import UserError
 from trainer.reader import BLOCK_BYTES
@@ -54,19 +61,18 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
     half = None
     if coverage is not None:
         try:
-            check_coverage(coverage)
-        except ValueError as exc:
+            half = model.half_width(coverage)
+        except CoverageUnavailable as exc:  # the rule the HTTP service refuses by too
+            raise UserError(str(exc)) from None
+        except ValueError as exc:  # outside (0, 1)
             raise UserError(f"--{exc}") from None
-        if not model.has_intervals:
-            raise UserError(f"{model.name} v{model.version} has no interval calibration")
-        half = model.half_width(coverage)
     chunks = iter_chunks(path, model.features, block_bytes=block_bytes)  # refuses a bad file first
-    writer = csv.writer(out, lineterminator="\n")
+    writer = csv.writer(out, lineterminator="\n", quoting=csv.QUOTE_NONNUMERIC)
     header = list(model.features) + [f"{t}_predicted" for t in model.targets]
     if half is not None:
         for t in model.targets:
             header += [f"{t}_lower", f"{t}_upper"]
-    writer.writerow(header + ["inside", "novelty", "out_of_range"])
+    writer.writerow([csv_cell(h) for h in header] + ["inside", "novelty", "out_of_range"])
     bar = _progress(quiet)
     total = outside = 0
     for _start, x in chunks:
@@ -81,8 +87,9 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
             cols.append(bounds)
         numbers = np.hstack(cols)
         for row, e in zip(numbers, env, strict=True):
-            writer.writerow([repr(float(v)) for v in row] + [
-                "true" if e["inside"] else "false", e["novelty"], ";".join(e["out_of_range"])])
+            writer.writerow(row.tolist() + [  # floats: unquoted, written with repr
+                "true" if e["inside"] else "false", e["novelty"],
+                ";".join(csv_cell(f) for f in e["out_of_range"])])
         total += x.shape[0]
         outside += sum(not e["inside"] for e in env)
         if bar is not None:

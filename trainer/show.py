@@ -1,14 +1,22 @@
-"""Plain-text presentation for the command line: tables and manifest summaries."""
+"""Plain-text presentation for the command line: tables and manifest summaries.
+
+Every cell and value printed here goes through :func:`service.text_safety.visible`: names
+from the data (and from stores written before the name rule) never send a raw control or
+bidirectional character to the terminal.
+"""
 
 from __future__ import annotations
 
 import sys
 
+from service.text_safety import visible
+
 
 def table(headers: list[str], rows: list[list], out=None) -> None:
     """Print an aligned text table."""
     out = out or sys.stdout
-    cells = [[str(c) for c in headers]] + [["" if c is None else str(c) for c in r] for r in rows]
+    cells = [[visible(str(c)) for c in headers]] + [
+        ["" if c is None else visible(str(c)) for c in r] for r in rows]
     widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
     for k, r in enumerate(cells):
         print("  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip(), file=out)
@@ -84,7 +92,7 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
 def print_pairs(pairs: list[tuple[str, str]], out=None) -> None:
     width = max(len(k) for k, _ in pairs)
     for k, v in pairs:
-        print(f"{k.ljust(width)}  {v}", file=out or sys.stdout)
+        print(f"{k.ljust(width)}  {visible(str(v))}", file=out or sys.stdout)
 
 
 def precision_line(precision: str, check: dict | None) -> str:

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import orjson
 from flask import Response
+from pydantic import BaseModel
 
 from service.app_state import state
 from service.errors import ApiError
@@ -14,6 +15,12 @@ from service.store import StoreError, check_name
 def json_response(body, status: int = 200, headers: dict | None = None) -> Response:
     return Response(orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY), status=status,
                     headers=headers, content_type="application/json")
+
+
+def model_response(answer: BaseModel, status: int = 200) -> Response:
+    """An answer built through its :mod:`service.schemas` class, the one the document shows;
+    optional fields the route did not set are left out, as the schema allows."""
+    return json_response(answer.model_dump(exclude_unset=True), status)
 
 
 def model_name(name: str) -> str:

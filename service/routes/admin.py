@@ -13,8 +13,8 @@ from pydantic import ValidationError
 from service.app_state import state
 from service.errors import ApiError
 from service.model import verifier
-from service.routes import json_response, model_name, not_found
-from service.schemas import ReleaseRequest
+from service.routes import model_name, model_response, not_found
+from service.schemas import ReleaseRequest, ReleaseResponse
 from service.store import NotFound, StoreError
 
 log = logging.getLogger("kridge.service")
@@ -51,7 +51,7 @@ def release(name: str):
     except StoreError as exc:
         log.warning("model %s: release of version %s refused: %s", name, body.version, exc)
         raise ApiError(409, "version_refused", str(exc)) from None
-    return json_response({"model": name, **rec})
+    return model_response(ReleaseResponse(model=name, **rec))
 
 
 @bp.post("/models/<name>/rollback")
@@ -64,4 +64,4 @@ def rollback(name: str):
         raise not_found(name, exc) from None
     except StoreError as exc:  # nothing earlier, damaged history, or a refused version
         raise ApiError(409, "rollback_refused", str(exc)) from None
-    return json_response({"model": name, **rec})
+    return model_response(ReleaseResponse(model=name, **rec))

@@ -8,8 +8,9 @@ import logging
 from flask import Blueprint, Response
 
 from service import drain, metrics
+from service import schemas as s
 from service.app_state import state
-from service.routes import json_response, model_name, not_found
+from service.routes import model_name, model_response, not_found
 from service.store import StoreError
 
 log = logging.getLogger("kridge.service")
@@ -18,7 +19,7 @@ bp = Blueprint("discovery", __name__)
 
 @bp.get("/healthz")
 def healthz():
-    return json_response({"up": True})
+    return model_response(s.Health(up=True))
 
 
 @bp.get("/readyz")
@@ -26,8 +27,8 @@ def readyz():
     ready, served, problems = state().models.readiness()
     draining = drain.active()  # after SIGTERM: the balancer should send no more
     ready = ready and not draining
-    return json_response({"ready": ready, "draining": draining, "models": served,
-                          "problems": problems}, 200 if ready else 503)
+    return model_response(s.Readiness(ready=ready, draining=draining, models=served,
+                                      problems=problems), 200 if ready else 503)
 
 
 @bp.get("/models")
@@ -36,11 +37,11 @@ def list_models():
     out = []
     for name in store.models():
         try:
-            out.append({"name": name, "live_version": store.live_version(name),
-                        "versions": store.versions(name)})
+            out.append(s.ModelEntry(name=name, live_version=store.live_version(name),
+                                    versions=store.versions(name)))
         except StoreError as exc:
             log.warning("model %s skipped in listing: %s", name, exc)
-    return json_response({"models": out})
+    return model_response(s.ModelsResponse(models=out))
 
 
 @bp.get("/models/<name>")
@@ -50,14 +51,14 @@ def describe(name: str):
     except StoreError as exc:
         raise not_found(name, exc) from None
     man = m.manifest
-    return json_response({
-        "model": m.name, "version": m.version, "created": man.get("created"),
-        "features": m.features, "targets": m.targets, "kernel": man["kernel"],
-        "ridge": man["ridge"], "training_rows": man.get("training", {}).get("rows"),
-        "metrics": man.get("metrics"), "ranges": man["envelope"]["ranges"],
-        "novelty": man["envelope"]["novelty"],
-        "intervals": m.has_intervals,
-    })
+    return model_response(s.ModelSummary(
+        model=m.name, version=m.version, created=man.get("created"),
+        features=m.features, targets=m.targets, kernel=man["kernel"],
+        ridge=man["ridge"], training_rows=man.get("training", {}).get("rows"),
+        metrics=man.get("metrics"), ranges=man["envelope"]["ranges"],
+        novelty=man["envelope"]["novelty"],
+        intervals=m.has_intervals,
+    ))
 
 
 @bp.get("/models/<name>/versions")
@@ -73,12 +74,12 @@ def list_versions(name: str):
     for v in versions:
         try:
             man = store.read_manifest(name, v)
-            rows.append({"version": v, "created": man.get("created"), "live": v == live,
-                         "kernel": man["kernel"]["name"], "metrics": man.get("metrics")})
+            rows.append(s.VersionInfo(version=v, created=man.get("created"), live=v == live,
+                                      kernel=man["kernel"]["name"], metrics=man.get("metrics")))
         except StoreError as exc:
-            rows.append({"version": v, "created": None, "live": v == live, "kernel": None,
-                         "metrics": None, "fault": str(exc)})
-    return json_response({"model": name, "live_version": live, "versions": rows})
+            rows.append(s.VersionInfo(version=v, created=None, live=v == live, kernel=None,
+                                      metrics=None, fault=str(exc)))
+    return model_response(s.VersionsResponse(model=name, live_version=live, versions=rows))
 
 
 @bp.get("/openapi.json")

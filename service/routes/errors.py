@@ -50,8 +50,8 @@ def too_slow(exc: ClientTooSlow):
 def unexpected(exc: Exception):
     log.exception("unhandled error on %s %s", request.method, request.path)
     metrics.ERRORS.labels("", "", "internal").inc()
-    return json_response({"error": {"code": "internal", "message": "internal error; "
-                                    "see the service log", "details": None}}, 500)
+    return json_response(ApiError(500, "internal", "internal error; see the service log")
+                         .body(), 500)
 
 
 def install(app: Flask, max_body_bytes: int) -> None:
