@@ -4,7 +4,8 @@ For a few trained rbf models, a real gunicorn (one worker, so each figure is one
 is measured from /proc while requests arrive:
 
 - the worker's anonymous (private) memory once the model is loaded;
-- the model's array files, memory-mapped: page cache shared by all workers of a host;
+- the model's array files' file-backed memory (the store reads arrays into the worker, so
+  this stays near zero; the arrays count in the worker's private memory);
 - the rise of the worker's peak memory (VmHWM) during a request of many rows;
 - the worker's CPU seconds per request, for 1-row and 64-row requests;
 - apart from HTTP, the engine's CPU per (query row, training row) pair: ``predict`` on a
@@ -90,18 +91,19 @@ def plan(n: int, d: int, *, targets: int = 1, workers: int = 2, max_rows: int = 
          c: Constants = RECORDED) -> dict[str, float]:
     """Memory and CPU one replica needs.
 
-    memory = M + L + W·(B + b·n·d + R·(e + f·d)) + 8·(n·d + min(n, 2000)·d + 2·n·t)
+    memory = M + L + W·(B + b·n·d + R·(e + f·d) + 8·(n·d + min(n, 2000)·d + 2·n·t))
         M the master, L the shared libraries, W workers of B apart from the model and b per
         training value, R the most rows one request may carry (every worker may hold such
-        a request at once), the last term the memory-mapped arrays, counted once: the page
-        cache is shared by the workers and charged once to a container.
+        a request at once), the last term the arrays, which every worker reads into its own
+        memory and checksums there (the store's reader; the novelty reference is freed
+        after the load, so the term is an upper bound).
     cores  = rate·(c0 + r·(c1 + n·(c2 + c3·d))) / u
         rate requests per second of r rows each, u the utilisation to plan for (headroom
         for bursts and for the autoscaler to act before latency grows).
     """
     per_worker = (c.worker_base + c.worker_per_value * n * d
                   + max_rows * (c.request_per_row + c.request_per_value * d))
-    memory = c.master + c.libraries + workers * per_worker + model_file_bytes(n, d, targets)
+    memory = c.master + c.libraries + workers * (per_worker + model_file_bytes(n, d, targets))
     cpu_s = c.cpu_per_request + rows_per_request * (
         c.cpu_per_row + n * (c.cpu_per_pair + c.cpu_per_pair_feature * d))
     return {"memory_bytes": memory, "cpu_seconds_per_request": cpu_s,

@@ -17,6 +17,7 @@ from __future__ import annotations
 import logging
 import os
 import threading
+import weakref
 from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -33,6 +34,25 @@ class LiveSlot:
     wanted: int | None = None  # version live.json names
     model: Model | None = None  # version being served
     problem: str | None = None  # why ``wanted`` is not being served
+    refused: str | None = None  # reason class when ``wanted`` failed verification
+
+
+class Gate:
+    """The lock one bundle's load is taken under; held in a weak-value table, so it lives
+    only while some thread loads (or waits for) that bundle and the table stays as small as
+    the loads under way, however many versions are asked for."""
+
+    __slots__ = ("lock", "__weakref__")
+
+    def __init__(self):
+        self.lock = threading.Lock()
+
+
+def fault_kind(exc: BaseException) -> str:
+    """The reason class of a failed load (see :data:`service.store.names.FAULT_KINDS`)."""
+    if isinstance(exc, StoreError):
+        return exc.kind
+    return "unreadable" if isinstance(exc, OSError) else "damaged"
 
 
 class LiveModels:
@@ -51,7 +71,9 @@ class LiveModels:
         self.on_load_failure = on_load_failure
         self._lock = threading.Lock()  # guards the pinned cache
         self._refreshing = threading.Lock()  # one refresh pass at a time
-        self._loading: dict[tuple[str, int], threading.Lock] = {}  # one load per bundle
+        # one load per bundle at a time; entries vanish when no thread holds them
+        self._loading: weakref.WeakValueDictionary[tuple[str, int], Gate] = (
+            weakref.WeakValueDictionary())
         self.loads = 0  # bundles loaded here (live and pinned)
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
@@ -66,8 +88,10 @@ class LiveModels:
         """Load one bundle, or take it from the pinned cache; never the same one twice at
         once (a second caller waits for the first and shares its result)."""
         with self._lock:
-            gate = self._loading.setdefault((name, version), threading.Lock())
-        with gate:
+            gate = self._loading.get((name, version))
+            if gate is None:
+                gate = self._loading[(name, version)] = Gate()
+        with gate.lock:
             model = self._cached_pinned(name, version)
             if model is None:
                 model = load_model(self.store, name, version)
@@ -84,9 +108,11 @@ class LiveModels:
             path = self.store.model_dir(name) / "live.json"
             try:
                 st = os.stat(path)
-                stamp = (st.st_ino, st.st_mtime_ns, st.st_size)
+                stamp = (st.st_ino, st.st_mtime_ns, st.st_size, st.st_mode)
             except FileNotFoundError:
                 stamp = None
+            except OSError as exc:  # a loop, a folder on the way that is a file: read tells
+                stamp = ("unreadable", exc.errno)
             if stamp == slot.stamp:
                 continue
             slot.stamp = stamp
@@ -97,18 +123,19 @@ class LiveModels:
                 continue
             slot.wanted = version
             if version is None or (slot.model is not None and slot.model.version == version):
-                slot.problem = None
+                slot.problem = slot.refused = None
                 continue
             try:
                 model = self._load(name, version)
             except (StoreError, OSError, ValueError) as exc:
                 slot.problem = f"version {version} was not loaded: {exc}"
+                slot.refused = fault_kind(exc)
                 log.error("model %s: live version %s refused: %s", name, version, exc)
                 if self.on_load_failure is not None:
                     self.on_load_failure(name, version, str(exc))
                 continue
             slot.model = model  # the swap: requests see old or new, never half
-            slot.problem = None
+            slot.problem = slot.refused = None
             log.info("model %s: now serving version %s", name, version)
 
     def start(self, interval: float) -> None:
@@ -144,6 +171,14 @@ class LiveModels:
                 why = slot.problem if slot and slot.problem else "no version is live yet"
                 raise NotFound(f"model {name!r} has nothing to serve: {why}")
         return slot.model
+
+    def refused(self, name: str, version: int | None) -> str | None:
+        """The reason class when ``version`` (the live one) was refused here, else None
+        (also None while it is still loading)."""
+        slot = self.slots.get(name)
+        if slot is None or slot.refused is None or slot.wanted != version:
+            return None
+        return slot.refused
 
     def loaded(self, name: str) -> Model | None:
         """The live model when it is loaded already, else None; never loads or waits."""

@@ -1,8 +1,8 @@
 """A loaded, verified model version: the object behind ``load_model``.
 
 Prediction in raw units is f(x) = k(s(x), X_s)·α + mean, where s is the stored
-standardization (README, "Concepts"). Arrays are memory-mapped read-only, so processes that
-load the same version share one copy in the page cache.
+standardization (README, "Concepts"). Arrays are read into the process and checksummed
+there (:mod:`service.store.arrays`): what is served is what was verified.
 """
 
 from __future__ import annotations

@@ -179,6 +179,8 @@ def _admin_paths(name: dict) -> dict:
         **_error("404"), **_error("422"),
         **_error("409", "Valid, but the store's state does not allow it (the version fails "
                         "verification, nothing earlier to roll back to, damaged history)"),
+        **_error("503", "This service cannot write the store (a read-only mount, no write "
+                        "permission, a full disk); nothing was changed"),
     }
     admin = [{"bearer": []}]
     return {

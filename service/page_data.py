@@ -11,6 +11,7 @@ store's root is removed from them all the same (:func:`safe_message`).
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 from markupsafe import Markup
@@ -98,14 +99,17 @@ class ModelLine:
     scores: list[Score] = field(default_factory=list)
     flags: FlagShare | None = None
     problem: str | None = None
+    refused: str | None = None  # reason class when this worker refused the live version
 
 
-def overview(store: Store, served: dict[str, int | None],
-             counts: dict[str, RowCounts]) -> list[ModelLine]:
+def overview(store: Store, served: dict[str, int | None], counts: dict[str, RowCounts],
+             refused: Callable[[str, int | None], str | None] = lambda *_: None
+             ) -> list[ModelLine]:
     """Every model in the store: live version and since when, the live version's kernel,
     training rows and held-out error, and its flagged share of predicted rows.
 
-    ``served`` maps a model to the version loaded in this worker (``LiveModels.readiness``).
+    ``served`` maps a model to the version loaded in this worker (``LiveModels.readiness``);
+    ``refused(name, version)`` says why this worker refused that version (``LiveModels.refused``).
     """
     lines = []
     for name in store.models():
@@ -114,6 +118,7 @@ def overview(store: Store, served: dict[str, int | None],
             entry = store.live(name)
             if entry is not None:
                 line.live, line.since = entry["version"], entry.get("since")
+                line.refused = refused(name, line.live)
                 man = store.read_manifest(name, line.live)
                 line.kernel = kernel_text(man)
                 line.rows = number((man.get("training") or {}).get("rows"), 12)

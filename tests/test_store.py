@@ -60,7 +60,9 @@ def test_round_trip_predictions_are_identical(store_dir, small_csv):
     arrays = st.load_arrays("coat", version, st.read_manifest("coat", version))
     assert np.array_equal(arrays["dual"], in_memory.dual)
     assert np.array_equal(arrays["x_train"], in_memory.x_s)
-    assert isinstance(arrays["x_train"], np.memmap)  # memory-mapped, shared between workers
+    # read into the process, not mapped: a file changed in place cannot reach it
+    assert not isinstance(arrays["x_train"], np.memmap)
+    assert not arrays["x_train"].flags.writeable
 
 
 def test_manifest_holds_what_the_readme_describes(store_dir, small_csv):
@@ -210,9 +212,7 @@ def test_publish_refuses_object_arrays(store_dir):
     bad = np.array([1.0, "x"], dtype=object)
     with pytest.raises(StoreError, match="object array"):
         Store(store_dir).publish("coat", {}, {"x_train": bad})
-    assert not (store_dir / "coat" / "versions").exists() or not any(
-        (store_dir / "coat" / "versions").iterdir())
-    assert not any((store_dir / "coat" / ".staging").iterdir())
+    assert not (store_dir / "coat").exists()  # a failed first publish leaves no folder
 
 
 def test_manifest_naming_another_version_is_refused(two_versions):

@@ -15,7 +15,7 @@ import sys
 
 from service.model import PRECISIONS, verifier
 from service.settings import DEFAULT_STORE
-from service.store import NotFound, Store, StoreError, check_version
+from service.store import Store, StoreError, check_version
 from service.text_safety import visible
 from trainer.errors import UserError
 
@@ -125,12 +125,7 @@ def _resolve_version(st: Store, name: str, version) -> int:
     if version is not None:
         return check_version(version)
     live = st.live_version(name)
-    if live is None:
-        versions = st.versions(name)
-        if not versions:
-            raise NotFound(f"model {name!r} has no versions")
-        return versions[-1]
-    return live
+    return st.versions(name)[-1] if live is None else live
 
 
 def cmd_inspect(args) -> int:
@@ -159,9 +154,10 @@ def cmd_verify(args) -> int:
         try:
             verify(st, args.model, v)
             print(f"{args.model} v{v}: ok")
-        except StoreError as exc:
+        except (StoreError, OSError) as exc:  # a fault of the store, never a kridge bug
             faults += 1
-            print(f"{args.model} v{v}: FAULT: {visible(str(exc))}", file=sys.stderr)
+            why = str(exc) if isinstance(exc, StoreError) else exc.strerror or type(exc).__name__
+            print(f"{args.model} v{v}: FAULT: {visible(why)}", file=sys.stderr)
     return EXIT_FAULT if faults else 0
 
 
@@ -190,7 +186,16 @@ def cmd_predict(args) -> int:
 def cmd_serve(args) -> int:
     from service.launch import serve
 
-    return serve(bind=args.bind, workers=args.workers, store=args.store)
+    return serve(bind=args.bind, workers=_workers(args.workers), store=args.store)
+
+
+def _workers(text: str | None) -> int | None:
+    """``--workers``: a whole number of at least 1 (ASCII digits), None when not given."""
+    if text is None:
+        return None
+    if not (text.isascii() and text.isdigit()) or int(text) < 1:
+        raise UserError(f"--workers must be a whole number of at least 1, not {text!r}")
+    return int(text)
 
 
 def cmd_demo(args) -> int:
@@ -279,7 +284,7 @@ def build_parser() -> argparse.ArgumentParser:
     s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
     s.add_argument("--bind", default=None,
                    help="HOST:PORT (default $KRIDGE_BIND or 127.0.0.1:8000)")
-    s.add_argument("--workers", type=int, default=None,
+    s.add_argument("--workers", default=None,
                    help="worker processes (default $KRIDGE_WORKERS, else one per usable core, "
                         "at least 2)")
 

@@ -33,6 +33,6 @@ def model_name(name: str) -> str:
 
 def not_found(name: str, exc: StoreError) -> ApiError:
     """404 for a lookup that failed; never the store's folder in the message."""
-    if not state().store.model_dir(name).is_dir():
+    if not state().store.known(name):
         return ApiError(404, "model_not_found", f"no model named {name!r}")
     return ApiError(404, "model_not_found", str(exc))

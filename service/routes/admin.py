@@ -1,5 +1,7 @@
 """Release and rollback over HTTP, behind a bearer token (disabled when none is set).
-Both verify the version first, as ``kridge release`` does."""
+Both verify the version first, as ``kridge release`` does. A refusal is a 409 (the store's
+state does not allow it) or a 503 (this service cannot write the store: a read-only mount,
+no write permission, a full disk), never a 500."""
 
 from __future__ import annotations
 
@@ -15,7 +17,7 @@ from service.errors import ApiError
 from service.model import verifier
 from service.routes import model_name, model_response, not_found
 from service.schemas import ReleaseRequest, ReleaseResponse
-from service.store import NotFound, StoreError
+from service.store import NotFound, StoreError, Unwritable
 
 log = logging.getLogger("kridge.service")
 bp = Blueprint("admin", __name__)
@@ -46,11 +48,9 @@ def release(name: str):
                        'send {"version": N} with N a positive integer') from None
     try:
         rec = store.release(name, body.version, check=verifier(store, name))
-    except NotFound as exc:
-        raise not_found(name, exc) from None
     except StoreError as exc:
         log.warning("model %s: release of version %s refused: %s", name, body.version, exc)
-        raise ApiError(409, "version_refused", str(exc)) from None
+        raise refusal(name, exc, "version_refused") from None
     return model_response(ReleaseResponse(model=name, **rec))
 
 
@@ -60,8 +60,16 @@ def rollback(name: str):
     name = model_name(name)
     try:
         rec = store.rollback(name, check=verifier(store, name))
-    except NotFound as exc:
-        raise not_found(name, exc) from None
     except StoreError as exc:  # nothing earlier, damaged history, or a refused version
-        raise ApiError(409, "rollback_refused", str(exc)) from None
+        raise refusal(name, exc, "rollback_refused") from None
     return model_response(ReleaseResponse(model=name, **rec))
+
+
+def refusal(name: str, exc: StoreError, code: str) -> ApiError:
+    """The answer to a release or rollback the store refused: 404 for an unknown model or
+    version, 503 when this service cannot write the store, else 409 with ``code``."""
+    if isinstance(exc, NotFound):
+        return not_found(name, exc)
+    if isinstance(exc, Unwritable):
+        return ApiError(503, "store_unwritable", str(exc))
+    return ApiError(409, code, str(exc))

@@ -114,14 +114,9 @@ def page_view(view):
         name = kwargs.get("name")
         store = _services()[0]
         try:
-            if name is not None:
-                try:
-                    known = (store.model_dir(name) / "versions").is_dir()
-                except StoreError:  # not a valid model name
-                    known = False
-                if not known:
-                    return _problem_page("Not found",
-                                         f"There is no model named {name!r} here.", 404)
+            if name is not None and not store.known(name):
+                return _problem_page("Not found", f"There is no model named {name!r} here.",
+                                     404)
             return view(**kwargs)
         except StoreError as exc:
             status = 404 if isinstance(exc, NotFound) else 503
@@ -140,7 +135,7 @@ def page_view(view):
 def overview_page():
     store, models, _ = _services()
     _, served, _ = models.readiness()
-    lines = overview(store, served, metrics.row_counts())
+    lines = overview(store, served, metrics.row_counts(), models.refused)
     return render_template("overview.html", models=lines, counted_since=metrics.counted_since())
 
 
@@ -156,6 +151,7 @@ def model_page(name: str):
     return render_template("model.html", name=name, live=live,
                            since=entry.get("since") if entry else None,
                            served=served.model.version if served and served.model else None,
+                           refused=models.refused(name, live),
                            cards=cards, score_keys=score_keys(cards), events=events,
                            history_problem=history_problem)
 
@@ -196,18 +192,13 @@ def report(name: str, version: str):
     """The version's training report, read-only; JSON 404 like the other /models routes."""
     store, _, _ = _services()
     try:
-        path = store.report_path(check_name(name), check_version(version))
+        body = store.read_report(check_name(name), check_version(version))
     except StoreError as exc:
         message = (f"model {name!r} has no version {version}" if isinstance(exc, NotFound)
                    else safe_message(store, exc))
         raise ApiError(404, "report_not_found", message) from None
-    if path is None:
+    if body is None:
         raise ApiError(404, "report_not_found",
                        f"{name} v{version} has no training report (trained without one)")
-    try:
-        body = path.read_bytes()
-    except OSError:
-        raise ApiError(404, "report_not_found", f"{name} v{version}: the report cannot be "
-                       "read") from None
     return Response(body, content_type="text/html; charset=utf-8",
                     headers={"Content-Security-Policy": REPORT_POLICY})

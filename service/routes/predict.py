@@ -29,7 +29,7 @@ from service.errors import ApiError
 from service.model import Model
 from service.request_body import read_body
 from service.routes import model_name, not_found
-from service.store import NotFound, StoreError
+from service.store import NotFound, StoreError, check_version
 from service.store.names import valid_name
 
 bp = Blueprint("predict", __name__)
@@ -53,10 +53,11 @@ def chosen_model(name: str, environ: dict) -> Model:
     try:
         if pinned is None:
             return models.live(name)
-        if not pinned.isdigit() or int(pinned) < 1:
-            raise ApiError(400, "invalid_version",
-                           f"version must be a positive integer, got {pinned!r}")
-        return models.pinned_version(name, int(pinned))
+        try:
+            version = check_version(pinned)
+        except StoreError as exc:
+            raise ApiError(400, "invalid_version", str(exc)) from None
+        return models.pinned_version(name, version)
     except NotFound as exc:
         raise not_found(name, exc) from None
     except StoreError as exc:

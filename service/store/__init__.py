@@ -22,6 +22,7 @@ from service.store.names import (
     Conflict,
     NotFound,
     StoreError,
+    Unwritable,
     check_name,
     check_version,
     now_iso,
@@ -36,4 +37,5 @@ class Store(Publisher, Releases):
 
 
 __all__ = ["ARRAY_NAME_RE", "NAME_RE", "SCHEMA", "STAGING", "Conflict", "NotFound", "Store",
-           "StoreError", "check_name", "check_version", "now_iso", "sha256_file", "store_root"]
+           "StoreError", "Unwritable", "check_name", "check_version", "now_iso", "sha256_file",
+           "store_root"]

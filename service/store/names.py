@@ -11,16 +11,39 @@ from service.settings import default_store
 
 SCHEMA = 1
 NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
+#: A version as text: ASCII digits only (str.isdigit also takes '²' and other scripts'
+#: digits, which int() then refuses), at most nine of them.
+VERSION_RE = re.compile(r"[0-9]{1,9}")
+#: The same rule for a JSON Schema ``pattern`` (the OpenAPI document).
+VERSION_PATTERN = f"^{VERSION_RE.pattern}$"
 ARRAY_NAME_RE = re.compile(r"[A-Za-z0-9_]{1,64}")
 STAGING = ".staging"
 
 
 class StoreError(Exception):
-    """A store operation that cannot be done; the message is meant for the user."""
+    """A store operation that cannot be done; the message is meant for the user.
+
+    ``kind`` is the reason class people see beside a refused version (the pages): one of
+    :data:`FAULT_KINDS`.
+    """
+
+    def __init__(self, message: str, kind: str = "damaged"):
+        super().__init__(message)
+        self.kind = kind
+
+
+#: Reason classes of a refused version, as the pages show them.
+FAULT_KINDS = ("checksum", "unreadable", "not a regular file", "symbolic link", "missing file",
+               "damaged")
 
 
 class NotFound(StoreError):
     """A model or version that does not exist."""
+
+
+class Unwritable(StoreError):
+    """The store cannot be written from here (read-only mount, no write permission): the
+    state is fine, this process may only read it."""
 
 
 class Conflict(StoreError):
@@ -59,10 +82,22 @@ def check_name(name: str) -> str:
     return name
 
 
-def check_version(version) -> int:
-    """A version is a positive integer (an integer string is accepted)."""
-    text = str(version)
-    if not text.isdigit() or int(text) < 1 or len(text) > 9:
-        raise StoreError(f"invalid version {version!r}: versions are positive integers")
-    return int(text)
+def is_version_text(text: str) -> bool:
+    """True for a version folder's or a request's version text (see :func:`check_version`)."""
+    return bool(VERSION_RE.fullmatch(text)) and int(text) >= 1
+
+
+def check_version(version: object) -> int:
+    """THE version parse: a positive integer, or its text in ASCII digits (at most nine).
+
+    Every way a version comes in (route, query, command line, folder name) goes through here
+    or :func:`is_version_text`; anything else is a :class:`StoreError` naming the value.
+    """
+    if isinstance(version, int) and not isinstance(version, bool):
+        if 1 <= version < 10**9:
+            return version
+    elif isinstance(version, str) and is_version_text(version):
+        return int(version)
+    raise StoreError(f"invalid version {version!r}: versions are positive integers written "
+                     "in the digits 0-9")
 

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from service.store.files import fsync_dir, sha256_file, sweep_staging
+from service.store.files import fsync_dir, settle, sha256_file, sweep_staging
 from service.store.names import ARRAY_NAME_RE, SCHEMA, STAGING, StoreError, os_reason
 from service.store.reading import StoreReader
 
@@ -35,13 +35,20 @@ class Publisher(StoreReader):
         The arrays and checksums are written into ``<model>/.staging/<id>`` first; then,
         under the model lock, the next free number is chosen, stamped into the manifest and
         the directory renamed into ``versions/<N>``. ``extra_files(dir, version)`` may add
-        files (the report) before the rename.
+        files (the report) before the rename. A failed first publish of a model leaves no
+        model folder behind.
         """
+        mdir = self.model_dir(name)
+        fresh = not os.path.lexists(mdir)
         try:
             return self._publish(name, manifest, arrays, extra_files)
-        except OSError as exc:
-            raise StoreError(f"{name}: cannot write to the store ({os_reason(exc)}); nothing "
-                             "was published") from None
+        except BaseException as exc:
+            if fresh:
+                _forget_empty_model(mdir)
+            if isinstance(exc, OSError):
+                raise StoreError(f"{name}: cannot write to the store ({os_reason(exc)}); "
+                                 "nothing was published") from None
+            raise
 
     def _publish(self, name, manifest, arrays, extra_files) -> int:
         mdir = self.model_dir(name)
@@ -72,17 +79,13 @@ class Publisher(StoreReader):
                 }
             manifest = dict(manifest, schema=SCHEMA, model=name, arrays=listed)
             with self._locked(name):
-                existing = self.versions(name)
+                existing = self.version_numbers(name)
                 version = (max(existing) if existing else 0) + 1
                 manifest["version"] = version
                 (work / "manifest.json").write_text(json.dumps(manifest, indent=2) + "\n")
                 if extra_files is not None:
                     extra_files(work, version)
-                for path in work.rglob("*"):
-                    if path.is_file():
-                        with open(path, "rb") as fh:
-                            os.fsync(fh.fileno())
-                fsync_dir(work)
+                settle(work)
                 os.rename(work, mdir / "versions" / str(version))
                 fsync_dir(mdir / "versions")
             return version
@@ -111,3 +114,32 @@ def _claim_work_folder(staging: Path) -> tuple[Path, int]:
     finally:
         os.close(guard)  # closing the descriptor releases its lock
     return work, claim
+
+
+def _forget_empty_model(mdir: Path) -> None:
+    """Remove the folder a failed first publish made, unless another publisher works there
+    or a version appeared: each step is an rmdir, which refuses a folder that is not empty.
+
+    Done under the staging folder's lock, so no publisher claims a work folder meanwhile (one
+    that opened the lock before the removal fails with a one-line store error and can run
+    again).
+    """
+    staging = mdir / STAGING
+    try:
+        guard = os.open(staging, os.O_RDONLY)
+    except OSError:
+        guard = None
+    try:
+        if guard is not None:
+            fcntl.flock(guard, fcntl.LOCK_EX)
+        for step in (staging.rmdir, (mdir / "versions").rmdir, (mdir / ".lock").unlink,
+                     mdir.rmdir):
+            try:
+                step()
+            except FileNotFoundError:
+                continue
+            except OSError:
+                return  # someone else's work or a version: the folder stays
+    finally:
+        if guard is not None:
+            os.close(guard)

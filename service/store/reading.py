@@ -1,9 +1,17 @@
 """Reading the store: paths, the model lock, live.json, the history, manifests and the
-checksummed arrays. Everything here is safe while writers work (they publish by rename)."""
+checksummed arrays. Everything here is safe while writers work (they publish by rename).
+
+Every read opens the file without blocking and checks that it is a regular file (a FIFO,
+a socket or a symbolic link loop in the store is a refused version, never a hang or a
+crash). Arrays are read into this process's memory, checksummed there and used from there:
+what was verified is what is served, and a file changed in place later cannot reach (or
+crash, as a truncated memory map would with SIGBUS) a process that loaded it.
+"""
 
 from __future__ import annotations
 
 import contextlib
+import errno
 import fcntl
 import json
 import os
@@ -12,18 +20,31 @@ from pathlib import Path
 
 import numpy as np
 
-from service.store.files import sha256_file
+from service.store.arrays import read_array
+from service.store.files import NotRegular, read_regular
 from service.store.names import (
     ARRAY_NAME_RE,
     NAME_RE,
     SCHEMA,
     NotFound,
     StoreError,
+    Unwritable,
     check_name,
     check_version,
+    is_version_text,
     os_reason,
     store_root,
 )
+
+
+def read_fault(exc: OSError, what: str) -> StoreError:
+    """The store error for a file ``what`` (e.g. "coat v2: manifest.json") that could not
+    be read: its reason class, never its path."""
+    if isinstance(exc, NotRegular):
+        return StoreError(f"{what} is not a regular file", kind="not a regular file")
+    if exc.errno == errno.ELOOP:
+        return StoreError(f"{what} is a symbolic link loop", kind="symbolic link")
+    return StoreError(f"{what} cannot be read ({os_reason(exc)})", kind="unreadable")
 
 
 class StoreReader:
@@ -42,8 +63,13 @@ class StoreReader:
     @contextlib.contextmanager
     def _locked(self, name: str) -> Iterator[Path]:
         mdir = self.model_dir(name)
-        (mdir / "versions").mkdir(parents=True, exist_ok=True)
-        with open(mdir / ".lock", "a+") as lock:
+        try:
+            (mdir / "versions").mkdir(parents=True, exist_ok=True)
+            lock = open(mdir / ".lock", "a+")  # noqa: SIM115 (closed by the with below)
+        except OSError as exc:
+            raise Unwritable(f"{name}: the store cannot be written from here "
+                             f"({os_reason(exc)}); nothing was changed") from None
+        with lock:
             fcntl.flock(lock, fcntl.LOCK_EX)
             try:
                 yield mdir
@@ -54,29 +80,54 @@ class StoreReader:
         """``relative`` inside the version's folder, refused when a symlink on the way leads
         anywhere else: checksums prove content, not that the file belongs to the store."""
         path = self.version_dir(name, version) / relative
-        expected = self.root.resolve() / name / "versions" / str(version) / relative
-        if os.path.lexists(path) and path.resolve() != expected:
+        try:
+            expected = self.root.resolve() / name / "versions" / str(version) / relative
+            elsewhere = os.path.lexists(path) and path.resolve() != expected
+        except (OSError, RuntimeError):  # RuntimeError: Python 3.11's "Symlink loop"
+            raise StoreError(f"{name} v{version}: {relative} is reached through a symbolic "
+                             "link loop", kind="symbolic link") from None
+        if elsewhere:
             raise StoreError(f"{name} v{version}: {relative} is a symbolic link to a file "
-                             "elsewhere; a version holds its own files")
+                             "elsewhere; a version holds its own files", kind="symbolic link")
         return path
 
     # -- reading -------------------------------------------------------------------------
     def models(self) -> list[str]:
-        """Names of models that have at least one version directory."""
-        if not self.root.is_dir():
+        """Names of models that have at least one version (a folder a publisher is still
+        filling, or one left without versions, is no model)."""
+        try:
+            names = os.listdir(self.root)
+        except OSError:  # no store yet, or not one this account may list: nothing to serve
             return []
-        return sorted(
-            p.name
-            for p in self.root.iterdir()
-            if p.is_dir() and NAME_RE.fullmatch(p.name) and (p / "versions").is_dir()
-        )
+        return sorted(n for n in names
+                      if NAME_RE.fullmatch(n) and self._version_names(self.root / n / "versions"))
+
+    @staticmethod
+    def _version_names(vdir: Path) -> list[str]:
+        """Names in ``vdir`` that are versions; [] when it cannot be listed."""
+        try:
+            return [n for n in os.listdir(vdir) if is_version_text(n)]
+        except OSError:
+            return []
 
     def versions(self, name: str) -> list[int]:
-        """Version numbers present, ascending (including broken ones: verify tells)."""
-        vdir = self.model_dir(name) / "versions"
-        if not vdir.is_dir():
-            raise NotFound(f"no model named {name!r} in store {self.root}")
-        return sorted(int(p.name) for p in vdir.iterdir() if p.name.isdigit())
+        """Version numbers present, ascending (including broken ones: verify tells);
+        NotFound when there is none: a folder without versions is no model."""
+        found = self.version_numbers(name)
+        if not found:
+            raise NotFound(f"no model named {name!r}")
+        return found
+
+    def version_numbers(self, name: str) -> list[int]:
+        """Version numbers present, ascending; [] when none (or no such folder)."""
+        return sorted(int(n) for n in self._version_names(self.model_dir(name) / "versions"))
+
+    def known(self, name: str) -> bool:
+        """True when ``name`` is a valid model name with at least one version."""
+        try:
+            return bool(self.version_numbers(name))
+        except StoreError:  # not a valid name
+            return False
 
     def live(self, name: str) -> dict | None:
         """Contents of live.json, or None when nothing was released yet.
@@ -84,13 +135,12 @@ class StoreReader:
         A damaged pointer (not JSON, no positive integer version) is a :class:`StoreError`
         naming the model; ``kridge release`` writes a fresh one.
         """
-        path = self.model_dir(name) / "live.json"
         try:
-            raw = path.read_bytes()
+            raw = read_regular(self.model_dir(name) / "live.json")
         except FileNotFoundError:
             return None
         except OSError as exc:
-            raise StoreError(f"{name}: live.json cannot be read ({os_reason(exc)})") from None
+            raise read_fault(exc, f"{name}: live.json") from None
         try:
             entry = json.loads(raw)
         except ValueError:
@@ -107,13 +157,12 @@ class StoreReader:
 
     def _history_lines(self, name: str) -> tuple[list[tuple[int, dict]], list[int]]:
         """(line number, record) of every readable history line, and the damaged lines."""
-        path = self.model_dir(name) / "history.jsonl"
         try:
-            text = path.read_text(errors="replace")
+            text = read_regular(self.model_dir(name) / "history.jsonl").decode(errors="replace")
         except FileNotFoundError:
             return [], []
         except OSError as exc:
-            raise StoreError(f"{name}: history.jsonl cannot be read ({os_reason(exc)})") from None
+            raise read_fault(exc, f"{name}: history.jsonl") from None
         good, bad = [], []
         for number, line in enumerate(text.splitlines(), start=1):
             if not line.strip():
@@ -149,14 +198,12 @@ class StoreReader:
             raise NotFound(f"model {name!r} has no version {version}")
         path = self._own_file(name, version, "manifest.json")
         try:
-            manifest = json.loads(path.read_bytes())
+            manifest = json.loads(read_regular(path))
         except FileNotFoundError:
-            raise StoreError(
-                f"{name} v{version}: manifest.json is missing (incomplete version)"
-            ) from None
+            raise StoreError(f"{name} v{version}: manifest.json is missing (incomplete "
+                             "version)", kind="missing file") from None
         except OSError as exc:
-            raise StoreError(f"{name} v{version}: manifest.json cannot be read "
-                             f"({os_reason(exc)})") from None
+            raise read_fault(exc, f"{name} v{version}: manifest.json") from None
         except ValueError:
             raise StoreError(f"{name} v{version}: manifest.json is not valid JSON") from None
         if not isinstance(manifest, dict) or manifest.get("schema") != SCHEMA:
@@ -175,8 +222,18 @@ class StoreReader:
         path = self._own_file(name, version, "report.html")
         return path if path.is_file() else None
 
+    def read_report(self, name: str, version: int) -> bytes | None:
+        """The report's bytes (see :meth:`report_path`), None when the version has none."""
+        if self.report_path(name, version) is None:
+            return None
+        try:
+            return read_regular(self._own_file(name, version, "report.html"))
+        except OSError as exc:
+            raise read_fault(exc, f"{name} v{version}: report.html") from None
+
     def load_arrays(self, name: str, version: int, manifest: dict) -> dict[str, np.ndarray]:
-        """Verify every array's sha256, then memory-map it read-only (no pickle, ever)."""
+        """Read every array into memory, verify its sha256 there and return it read-only
+        (plain numeric .npy only; no pickle, ever)."""
         arrays = {}
         listed = manifest.get("arrays")
         if not isinstance(listed, dict) or not listed:
@@ -187,31 +244,15 @@ class StoreReader:
                 raise StoreError(f"{name} v{version}: manifest lists an invalid array name {key!r}")
             if not isinstance(meta, dict):
                 raise StoreError(f"{name} v{version}: manifest entry of array {key!r} is malformed")
+            what = f"{name} v{version}: array {key!r}"
             path = self._own_file(name, version, f"arrays/{key}.npy")
-            if not path.is_file():
-                raise StoreError(f"{name} v{version}: array {key!r} is missing ({key}.npy)")
             try:
-                digest = sha256_file(path)
+                arr = read_array(path, what, meta.get("sha256"))
+            except FileNotFoundError:
+                raise StoreError(f"{what} is missing ({key}.npy)", kind="missing file") from None
             except OSError as exc:
-                raise StoreError(f"{name} v{version}: array {key!r} cannot be read "
-                                 f"({os_reason(exc)})") from None
-            if digest != meta.get("sha256"):
-                raise StoreError(
-                    f"{name} v{version}: array {key!r} fails its checksum "
-                    f"(sha256 {digest[:12]}… expected {str(meta.get('sha256'))[:12]}…)"
-                )
-            try:
-                arr = np.load(path, mmap_mode="r", allow_pickle=False)
-            except ValueError as exc:
-                raise StoreError(
-                    f"{name} v{version}: array {key!r} is not a plain numeric array ({exc})"
-                ) from None
-            except OSError as exc:
-                raise StoreError(f"{name} v{version}: array {key!r} cannot be read "
-                                 f"({os_reason(exc)})") from None
-            if arr.dtype.kind not in "fiu" or arr.dtype.hasobject:
-                raise StoreError(f"{name} v{version}: array {key!r} has dtype {arr.dtype}")
+                raise read_fault(exc, what) from None
             if list(arr.shape) != list(meta.get("shape", arr.shape)):
-                raise StoreError(f"{name} v{version}: array {key!r} has shape {arr.shape}")
+                raise StoreError(f"{what} has shape {arr.shape}")
             arrays[key] = arr
         return arrays

@@ -13,7 +13,15 @@ from collections.abc import Callable
 from pathlib import Path
 
 from service.store.files import append_line, fsync_dir, write_temp
-from service.store.names import Conflict, NotFound, StoreError, check_version, now_iso, os_reason
+from service.store.names import (
+    Conflict,
+    NotFound,
+    StoreError,
+    Unwritable,
+    check_version,
+    now_iso,
+    os_reason,
+)
 from service.store.reading import StoreReader
 
 
@@ -46,7 +54,7 @@ class Releases(StoreReader):
                 raise
             fsync_dir(mdir)
         except OSError as exc:
-            raise StoreError(f"{name}: cannot write to the store ({os_reason(exc)}); live.json "
+            raise Unwritable(f"{name}: cannot write to the store ({os_reason(exc)}); live.json "
                              "and the history are unchanged") from None
         return record
 
