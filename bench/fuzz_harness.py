@@ -9,7 +9,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 
 TOKEN = "fuzz-token-2e77a1"
 ST = str(Path(sys.executable).with_name("st"))

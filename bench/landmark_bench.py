@@ -25,7 +25,7 @@ from scale_bench import NOISE, response  # noqa: E402
 
 from bench.machine import header  # noqa: E402
 from service.kernels import KernelSpec, kernel_matrix  # noqa: E402
-from trainer.nystrom import fit_in_memory, pick_landmarks  # noqa: E402
+from trainer.nystrom.numerics import fit_in_memory, pick_landmarks  # noqa: E402
 
 
 def main() -> int:

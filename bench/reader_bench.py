@@ -23,7 +23,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from bench.machine import header  # noqa: E402
-from trainer.data import iter_chunks  # noqa: E402
+from trainer.read.columns import iter_chunks  # noqa: E402
 
 
 def previous_reader(path: Path, columns: list[str], chunk_rows: int = 50_000) -> int:

@@ -186,7 +186,7 @@ def main() -> int:
     print(header("soak: release churn under load"))
 
     from service.launch import Gunicorn
-    from trainer.train import TrainOptions, train
+    from trainer.job import TrainOptions, train
 
     token = "soak-token"
     with tempfile.TemporaryDirectory(prefix="kridge-soak-") as tmp:

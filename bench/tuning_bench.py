@@ -15,7 +15,7 @@ timings are noisy, so read the ratio, not the seconds.
     .venv/bin/python bench/tuning_bench.py [--rows 3000] [--eigh-sizes 2000,4000,6000]
 
 ``--eigh-sizes`` also times one kernel-matrix eigendecomposition per size, the figure behind
-the exact leave-one-out limit (``trainer.validation.EXACT_MAX_ROWS``; DEVELOPERS.md, "Measured
+the exact leave-one-out limit (``trainer.validation.folds.EXACT_MAX_ROWS``; DEVELOPERS.md, "Measured
 limits"): a single-kernel search needs about 13 of them.
 """
 
@@ -35,12 +35,12 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from bench.machine import add_json_option, header, save  # noqa: E402
 from service.kernels import KernelSpec, kernel_matrix  # noqa: E402
-from trainer.fit import Standardizer, fit_exact  # noqa: E402
-from trainer.loo import eigen_kernel  # noqa: E402
-from trainer.tuning import WIDTH_GRID_SIZE  # noqa: E402
-from trainer.validation import RIDGE_GRID_SIZE, RIDGE_RELATIVE, Problem  # noqa: E402
-from trainer.widths import width_range  # noqa: E402
-from trainer.workers import Runner  # noqa: E402
+from trainer.exact.fit import Standardizer, fit_exact  # noqa: E402
+from trainer.exact.loo import eigen_kernel  # noqa: E402
+from trainer.tuning.search import WIDTH_GRID_SIZE  # noqa: E402
+from trainer.tuning.widths import width_range  # noqa: E402
+from trainer.tuning.workers import Runner  # noqa: E402
+from trainer.validation.folds import RIDGE_GRID_SIZE, RIDGE_RELATIVE, Problem  # noqa: E402
 
 
 def eigh_seconds(sizes: list[int]) -> None:

@@ -1,9 +1,17 @@
-"""The error type request handlers raise (the app turns it into the JSON error body), and
-the one a socket deadline raises."""
+"""Errors meant for people: ApiError, which request handlers raise and the app turns into
+the JSON error body; UserError, a value given by the user (an option, an environment
+variable, a data cell) that cannot be used; and ClientTooSlow, what a socket deadline
+raises."""
 
 from __future__ import annotations
 
 from service.schemas import ErrorResponse
+
+
+class UserError(ValueError):
+    """Something the user can fix (bad input, bad option): the command line shows it as one
+    line with exit status 2, never with a traceback. A ValueError, so that code validating
+    values may catch both alike."""
 
 
 class ApiError(Exception):

@@ -18,12 +18,14 @@ import math
 
 import numpy as np
 
+from service.errors import UserError
+
 
 def check_coverage(coverage: float) -> float:
     """``coverage`` if it lies strictly between 0 and 1, else ValueError (a coverage of 0
     would make the quantile rank 0, which silently indexes the largest residual)."""
     if not 0 < coverage < 1:
-        raise ValueError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
+        raise UserError(f"coverage must be between 0 and 1 (exclusive), got {coverage}")
     return coverage
 
 
@@ -55,7 +57,7 @@ def largest_coverage(c: int) -> float:
     return cov
 
 
-class CoverageUnavailable(ValueError):
+class CoverageUnavailable(UserError):
     """A coverage the model's calibration cannot give: no calibration at all
     (``code`` "no_intervals") or too few residuals for it ("coverage_too_high"). The message
     says why and, for the second, the largest coverage the model can give."""

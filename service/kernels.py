@@ -27,6 +27,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from service.errors import UserError
 from service.l1_distance import scaled_l1
 
 KERNEL_NAMES = ("linear", "polynomial", "rbf", "laplacian", "sigmoid", "matern32", "matern52")
@@ -57,20 +58,20 @@ class KernelSpec:
 
     def __post_init__(self) -> None:
         if self.name not in KERNEL_PARAMS:
-            raise ValueError(
+            raise UserError(
                 f"unknown kernel {self.name!r}; choose one of {', '.join(KERNEL_NAMES)}"
             )
         for key in ("gamma", "degree", "coef0"):
             value = getattr(self, key)
             if key in KERNEL_PARAMS[self.name]:
                 if value is None or not math.isfinite(value):
-                    raise ValueError(f"kernel {self.name} needs a finite {key}")
+                    raise UserError(f"kernel {self.name} needs a finite {key}")
             elif value is not None:
-                raise ValueError(f"kernel {self.name} takes no {key}")
+                raise UserError(f"kernel {self.name} takes no {key}")
         if self.gamma is not None and self.name != "sigmoid" and self.gamma <= 0:
-            raise ValueError(f"gamma must be positive for the {self.name} kernel")
+            raise UserError(f"gamma must be positive for the {self.name} kernel")
         if self.degree is not None and self.degree < 1:
-            raise ValueError("degree must be at least 1")
+            raise UserError("degree must be at least 1")
 
     @property
     def uses(self) -> str:

@@ -29,6 +29,8 @@ import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from service.errors import UserError
+
 #: Store root when neither ``--store`` nor ``KRIDGE_STORE`` names one.
 DEFAULT_STORE = "kridge-store"
 
@@ -51,9 +53,9 @@ def _int(name: str, default: int) -> int:
     try:
         value = int(raw)
     except ValueError:
-        raise ValueError(f"environment variable {name}={raw!r} is not an integer") from None
+        raise UserError(f"environment variable {name}={raw!r} is not an integer") from None
     if value < 1:
-        raise ValueError(f"environment variable {name} must be at least 1, got {value}")
+        raise UserError(f"environment variable {name} must be at least 1, got {value}")
     return value
 
 
@@ -65,13 +67,13 @@ def _number(name: str, default: float) -> float:
     try:
         return float(raw)
     except ValueError:
-        raise ValueError(f"environment variable {name}={raw!r} is not a number") from None
+        raise UserError(f"environment variable {name}={raw!r} is not a number") from None
 
 
 def _float(name: str, default: float) -> float:
     value = _number(name, default)
     if not value > 0:
-        raise ValueError(f"environment variable {name} must be positive, got {value}")
+        raise UserError(f"environment variable {name} must be positive, got {value}")
     return value
 
 
@@ -79,7 +81,7 @@ def _seconds(name: str, default: float) -> float:
     """A duration that may be zero (feature off)."""
     value = _number(name, default)
     if not 0 <= value < 3600:
-        raise ValueError(f"environment variable {name} must be in [0, 3600) s, got {value}")
+        raise UserError(f"environment variable {name} must be in [0, 3600) s, got {value}")
     return value
 
 

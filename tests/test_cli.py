@@ -19,8 +19,8 @@ from cli_helpers import KRIDGE, run_cli
 from service import load_model
 from service.kernels import KernelSpec
 from service.store import Store
-from trainer.data import read_table, split_columns
-from trainer.fit import fit_exact
+from trainer.exact.fit import fit_exact
+from trainer.read.columns import read_table, split_columns
 
 FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "viscosity_mpas"]
 RBF = ["--kernel", "rbf", "--gamma", "0.2", "--ridge", "0.5", "--no-report"]

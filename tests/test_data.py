@@ -7,8 +7,8 @@ import hashlib
 import numpy as np
 import pytest
 
-from trainer.data import iter_chunks, read_table, split_columns
 from trainer.errors import UserError
+from trainer.read.columns import iter_chunks, read_table, split_columns
 
 
 def write(tmp_path, text, name="d.csv"):

@@ -23,7 +23,7 @@ from service_helpers import Gunicorn, wait_for
 
 from service.intervals import largest_coverage
 from service.openapi import ANSWERS
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 
 TOKEN = "document-token-5c1e"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}

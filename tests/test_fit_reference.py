@@ -23,8 +23,8 @@ from sklearn.preprocessing import StandardScaler
 from service import load_model
 from service.kernels import KernelSpec
 from trainer.errors import UserError
-from trainer.fit import fit_exact
-from trainer.train import TrainOptions, train
+from trainer.exact.fit import fit_exact
+from trainer.job import TrainOptions, train
 
 RTOL = 1e-9
 

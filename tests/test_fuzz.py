@@ -28,8 +28,8 @@ from bench.fuzz_harness import statuses as logged_statuses
 from service import load_model
 from service.answers import parse_body, predict_response
 from service.errors import ApiError
-from trainer.data import read_table
 from trainer.errors import UserError
+from trainer.read.columns import read_table
 
 
 @pytest.fixture(scope="module")

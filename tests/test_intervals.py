@@ -18,7 +18,7 @@ from service.intervals import (
 )
 from service.model import load_model
 from trainer.calibration import conformal_half_width, interval_coverage
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 
 
 def test_conformal_rank_rule():

@@ -3,7 +3,7 @@
 Reference: measured on this project's machines (README, "Large models on AVX-512 machines") — on
 these SkylakeX machines the OpenBLAS bundled with the numpy 2.4.6 / scipy 1.17.1 wheels
 segfaults in a multi-threaded Cholesky of n ≥ 16,000 (rbf kernel of random 16-feature rows
-plus 0.1 on the diagonal). trainer.fit.solve_dual factorizes on one BLAS thread from
+plus 0.1 on the diagonal). trainer.exact.fit.solve_dual factorizes on one BLAS thread from
 ``SINGLE_THREAD_FROM`` rows on. The large test runs the solve in a subprocess so that a
 segfault shows up as a negative return code instead of taking pytest down with it.
 
@@ -25,7 +25,7 @@ import textwrap
 import pytest
 from threadpoolctl import threadpool_info
 
-from trainer.fit import SINGLE_THREAD_FROM, safe_lapack
+from trainer.exact.fit import SINGLE_THREAD_FROM, safe_lapack
 
 N_CRASHED = 16_000  # smallest size measured to crash on these machines
 
@@ -34,20 +34,20 @@ SCRIPT = textwrap.dedent(
     import json, sys
     import numpy as np
     from threadpoolctl import threadpool_info
-    import trainer.fit
+    import trainer.exact.fit
     from service.kernels import KernelSpec, kernel_matrix
-    from trainer.fit import solve_dual
+    from trainer.exact.fit import solve_dual
 
     # spy on the factorization: BLAS thread counts at the moment it runs
     seen = []
-    factor = trainer.fit.sla.cho_factor
+    factor = trainer.exact.fit.sla.cho_factor
 
     def spy(*args, **kwargs):
         seen.append([lib["num_threads"] for lib in threadpool_info()
                      if lib["user_api"] == "blas"])
         return factor(*args, **kwargs)
 
-    trainer.fit.sla.cho_factor = spy
+    trainer.exact.fit.sla.cho_factor = spy
 
     n, d, ridge = int(sys.argv[1]), 16, 0.1
     rng = np.random.default_rng(0)
@@ -90,22 +90,22 @@ def test_the_guard_covers_the_crashing_size_at_the_factorization(monkeypatch):
     # (the real sizes need gigabytes; the slow test below runs one).
     import numpy as np
 
-    import trainer.fit
+    import trainer.exact.fit
     from service.kernels import KernelSpec, kernel_matrix
-    from trainer.fit import solve_dual
+    from trainer.exact.fit import solve_dual
 
     with safe_lapack(N_CRASHED):
         assert set(_blas_threads()) == {1}
     default = _blas_threads()
     seen = []
-    factor = trainer.fit.sla.cho_factor
+    factor = trainer.exact.fit.sla.cho_factor
 
     def spy(*args, **kwargs):  # BLAS thread counts at the moment the factorization runs
         seen.append(_blas_threads())
         return factor(*args, **kwargs)
 
-    monkeypatch.setattr(trainer.fit.sla, "cho_factor", spy)
-    monkeypatch.setattr(trainer.fit, "SINGLE_THREAD_FROM", 300)
+    monkeypatch.setattr(trainer.exact.fit.sla, "cho_factor", spy)
+    monkeypatch.setattr(trainer.exact.fit, "SINGLE_THREAD_FROM", 300)
     rng = np.random.default_rng(2)
     for n in (299, 300):
         x = rng.standard_normal((n, 3))
@@ -138,7 +138,7 @@ def test_solve_dual_factorizes_in_place():
     import numpy as np
 
     from service.kernels import KernelSpec, kernel_matrix
-    from trainer.fit import solve_dual
+    from trainer.exact.fit import solve_dual
 
     rng = np.random.default_rng(1)
     x = rng.standard_normal((2500, 4))

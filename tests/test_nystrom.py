@@ -18,8 +18,8 @@ from service import load_model
 from service.kernels import KernelSpec, kernel_matrix
 from service.store import Store
 from trainer.cli import main
-from trainer.fit import fit_exact
-from trainer.nystrom import (
+from trainer.exact.fit import fit_exact
+from trainer.nystrom.numerics import (
     LandmarkKernel,
     accumulate,
     default_landmarks,
@@ -27,7 +27,7 @@ from trainer.nystrom import (
     memory_landmarks,
     pick_landmarks,
 )
-from trainer.reader import Source
+from trainer.read.source import Source
 
 
 def _function(x: np.ndarray) -> np.ndarray:
@@ -140,8 +140,8 @@ def test_two_stage_width_search_decides_with_all_landmarks(monkeypatch):
     """The first stage searches widths on a landmark subset; the width and ridge returned
     are those that score best with every landmark, and their score is that of a fresh
     evaluation with all of them."""
-    from trainer import nystrom_tune
-    from trainer.train import TrainOptions
+    from trainer.job import TrainOptions
+    from trainer.nystrom import tune as nystrom_tune
 
     monkeypatch.setattr(nystrom_tune, "COARSE_LANDMARKS", 30)
     x, y = _data(2400, seed=13)
@@ -175,7 +175,7 @@ def test_kmeans_plus_plus_spreads_landmarks():
 
 def test_streamed_standardization_equals_numpy(tmp_path):
     # reference: numpy 2.4 mean and std (ddof=0) over the whole array at once
-    from trainer.nystrom_scan import scan
+    from trainer.nystrom.scan import scan
 
     x, y = _data(5000, d=4, seed=7)
     x = x[:, :3]
@@ -251,7 +251,7 @@ def test_method_choice_is_explained(tmp_path, capsys):
 
 _MEMORY_PROBE = r"""
 import json, sys, tracemalloc
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 tracemalloc.start()
 train(TrainOptions(data=sys.argv[1], targets=["y"], name="mem", store=sys.argv[2],
                    method="nystrom", landmarks=int(sys.argv[3]), gamma=0.5, ridge=1e-3,

@@ -17,7 +17,7 @@ from service.errors import ApiError
 from service.metrics import counted_since, row_counts
 from service.page_row import ordinal, verdict
 from service.settings import Settings
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 
 ROOT = Path(__file__).resolve().parents[1]
 FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "viscosity_mpas"]

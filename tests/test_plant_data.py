@@ -11,9 +11,9 @@ import pytest
 
 from service.store import Store
 from trainer.cli import main
-from trainer.data import load_training, read_table
 from trainer.errors import UserError
-from trainer.validation import time_series_folds
+from trainer.read.columns import load_training, read_table
+from trainer.validation.folds import time_series_folds
 
 FEATURES = ["oven_temp_c", "line_speed_m_min", "wet_film_um", "humidity_pct", "viscosity_mpas"]
 

@@ -24,9 +24,10 @@ from service_helpers import Gunicorn, holds_for
 from service import live_models, model
 from service.live_models import LiveModels
 from service.store import Conflict, Store, StoreError
-from trainer import candidates, tuning
 from trainer.cli import EXIT_BUG
-from trainer.train import TrainOptions, train
+from trainer.exact import candidates
+from trainer.job import TrainOptions, train
+from trainer.tuning import search as tuning
 
 TOKEN = "findings-token-5d1c"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
@@ -307,7 +308,7 @@ def test_a_pinned_version_is_loaded_once_however_many_requests_ask(two_versions,
 
 def test_a_bug_shows_its_traceback_and_a_distinct_exit_status(store_dir, small_csv,
                                                               monkeypatch, capsys):
-    import trainer.train as train_module
+    import trainer.job as train_module
 
     def broken(*_a, **_k):
         raise ValueError("an internal invariant broke")  # a coding error, not the user's
@@ -339,7 +340,7 @@ def test_argument_mistakes_stay_one_line_user_errors(store_dir, small_csv, capsy
 
 
 def test_console_script_bug_exit_status(tmp_path):
-    code = ("import sys, trainer.cli as c, trainer.train as t\n"
+    code = ("import sys, trainer.cli as c, trainer.job as t\n"
             "t.train = lambda *a, **k: [][1]\n"
             "sys.exit(c.main(['train', 'x.csv', '--target', 'y', '--name', 'm']))\n")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,

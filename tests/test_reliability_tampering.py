@@ -22,7 +22,7 @@ from service_helpers import Gunicorn, metric_count, metric_samples, wait_for
 from service import load_model
 from service.store import Store, StoreError
 from trainer.cli import main
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 
 TOKEN = "tamper-token-93be0c"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}

@@ -35,7 +35,7 @@ def test_train_auto_writes_self_contained_report(csv_300, store_dir, capsys):
     assert len(images) >= 3
     assert all(base64.b64decode(i)[:8] == b"\x89PNG\r\n\x1a\n" for i in images)
     assert not re.search(r'(src|href)="(https?:)?//', page)  # no network assets
-    for heading in ("Data", "Chosen parameters", "Tuning: leave-one-out RMSE against ridge",
+    for heading in ("Data", "Chosen parameters", "Tuning: LOO RMSE against ridge",
                     "Holdout: parity and residuals", "Prediction intervals",
                     "Training envelope", "Cautions"):
         assert f"<h2>{heading}</h2>" in page

@@ -28,7 +28,7 @@ from service.app import create_app
 from service.live_models import LiveModels
 from service.settings import Settings
 from service.store import Store, StoreError, check_version
-from trainer.train import TrainOptions, train
+from trainer.job import TrainOptions, train
 
 TOKEN = "faults-token-5d1c"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}

@@ -41,13 +41,22 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.intervals import half_width
-from trainer.fit import Fit
+from trainer.exact.fit import Fit
 
 #: Nominal coverages reported on the holdout.
 COVERAGE_LEVELS = (0.8, 0.9, 0.95)
 #: Above this many rows the bundle's exact LOO residuals (an O(n³) inverse) are skipped and
 #: intervals are calibrated on the holdout residuals instead (split conformal).
 LOO_MAX_ROWS = 8000
+
+
+def uses_jackknife(rows: int, timed: bool) -> bool:
+    """Whether a model of ``rows`` rows is calibrated by the jackknife (else split conformal).
+
+    Decided once from the served model's rows, so that the training-part model, whose
+    intervals are checked on the holdout, uses the same method as the served one.
+    """
+    return rows <= LOO_MAX_ROWS and not timed
 
 
 def conformal_half_width(abs_residuals: np.ndarray, coverage: float) -> np.ndarray:
@@ -89,13 +98,14 @@ def check_on_holdout(part: Fit, actual: np.ndarray, predicted: np.ndarray,
             "jackknife half-widths from the training-part model's exact leave-one-out "
             "residuals, applied to its predictions on the holdout rows (which neither the fit "
             "nor the calibration saw)")
-    if timed and actual.shape[0] >= 4:
+    if actual.shape[0] >= 4:
         half = actual.shape[0] // 2
         abs_res = np.abs(actual - predicted)
+        order = "earlier half of the holdout" if timed else "first half of the holdout rows"
         return HoldoutCheck(
             interval_coverage(abs_res[:half], actual[half:], predicted[half:]),
-            "split-conformal half-widths from the earlier half of the holdout (residuals of "
-            "the training-part model), applied to its predictions on the later half")
+            f"split-conformal half-widths from the {order} (residuals of the training-part "
+            "model), applied to its predictions on the other half")
     return HoldoutCheck(None, None)
 
 
@@ -105,14 +115,14 @@ def calibrate(final: Fit, holdout_abs: np.ndarray | None, check: HoldoutCheck,
     (None, None) when there is nothing to calibrate on."""
     if final.loo_residuals is not None:
         calib = np.abs(final.loo_residuals)
-        name = "jackknife"
+        name, source = "jackknife", "LOO"
         how = ("jackknife: final model ± the ⌈(c+1)·coverage⌉-th smallest absolute exact "
                "leave-one-out residual of the final model. No finite-sample coverage "
                "guarantee (Barber, Candès, Ramdas & Tibshirani, Ann. Statist. 2021): the "
                "coverage measured on the holdout (when there is one) is stored beside it")
     elif holdout_abs is not None:
         calib = holdout_abs
-        name = "split-conformal"
+        name, source = "split-conformal", "holdout"
         how = ("split-conformal quantile of the holdout residuals of the model fitted on the "
                "training part (Lei et al. 2018); the served model is refitted on all rows, "
                "holdout included, so the finite-sample guarantee is approximate for it"
@@ -122,7 +132,34 @@ def calibrate(final: Fit, holdout_abs: np.ndarray | None, check: HoldoutCheck,
     return calib, {
         "name": name,
         "method": how,
+        "residuals": source,
         "calibration_rows": int(calib.shape[0]),
         "holdout_coverage": check.coverage,
         "holdout_coverage_method": check.how,
+    }
+
+
+def split_conformal_section(calib: np.ndarray | None, coverage: list | None,
+                            by_time: bool) -> dict | None:
+    """The ``intervals`` entry of a model calibrated on a part it never saw (the Nyström
+    job's calibration part); None without one.
+
+    The split-conformal guarantee needs exchangeable rows; rows in time order are not (the
+    calibration stretch precedes the rows served), so there it is not claimed.
+    """
+    if calib is None:
+        return None
+    promise = ("no finite-sample guarantee: rows in time order are not exchangeable, so "
+               "read the coverage measured on the later holdout stretch" if by_time else
+               "a finite-sample guarantee for rows exchangeable with the training data")
+    return {
+        "name": "split-conformal",
+        "residuals": "calibration",
+        "method": ("split-conformal: the ⌈(c+1)·coverage⌉-th smallest absolute residual "
+                   "of the final model on a calibration part it never saw (Lei, G'Sell, "
+                   f"Rinaldo, Tibshirani & Wasserman 2018): {promise}"),
+        "calibration_rows": int(calib.shape[0]),
+        "holdout_coverage": coverage,
+        "holdout_coverage_method": None if coverage is None else
+        "calibration-part half-widths applied to the final model's holdout predictions",
     }

@@ -35,7 +35,7 @@ def _store(args) -> Store:
 
 
 def cmd_train(args) -> int:
-    from trainer.train import TrainOptions, train
+    from trainer.job import TrainOptions, train
 
     opts = TrainOptions(
         data=args.data, targets=args.target, name=args.name, features=args.features,
@@ -57,7 +57,7 @@ def cmd_train(args) -> int:
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
-    from trainer.show import headline, precision_line, print_pairs
+    from trainer.show import error_lines, precision_line, print_pairs
 
     print_pairs([
         ("model", f"{summary['name']} v{summary['version']}"
@@ -69,8 +69,7 @@ def cmd_train(args) -> int:
         ("targets", ", ".join(summary["targets"])),
         ("kernel", summary["kernel"]),
         ("ridge", f"{summary['ridge']:.6g}"),
-        ("LOO", headline(summary["metrics"], "loo")),
-        ("holdout", headline(summary["metrics"], "holdout")),
+        *error_lines(summary["metrics"]),
         *([("tuning", summary["tuning"])] if summary.get("tuning") else []),
         *([("report", summary["report"])] if summary.get("report") else []),
         ("precision", precision_line(summary["precision"], summary["precision_check"])),
@@ -81,7 +80,7 @@ def cmd_train(args) -> int:
 
 
 def cmd_versions(args) -> int:
-    from trainer.show import fmt, table
+    from trainer.show import first_error, fmt, table
 
     st = _store(args)
     live = st.live_version(args.model)
@@ -92,17 +91,14 @@ def cmd_versions(args) -> int:
         except StoreError as exc:
             rows.append(["*" if v == live else "", v, "?", "broken", str(exc).split(": ", 1)[-1]])
             continue
-        metrics = m.get("metrics", {})
-        first = next(iter((metrics.get("holdout") or metrics.get("loo") or {}).values()), {})
         rows.append([
             "*" if v == live else "", v, m.get("created", "?"),
-            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}",
-            f"rmse={fmt(first.get('rmse', float('nan')))}" if first else "",
+            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}", first_error(m.get("metrics", {})),
         ])
     if args.json:
         print(json.dumps({"model": args.model, "live": live, "versions": [r[1] for r in rows]}))
     else:
-        table(["live", "version", "created", "kernel", "holdout/LOO"], rows)
+        table(["live", "version", "created", "kernel", "error"], rows)
     return 0
 
 
@@ -204,20 +200,8 @@ def cmd_demo(args) -> int:
     return run_demo(store=args.store, bind=args.bind, smoke=args.smoke)
 
 
-def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(
-        prog="kridge",
-        description="Kernel ridge regression: train, freeze into a versioned bundle, serve.",
-    )
-    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
-
-    def add(name, func, help_):
-        sp = sub.add_parser(name, help=help_, description=help_)
-        sp.add_argument("--store", help=f"store root (default: $KRIDGE_STORE or ./{DEFAULT_STORE})")
-        sp.set_defaults(func=func)
-        return sp
-
-    t = add("train", cmd_train, "fit a model from a CSV/Parquet file and publish a new version")
+def _train_arguments(t: argparse.ArgumentParser) -> None:
+    """The arguments of ``kridge train``: data and names, kernel, splits, method, output."""
     t.add_argument("data", help="CSV with a header row, .parquet or .xlsx")
     t.add_argument("--target", required=True, type=_csv_list,
                    help="target column(s), comma-separated")
@@ -252,6 +236,23 @@ def build_parser() -> argparse.ArgumentParser:
                    help="Dask scheduler address: run the Nyström accumulation there")
     t.add_argument("--quiet", action="store_true")
     t.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="kridge",
+        description="Kernel ridge regression: train, freeze into a versioned bundle, serve.",
+    )
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def add(name, func, help_):
+        sp = sub.add_parser(name, help=help_, description=help_)
+        sp.add_argument("--store", help=f"store root (default: $KRIDGE_STORE or ./{DEFAULT_STORE})")
+        sp.set_defaults(func=func)
+        return sp
+
+    t = add("train", cmd_train, "fit a model from a CSV/Parquet file and publish a new version")
+    _train_arguments(t)
 
     v = add("versions", cmd_versions, "list versions; * marks the live one")
     v.add_argument("model")
@@ -298,37 +299,12 @@ def build_parser() -> argparse.ArgumentParser:
 #: error (2) and a failed verify (1), and shown with its traceback.
 EXIT_BUG = 70
 
-#: Functions whose ValueError means "this argument is not allowed": the user's to fix.
-#: Every other ValueError is a bug in kridge and keeps its traceback.
-ARGUMENT_CHECKS = {
-    ("kernels.py", "__post_init__"),  # KernelSpec: unknown kernel, bad gamma/degree/coef0
-    ("kernels.py", "default_spec"),
-    ("intervals.py", "check_coverage"),  # --coverage outside (0, 1)
-    ("settings.py", "_int"),  # KRIDGE_* environment variables
-    ("settings.py", "_float"),
-}
-
-
-def _is_argument_check(exc: BaseException) -> bool:
-    """True when ``exc`` was raised directly by one of :data:`ARGUMENT_CHECKS`."""
-    tb = exc.__traceback__
-    if tb is None:
-        return False
-    while tb.tb_next is not None:
-        tb = tb.tb_next
-    code = tb.tb_frame.f_code
-    return (os.path.basename(code.co_filename), code.co_name) in ARGUMENT_CHECKS
-
 
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
         return args.func(args)
-    except (UserError, StoreError) as exc:
-        return _user_error(args.command, exc)
-    except ValueError as exc:
-        if not _is_argument_check(exc):
-            return _bug(args.command)
+    except (UserError, StoreError) as exc:  # by type: the checks raise UserError
         return _user_error(args.command, exc)
     except BrokenPipeError:
         # output piped into e.g. `head`, which exited: stop quietly, as other Unix tools do;

@@ -56,7 +56,7 @@ def post(base: str, path: str, body: dict) -> tuple[int, dict]:
 
 
 def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = False) -> int:
-    from trainer.train import TrainOptions, train
+    from trainer.job import TrainOptions, train
 
     gen = _generator()
     store = os.path.abspath(store_root(store))

@@ -13,9 +13,8 @@ import numpy as np
 from service.envelope import NOVELTY_K, NOVELTY_QUANTILE, NeighbourIndex
 
 #: Largest reference set kept for the novelty score. It bounds the score's per-request cost
-#: (about 15 µs per row at 2,000 × 16 on the machines here, against ~150 µs for the kernel
-#: sum over 20,000 rows); a subsample only coarsens the score, since τ is calibrated on the
-#: rows left out of it.
+#: to a small share of the kernel sum's (timings: DEVELOPERS.md, "Measured limits"); a
+#: subsample only coarsens the score, since τ is calibrated on the rows left out of it.
 REFERENCE_ROWS = 2000
 
 

@@ -1,5 +1,6 @@
-"""The one exception type the command line turns into a one-line message and exit code."""
+"""The one exception type for user mistakes (defined in :mod:`service.errors`, so that the
+runtime's own checks raise it too); the command line turns it into one line and exit 2."""
 
+from service.errors import UserError
 
-class UserError(Exception):
-    """Something the user can fix (bad input, bad option); shown without a traceback."""
+__all__ = ["UserError"]

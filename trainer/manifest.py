@@ -1,4 +1,4 @@
-"""The manifest of an exact model: what was fitted, on what, and how well.
+"""The manifest: what was fitted, on what, and how well — one builder for every solver.
 
 The manifest is the bundle's JSON description: the loaded model reads
 its standardization, kernel, intercept, envelope and interval calibration from it, and
@@ -11,12 +11,15 @@ from __future__ import annotations
 import platform
 from datetime import datetime, timezone
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from service.kernels import KernelSpec
 from service.store import now_iso
-from trainer.fit import Fit
+
+if TYPE_CHECKING:
+    from trainer.exact.fit import Fit
 
 
 def time_text(value: float, clock: bool) -> str | float:
@@ -47,25 +50,44 @@ def library_versions() -> dict[str, str]:
     return out
 
 
+def build_manifest(*, features: list[str], targets: list[str], spec: KernelSpec,
+                   ridge: float, standardization: dict, intercept: np.ndarray, training: dict,
+                   tuning: dict | None, metrics: dict, envelope: dict, intervals: dict | None,
+                   precision: str, check: dict | None) -> dict:
+    """The manifest of any model: the one builder both solvers use (the store adds
+    ``schema``, ``model``, ``version`` and ``arrays`` when it publishes)."""
+    return {
+        "created": now_iso(),
+        "features": list(features),
+        "targets": list(targets),
+        "kernel": {"name": spec.name, "params": spec.params()},
+        "ridge": ridge,
+        "standardization": standardization,
+        "intercept": np.asarray(intercept).tolist(),
+        "training": training,
+        "tuning": tuning,
+        "metrics": metrics,
+        "envelope": envelope,
+        "intervals": intervals,
+        "precision": precision,
+        "precision_check": check,
+        "libraries": library_versions(),
+    }
+
+
 def exact_manifest(opts, *, data, final: Fit, spec: KernelSpec, ridge: float, rows: int,
                    holdout_rows: int, timed: bool, span: dict | None, fit_seconds: float,
                    reason: str, tuning_info: dict | None, metrics: dict, envelope: dict,
                    intervals: dict | None, check: dict | None) -> dict:
     """The manifest of an exact fit (``opts``: the train options; ``data``: the loaded
     training data, for its fingerprint, format and row account)."""
-    return {
-        "created": now_iso(),
-        "features": data.features,
-        "targets": list(opts.targets),
-        "kernel": {"name": spec.name, "params": spec.params()},
-        "ridge": ridge,
-        "standardization": {
-            "mean": final.scaler.mean.tolist(),
-            "scale": final.scaler.scale.tolist(),
-            "ddof": 0,
-        },
-        "intercept": final.intercept.tolist(),
-        "training": {
+    return build_manifest(
+        features=data.features, targets=opts.targets, spec=spec, ridge=ridge,
+        standardization={"mean": final.scaler.mean.tolist(),
+                         "scale": final.scaler.scale.tolist(), "ddof": 0},
+        intercept=final.intercept, tuning=tuning_info, metrics=metrics, envelope=envelope,
+        intervals=intervals, precision=opts.precision, check=check,
+        training={
             "rows": int(rows),
             "data_file": Path(opts.data).name,
             "data_sha256": data.sha256,
@@ -82,12 +104,33 @@ def exact_manifest(opts, *, data, final: Fit, spec: KernelSpec, ridge: float, ro
             "method_reason": reason,
             "solver": "cholesky (scipy.linalg.cho_factor)",
             "final_fit": "refitted on all rows with the chosen parameters",
-        },
-        "tuning": tuning_info,
-        "metrics": metrics,
-        "envelope": envelope,
-        "intervals": intervals,
-        "precision": opts.precision,
-        "precision_check": check,
-        "libraries": library_versions(),
+        })
+
+
+def nystrom_training(*, rows: int, reason: str, landmarks: dict, parts: dict, src, data: str,
+                     counts: dict, span, holdout: float, by_time: bool, seed: int,
+                     fit_seconds: float, cluster: bool) -> dict:
+    """A Nyström model's ``training`` entry: method, why, landmarks, rows and parts."""
+    return {
+        "rows": rows,
+        "method": "nystrom",
+        "method_reason": reason,
+        "landmarks": landmarks,
+        "parts": parts,
+        "data_file": data,
+        "data_sha256": src.sha256,
+        "data_format": src.dialect(),
+        "row_counts": counts,
+        "time": span,
+        "holdout_fraction": holdout,
+        "holdout_rows": parts["holdout"],
+        "holdout_kind": "the most recent rows in time" if by_time
+        else "seeded random draw per block",
+        "seed": seed,
+        "fit_seconds": round(fit_seconds, 3),
+        "solver": ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), "
+                   "streamed sums, eigendecompositions of K_mm and of the m × m "
+                   "normal matrix"),
+        "cluster": cluster,
+        "final_fit": "the training part only: holdout and calibration rows stay unseen",
     }

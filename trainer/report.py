@@ -22,6 +22,7 @@ from service.cautions import BEFORE_ACTING
 from service.text_safety import html_name, plot_label
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
 from trainer.cautions import R2_POOR, poor_holdout
+from trainer.show import ERROR_KINDS, fmt
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
@@ -43,7 +44,7 @@ def _num(value, digits: int = 4) -> str:
     if isinstance(value, float):
         if not math.isfinite(value):
             return "∞" if value > 0 else "–"
-        return f"{value:.{digits}g}"
+        return fmt(value, digits)
     return _esc(value)
 
 
@@ -92,7 +93,8 @@ def _pyplot():
 
 
 def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
-    """LOO error against ridge, one line per kernel parameter setting, one panel per kernel."""
+    """Tuning error (by its method) against ridge, one line per kernel parameter setting,
+    one panel per kernel."""
     curves = [c for c in tuning.get("curves", []) if len(c["ridge"]) > 1]
     if not curves:
         return None
@@ -109,13 +111,13 @@ def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
         cmap = plt.get_cmap("viridis")
         for c, g in zip(own, gammas, strict=True):
             if single:
-                err = [np.nan if r is None else r[0] for r in c["loo_rmse"]]
+                err = [np.nan if r is None else r[0] for r in c["rmse"]]
             else:  # RMSE/SD averaged over targets: sqrt of the criterion
                 err = [np.nan if s is None else math.sqrt(s) for s in c["score"]]
             pos = 0.5 if g is None or hi == lo else math.log(g / lo) / math.log(hi / lo)
             ax.plot(c["ridge"], err, color=cmap(pos), lw=1)
         if chosen.get("kernel") == name:
-            val = chosen.get("cv_rmse", [np.nan])[0] if single else math.sqrt(chosen["score"])
+            val = chosen.get("rmse", [np.nan])[0] if single else math.sqrt(chosen["score"])
             ax.plot([chosen["ridge"]], [val], marker="*", ms=12, color="crimson",
                     label="chosen", ls="none")
             ax.legend(loc="best", fontsize=8)
@@ -124,7 +126,7 @@ def _curve_plot(tuning: dict, targets: list[str]) -> str | None:
         ax.set_xlabel("ridge λ")
         ax.set_title(f"{name}" + ("" if not finite else f" (γ {lo:.3g} → {hi:.3g}, dark → light)"),
                      fontsize=9)
-    label = tuning.get("error_label", "LOO RMSE")
+    label = tuning["error_label"]
     axes[0][0].set_ylabel(f"{label} ({plot_label(targets[0])})" if single
                           else f"{label} / SD (mean)")
     fig.tight_layout()
@@ -171,14 +173,14 @@ def _residuals_in_time(time: np.ndarray, actual: np.ndarray, predicted: np.ndarr
     return _png(fig)
 
 
-def _calib_hist(calib: np.ndarray, targets: list[str]) -> str:
+def _calib_hist(calib: np.ndarray, targets: list[str], source: str) -> str:
     plt = _pyplot()
     t = len(targets)
     fig, axes = plt.subplots(1, t, figsize=(4.5 * t, 3.2), squeeze=False)
     for j, name in enumerate(targets):
         ax = axes[0][j]
         ax.hist(calib[:, j], bins=30, color="slategray")
-        ax.set_xlabel(f"|LOO residual| {plot_label(name)}")
+        ax.set_xlabel(f"|{source} residual| {plot_label(name)}")
         ax.set_ylabel("rows")
     fig.tight_layout()
     return _png(fig)
@@ -186,9 +188,9 @@ def _calib_hist(calib: np.ndarray, targets: list[str]) -> str:
 
 def _metrics_rows(metrics: dict) -> list[list]:
     rows = []
-    for kind in ("loo", "holdout"):
+    for kind, label in ERROR_KINDS:
         for target, m in (metrics.get(kind) or {}).items():
-            rows.append([_Raw(_esc(kind)), _Raw(html_name(target)), m["rmse"], m["mae"], m["r2"],
+            rows.append([_Raw(_esc(label)), _Raw(html_name(target)), m["rmse"], m["mae"], m["r2"],
                          m["rows"]])
     return rows
 
@@ -218,22 +220,17 @@ def _cautions(manifest: dict) -> str:
             "less than half of the target's variance on unseen rows.</p>")
 
 
-def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
-           calib: np.ndarray | None) -> str:
-    """The report as one HTML string."""
-    targets = list(manifest["targets"])
-    tr = manifest.get("training", {})
-    kern = manifest["kernel"]
-    parts = [f"<!doctype html><html lang=en><head><meta charset=utf-8>"
-             f"<title>{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}"
-             f" — training report</title><style>{_STYLE}</style></head><body>",
-             f"<h1>{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}: "
-             f"training report</h1>",
-             f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>",
-             _cautions(manifest)]
+def _head(manifest: dict) -> list[str]:
+    title = f"{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}"
+    return [f"<!doctype html><html lang=en><head><meta charset=utf-8>"
+            f"<title>{title} — training report</title><style>{_STYLE}</style></head><body>",
+            f"<h1>{title}: training report</h1>",
+            f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>"]
 
-    parts.append("<h2>Data</h2>")
-    parts.append(_table(["", ""], [
+
+def _data_section(manifest: dict) -> list[str]:
+    tr = manifest.get("training", {})
+    return ["<h2>Data</h2>", _table(["", ""], [
         [_Raw("file"), _Raw(_esc(tr.get("data_file")))],
         [_Raw("sha256"), _Raw(f"<code>{_esc(tr.get('data_sha256'))}</code>")],
         [_Raw("rows"), tr.get("rows")],
@@ -244,11 +241,13 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
         [_Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
                                f" seed {tr.get('seed')})"],
         [_Raw("features"), _Raw(", ".join(map(html_name, manifest["features"])))],
-        [_Raw("targets"), _Raw(", ".join(map(html_name, targets)))],
+        [_Raw("targets"), _Raw(", ".join(map(html_name, manifest["targets"])))],
         [_Raw("final fit"), _Raw(_esc(tr.get("final_fit", "")))],
-    ], left=2))
+    ], left=2)]
 
-    parts.append("<h2>Chosen parameters</h2>")
+
+def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
+    kern = manifest["kernel"]
     params = ", ".join(f"{k}={_num(v, 6)}" for k, v in kern.get("params", {}).items())
     rows = [[_Raw("kernel"), _Raw(_esc(f"{kern['name']}({params})"))],
             [_Raw("ridge λ"), _Raw(_num(manifest["ridge"], 6))]]
@@ -260,67 +259,72 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
                  [_Raw("summary"), _Raw(_esc(tuning.get("summary", "")))]]
     else:
         rows.append([_Raw("how"), _Raw("given on the command line (no tuning)")])
-    parts.append(_table(["", ""], rows, left=2))
+    out = ["<h2>Chosen parameters</h2>", _table(["", ""], rows, left=2)]
     if tuning and len(tuning.get("per_kernel", {})) > 1:
-        parts.append("<p>Best of each kernel compared:</p>")
-        parts.append(_table(["kernel", "parameters", "ridge", "criterion"], [
+        out.append("<p>Best of each kernel compared:</p>")
+        out.append(_table(["kernel", "parameters", "ridge", "criterion"], [
             [_Raw(_esc(k)), _Raw(_esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items())
                                       or "–")), v["ridge"], v["score"]]
             for k, v in tuning["per_kernel"].items()], left=2))
+    return out
 
-    parts.append("<h2>Metrics</h2>")
-    parts.append(_table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
-                        _metrics_rows(manifest.get("metrics", {})), left=2))
-    parts.append("<p class=note>loo: exact leave-one-out of the final model (all rows); "
-                 "holdout: the model fitted on the training part, scored on the held-out rows."
-                 "</p>")
 
-    if tuning:
-        img = _curve_plot(tuning, targets)
-        if img:
-            label = tuning.get("error_label", "leave-one-out RMSE")
-            parts.append(f"<h2>Tuning: {_esc(label)} against ridge</h2>")
-            parts.append(img)
-            parts.append("<p class=note>One line per kernel parameter setting tried; "
-                         "the star marks the choice.</p>")
+def _metrics_section(manifest: dict, tuning: dict | None) -> list[str]:
+    out = ["<h2>Metrics</h2>",
+           _table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
+                  _metrics_rows(manifest.get("metrics", {})), left=2),
+           "<p class=note>LOO: exact leave-one-out of the final model (all rows); "
+           "holdout: scored on held-out rows by a model that never saw them; "
+           "validation: the Nyström validation part, which chose the final ridge.</p>"]
+    img = _curve_plot(tuning, list(manifest["targets"])) if tuning else None
+    if img:
+        out += [f"<h2>Tuning: {_esc(tuning['error_label'])} against ridge</h2>", img,
+                "<p class=note>One line per kernel parameter setting tried; "
+                "the star marks the choice.</p>"]
+    return out
 
-    if holdout_points:
-        actual = np.asarray(holdout_points["actual"], dtype=float)
-        predicted = np.asarray(holdout_points["predicted"], dtype=float)
-        parts.append("<h2>Holdout: parity and residuals</h2>")
-        parts.append(_parity_and_hist(actual, predicted, targets))
-        if holdout_points.get("time"):
-            span = (manifest.get("training") or {}).get("time") or {}
-            parts.append("<h2>Holdout residuals against time</h2>")
-            parts.append(_residuals_in_time(np.asarray(holdout_points["time"], dtype=float),
-                                            actual, predicted, targets,
-                                            span.get("kind", "").startswith("ISO")))
-    else:
-        actual = predicted = None
 
-    parts.append("<h2>Prediction intervals</h2>")
+def _holdout_section(manifest: dict, points: dict) -> list[str]:
+    targets = list(manifest["targets"])
+    actual = np.asarray(points["actual"], dtype=float)
+    predicted = np.asarray(points["predicted"], dtype=float)
+    out = ["<h2>Holdout: parity and residuals</h2>", _parity_and_hist(actual, predicted, targets)]
+    if points.get("time"):
+        span = (manifest.get("training") or {}).get("time") or {}
+        out += ["<h2>Holdout residuals against time</h2>",
+                _residuals_in_time(np.asarray(points["time"], dtype=float), actual, predicted,
+                                   targets, span.get("kind", "").startswith("ISO"))]
+    return out
+
+
+def _intervals_section(manifest: dict, points: dict | None,
+                       calib: np.ndarray | None) -> list[str]:
     intervals = manifest.get("intervals")
-    if intervals:
-        parts.append(f"<p>{_esc(intervals['method'])}; {intervals['calibration_rows']} "
-                     "calibration residuals.</p>")
-        cov = intervals.get("holdout_coverage")
-        note = intervals.get("holdout_coverage_method")
-        if cov is None and calib is not None and actual is not None:
-            cov = interval_coverage(calib, actual, predicted, COVERAGE_LEVELS)
-            note = ("half-widths from the stored calibration residuals (these include the "
-                    "holdout rows, so the check is optimistic)")
-        if cov:
-            rows = [[_Raw(html_name(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
-                     c["rows"]] for c in cov for j, t in enumerate(targets)]
-            parts.append(_table(["target", "nominal", "holdout coverage", "half-width",
-                                 "rows"], rows))
-            parts.append(f"<p class=note>{_esc(note)}</p>")
-        if calib is not None:
-            parts.append(_calib_hist(np.asarray(calib, dtype=float), targets))
-    else:
-        parts.append("<p>No interval calibration stored.</p>")
+    if not intervals:
+        return ["<h2>Prediction intervals</h2>", "<p>No interval calibration stored.</p>"]
+    targets = list(manifest["targets"])
+    out = ["<h2>Prediction intervals</h2>",
+           f"<p>{_esc(intervals['method'])}; {intervals['calibration_rows']} "
+           "calibration residuals.</p>"]
+    cov = intervals.get("holdout_coverage")
+    note = intervals.get("holdout_coverage_method")
+    if cov is None and calib is not None and points:
+        cov = interval_coverage(calib, np.asarray(points["actual"], dtype=float),
+                                np.asarray(points["predicted"], dtype=float), COVERAGE_LEVELS)
+        note = ("half-widths from the stored calibration residuals (these include the "
+                "holdout rows, so the check is optimistic)")
+    if cov:
+        rows = [[_Raw(html_name(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
+                 c["rows"]] for c in cov for j, t in enumerate(targets)]
+        out += [_table(["target", "nominal", "holdout coverage", "half-width", "rows"], rows),
+                f"<p class=note>{_esc(note)}</p>"]
+    if calib is not None:
+        out.append(_calib_hist(np.asarray(calib, dtype=float), targets,
+                               intervals.get("residuals", "calibration")))
+    return out
 
-    parts.append("<h2>Training envelope</h2>")
+
+def _envelope_section(manifest: dict) -> list[str]:
     env = manifest.get("envelope", {})
     std = manifest.get("standardization", {})
     rows = []
@@ -329,16 +333,29 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
         rows.append([_Raw(html_name(f)), r.get("min"), r.get("max"),
                      (std.get("mean") or [None] * (j + 1))[j],
                      (std.get("scale") or [None] * (j + 1))[j]])
-    parts.append(_table(["feature", "min", "max", "mean", "scale (SD)"], rows))
+    out = ["<h2>Training envelope</h2>",
+           _table(["feature", "min", "max", "mean", "scale (SD)"], rows)]
     nov = env.get("novelty", {})
     if nov:
-        parts.append(_table(["", ""], [
+        out.append(_table(["", ""], [
             [_Raw("novelty method"), _Raw(_esc(nov.get("method", "")))],
             [_Raw("k"), nov.get("k")],
             [_Raw("threshold distance"), nov.get("threshold_distance")],
             [_Raw("calibration"), _Raw(_esc(nov.get("calibration", "")))],
             [_Raw("training rows flagged"), nov.get("training_rows_flagged")],
         ], left=2))
+    return out
+
+
+def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
+           calib: np.ndarray | None) -> str:
+    """The report as one HTML string, section by section."""
+    parts = [*_head(manifest), _cautions(manifest), *_data_section(manifest),
+             *_parameters_section(manifest, tuning), *_metrics_section(manifest, tuning)]
+    if holdout_points:
+        parts += _holdout_section(manifest, holdout_points)
+    parts += _intervals_section(manifest, holdout_points, calib)
+    parts += _envelope_section(manifest)
     parts.append("</body></html>")
     return "\n".join(parts)
 

@@ -26,9 +26,9 @@ from service.cautions import BEFORE_ACTING
 from service.intervals import CoverageUnavailable
 from service.model import Model
 from service.text_safety import csv_cell
-from trainer.data import iter_chunks
 from trainer.errors import UserError
-from trainer.reader import BLOCK_BYTES
+from trainer.read.columns import iter_chunks
+from trainer.read.source import BLOCK_BYTES
 
 
 def _progress(quiet: bool):

@@ -25,6 +25,7 @@ def table(headers: list[str], rows: list[list], out=None) -> None:
 
 
 def fmt(value, digits: int = 4) -> str:
+    """A number as every table and summary of kridge writes it: ``digits`` significant."""
     if isinstance(value, float):
         return f"{value:.{digits}g}"
     return str(value)
@@ -38,6 +39,25 @@ def headline(metrics: dict, kind: str) -> str:
         for t, m in part.items()
     ]
     return "; ".join(bits) or "–"
+
+
+#: The error families a manifest's metrics hold, each shown by the method that produced it.
+ERROR_KINDS = (("loo", "LOO"), ("holdout", "holdout"), ("validation", "validation"))
+
+
+def error_lines(metrics: dict) -> list[tuple[str, str]]:
+    """One line per error family present, labelled by its method; holdout always shown."""
+    return [(label, headline(metrics, key)) for key, label in ERROR_KINDS
+            if metrics.get(key) or key == "holdout"]
+
+
+def first_error(metrics: dict) -> str:
+    """'holdout rmse=1.2' (or LOO, validation) for the first target: the versions table."""
+    for key, label in (ERROR_KINDS[1], ERROR_KINDS[2], ERROR_KINDS[0]):
+        first = next(iter((metrics.get(key) or {}).values()), None)
+        if first:
+            return f"{label} rmse={fmt(first.get('rmse', float('nan')))}"
+    return ""
 
 
 def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
@@ -57,8 +77,7 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         ("training rows", f"{tr.get('rows')} (holdout {tr.get('holdout_rows', 0)} rows, "
                           f"seed {tr.get('seed')}), "
                           f"data sha256 {str(tr.get('data_sha256'))[:16]}…"),
-        ("LOO", headline(m.get("metrics", {}), "loo")),
-        ("holdout", headline(m.get("metrics", {}), "holdout")),
+        *error_lines(m.get("metrics", {})),
     ]
     counts = tr.get("row_counts")
     if counts:

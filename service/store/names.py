@@ -9,7 +9,12 @@ from pathlib import Path
 
 from service.settings import default_store
 
-SCHEMA = 1
+#: The manifest schema this kridge writes. 2: the tuning record names its error by method
+#: (``error_method``; ``rmse`` in curves, per kernel and chosen, where 1 wrote ``loo_rmse``
+#: and ``cv_rmse`` whatever the method) and counts every decomposition made.
+SCHEMA = 2
+#: Schemas this kridge reads: what serving uses is the same in both.
+READABLE_SCHEMAS = (1, 2)
 NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 #: A version as text: ASCII digits only (str.isdigit also takes '²' and other scripts'
 #: digits, which int() then refuses), at most nine of them.

@@ -25,7 +25,7 @@ from service.store.files import NotRegular, read_regular
 from service.store.names import (
     ARRAY_NAME_RE,
     NAME_RE,
-    SCHEMA,
+    READABLE_SCHEMAS,
     NotFound,
     StoreError,
     Unwritable,
@@ -206,11 +206,11 @@ class StoreReader:
             raise read_fault(exc, f"{name} v{version}: manifest.json") from None
         except ValueError:
             raise StoreError(f"{name} v{version}: manifest.json is not valid JSON") from None
-        if not isinstance(manifest, dict) or manifest.get("schema") != SCHEMA:
+        if not isinstance(manifest, dict) or manifest.get("schema") not in READABLE_SCHEMAS:
             found = manifest.get("schema") if isinstance(manifest, dict) else None
             raise StoreError(
                 f"{name} v{version}: manifest schema {found!r} is not supported "
-                f"(this kridge reads schema {SCHEMA})"
+                f"(this kridge reads schemas {', '.join(map(str, READABLE_SCHEMAS))})"
             )
         return manifest
 

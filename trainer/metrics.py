@@ -1,0 +1,22 @@
+"""Per-target error metrics: the one place RMSE, MAE and R² are computed for every solver."""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+def scores(y_true: np.ndarray, y_pred: np.ndarray) -> dict[str, float]:
+    """RMSE, MAE and R² (1 − SS_res/SS_tot) of one target."""
+    err = y_true - y_pred
+    ss_tot = float(((y_true - y_true.mean()) ** 2).sum())
+    return {
+        "rmse": float(np.sqrt(np.mean(err**2))),
+        "mae": float(np.mean(np.abs(err))),
+        "r2": float(1.0 - (err**2).sum() / ss_tot) if ss_tot > 0 else float("nan"),
+        "rows": int(y_true.shape[0]),
+    }
+
+
+def per_target(targets: list[str], y: np.ndarray, pred: np.ndarray) -> dict:
+    """{target: :func:`scores`} for (n, t) actual and predicted values."""
+    return {t: scores(y[:, j], pred[:, j]) for j, t in enumerate(targets)}

@@ -1,0 +1,107 @@
+"""Pass 2 of a Nyström fit: every row gets a part, and the training part becomes sums.
+
+Parts — train, validate, holdout, calibrate — come from a seeded random draw per block (or,
+with ``--time``, from the row's time: the latest rows are held out, the stretch before
+calibrates, the one before that validates). Training rows are added into the Nyström sums
+(:mod:`trainer.nystrom.numerics`); the rows of the other parts (capped in size) are kept in memory.
+A block's result depends only on the block, so blocks can be summed here or on Dask workers
+(:mod:`trainer.nystrom.cluster`) and added in block order with the same outcome.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from service.kernels import KernelSpec
+from trainer.nystrom import numerics
+from trainer.read.columns import usable_rows
+from trainer.read.source import Block, Source
+from trainer.validation.splits import part_keys, parts_of_keys
+
+PARTS = ("train", "validate", "holdout", "calibrate")
+
+
+@dataclass
+class Plan:
+    """What every block needs to know to do its share of pass 2 (sent to Dask workers)."""
+
+    path: str
+    sep: str
+    decimal: str
+    features: list[str]
+    targets: list[str]
+    time: str | None
+    drop_incomplete: bool
+    mean: np.ndarray
+    scale: np.ndarray
+    spec: KernelSpec
+    landmarks: np.ndarray
+    seed: int
+    fractions: tuple[float, float, float]  # validate, holdout, calibrate (random parts)
+    time_cuts: tuple[float, float, float] | None = None  # validate, calibrate, holdout starts
+
+
+@dataclass
+class BlockResult:
+    sums: numerics.Sums
+    kept: dict = field(default_factory=dict)  # part → (x_s, y, t)
+
+
+def row_parts(plan: Plan, block: Block, n_rows: int, t: np.ndarray | None) -> np.ndarray:
+    """Part index (0 train, 1 validate, 2 holdout, 3 calibrate) of every row of a block."""
+    if plan.time_cuts is not None:
+        out = np.zeros(n_rows, dtype=np.int8)
+        v_cut, c_cut, h_cut = plan.time_cuts
+        out[t >= v_cut] = 1
+        out[t >= c_cut] = 3
+        out[t >= h_cut] = 2
+        return out
+    return parts_of_keys(part_keys(plan.seed, block.index, n_rows), plan.fractions)
+
+
+
+
+def block_sums(plan: Plan, block: Block, first_row: int) -> BlockResult:
+    """Pass 2 for one block: sums of its train rows, and its other parts' rows.
+
+    Runs locally or on a Dask worker (which opens the file itself); the result depends only
+    on the block, never on which machine computed it.
+    """
+    src = Source(plan.path, plan.sep, plan.decimal)
+    chunk = src.read_block(block, plan.features + plan.targets, plan.time, first_row)
+    d = len(plan.features)
+    keep = usable_rows(src, chunk, plan.features, plan.time, first_row,
+                       plan.drop_incomplete)[0]
+    t_all = chunk.time
+    part = row_parts(plan, block, keep.size, t_all)[keep]
+    v = chunk.values[keep]
+    x_s = (v[:, :d] - plan.mean) / plan.scale
+    y = v[:, d:]
+    t = t_all[keep] if t_all is not None else None
+    train = part == 0
+    sums = numerics.accumulate(plan.spec, plan.landmarks, x_s[train], y[train])
+    kept = {}
+    for i, name in enumerate(PARTS[1:], start=1):
+        sel = part == i
+        if sel.any():
+            kept[name] = (x_s[sel], y[sel], None if t is None else t[sel])
+    return BlockResult(sums, kept)
+
+
+@dataclass
+class HeldRows:
+    """Standardized rows of one held-out part (empty arrays when the part has none)."""
+
+    x: np.ndarray
+    y: np.ndarray
+    t: np.ndarray | None
+
+    @classmethod
+    def stack(cls, rows: list, d: int, t: int) -> HeldRows:
+        if not rows:
+            return cls(np.empty((0, d)), np.empty((0, t)), None)
+        times = None if rows[0][2] is None else np.concatenate([r[2] for r in rows])
+        return cls(np.concatenate([r[0] for r in rows]), np.concatenate([r[1] for r in rows]),
+                   times)
