@@ -60,7 +60,11 @@ class Nginx:
         assert check.returncode == 0, check.stderr
         self.proc = subprocess.Popen([NGINX, "-p", str(self.root), "-c", conf, "-g",
                                       "daemon off;"], stderr=subprocess.DEVNULL)
-        wait_for(lambda: self._answers(), 30, "nginx to listen")
+        try:
+            wait_for(lambda: self._answers(), 30, "nginx to listen")
+        except BaseException:  # no __exit__ after a failed __enter__: end it here
+            self.__exit__(None, None, None)
+            raise
         return self
 
     def _answers(self) -> bool:
