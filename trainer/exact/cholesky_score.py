@@ -1,8 +1,10 @@
 """One kernel setting and one ridge scored exactly through Cholesky factorizations.
 
 Where a search needs the error at a few ridge values only, a full eigendecomposition (which
-buys the whole ridge path) is wasted: one Cholesky factorization of K + λI costs about a
-sixteenth of it. With A = K + λI = L Lᵀ:
+buys the whole ridge path) is wasted: a Cholesky factorization of K + λI takes n³/3
+multiply-adds and the triangular inverse as many, where a symmetric eigendecomposition
+with vectors takes several n³ (Golub & Van Loan, *Matrix Computations*, 4th ed., §4.2 and
+§8.3; the measured ratio: DEVELOPERS.md, "Measured limits"). With A = K + λI = L Lᵀ:
 
 * leave-one-out: α = A⁻¹ y and, since A⁻¹ = L⁻ᵀ L⁻¹, diag(A⁻¹)_i = Σ_j (L⁻¹)_ji², the squared
   norms of the columns of the triangular inverse. The exact LOO residual (standardization and

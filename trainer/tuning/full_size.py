@@ -8,9 +8,10 @@ moved by bounded Brent line searches on log λ and log γ
 (``scipy.optimize.minimize_scalar(method="bounded")``; Brent, *Algorithms for Minimization
 without Derivatives*, 1973):
 
-1. ridge at γ₀ over λ₀ · [e^-2.3, e^3.7] (a larger sample usually wants a larger ridge);
-2. width at that ridge over γ₀ · [e^-0.7, e^1.0] (a larger sample usually wants a narrower
-   kernel);
+1. ridge at γ₀ over λ₀ · [e^-2.3, e^3.7] (leaning up: the penalty λ‖f‖² competes with a
+   sum over rows, which grows with them);
+2. width at that ridge over γ₀ · [e^-0.7, e^1.0] (leaning up: more rows usually bear a
+   narrower kernel; common practice, and the bracket moves if not);
 3. ridge once more, over a factor e either side, where the width moved.
 
 A line search whose best point lies at an end of its bracket moves the bracket past that end

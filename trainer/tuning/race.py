@@ -18,8 +18,9 @@ an :class:`Entry` in one race:
    closed-form error.
 
 The margins are no bound in the mathematical sense (the error as a function of width has
-no known Lipschitz constant); their values come from the gains the later steps were
-measured to bring (``bench/tuning_bench.py`` prints them, DEVELOPERS.md "Measured limits").
+no known Lipschitz constant): they are safety margins of common practice, held to account by
+comparing the race's choice with the full search's (``tests/test_tuning_speed.py``,
+``bench/tuning_bench.py --parts table``; DEVELOPERS.md, "Measured limits").
 """
 
 from __future__ import annotations
