@@ -19,7 +19,7 @@ from bench.tuning_data import competing, fine_sine, plant
 from service.kernels import KernelSpec, kernel_matrix
 from trainer.exact import cholesky_score, fit, loo
 from trainer.exact.fit import Standardizer, fit_exact
-from trainer.tuning import race
+from trainer.tuning import race, workers
 from trainer.tuning import search as tuning
 from trainer.validation import folds as validation
 
@@ -122,9 +122,20 @@ def test_records_and_summary_count_what_ran(monkeypatch):
     monkeypatch.setattr(race, "COARSE_ROWS", 80)
     eigh = _spy(monkeypatch, scipy.linalg, "eigh")
     chol = _spy(monkeypatch, scipy.linalg, "cho_factor")
+    made: list[workers.Runner] = []
+
+    class Kept(workers.Runner):  # the search's runner, kept to read its progress counts
+        def __init__(self, *args, **kw):
+            super().__init__(*args, **kw)
+            made.append(self)
+
+    monkeypatch.setattr(tuning, "Runner", Kept)
     x, y = competing(200, seed=4)
     acc = _tune(x, y, "auto").account
     assert acc["decompositions"] == len(eigh) and acc["factorizations"] == len(chol) > 0
+    # the progress bar counts the same work and the same settings raced out
+    assert made[0].counts == {"eigh": len(eigh), "cholesky": len(chol),
+                              "raced out": len(acc["raced_out"])}
     # every eigendecomposition ran on the subsample: all rows are only ever factorized
     assert set(eigh) == {80} and set(chol) == {200}
     assert f"{len(eigh)} decompositions, {len(chol)} factorizations" in acc["summary"]
