@@ -124,6 +124,7 @@ def line_search(f: Callable[[float], float], lo: float, hi: float, tol: float,
 
     for _ in range(EDGE_MOVES + 1):
         lo, hi = max(lo, limits[0]), min(hi, limits[1])
+        lo = min(lo, hi - tol)  # a start outside the limits still gets a bracket inside
         minimize_scalar(g, bounds=(lo, hi), method="bounded",
                         options={"xatol": tol, "maxiter": STEPS_PER_SEARCH})
         best = min(seen, key=seen.get)
