@@ -96,12 +96,15 @@ def permutation_test(k: np.ndarray, n: int, permutations: int,
     """MMD²_u of the first ``n`` rows against the rest of the joint kernel matrix ``k``, and
     its permutation p-value (1 + #{permuted ≥ observed}) / (1 + B).
 
+    The diagonal of ``k`` is set to zero in place (the U-statistic leaves it out; no copy of
+    an (N, N) matrix).
+
     Under no drift the rows are exchangeable, so p ≤ α has probability at most α for any
     sample size (a Monte Carlo permutation test; Gretton et al. 2012, section 5).
     """
     big = k.shape[0]
     m = big - n
-    k0 = k.copy()
+    k0 = k
     np.fill_diagonal(k0, 0.0)
     rows = k0.sum(axis=1)
     total = float(rows.sum())
