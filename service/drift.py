@@ -104,13 +104,12 @@ def permutation_test(k: np.ndarray, n: int, permutations: int,
     """
     big = k.shape[0]
     m = big - n
-    k0 = k
-    np.fill_diagonal(k0, 0.0)
-    rows = k0.sum(axis=1)
+    np.fill_diagonal(k, 0.0)
+    rows = k.sum(axis=1)
     total = float(rows.sum())
 
     def stats(member: np.ndarray) -> np.ndarray:
-        sxx, syy, sxy = _split_sums(k0, rows, total, member)
+        sxx, syy, sxy = _split_sums(k, rows, total, member)
         return sxx / (n * (n - 1)) + syy / (m * (m - 1)) - 2.0 * sxy / (n * m)
 
     first = np.zeros((big, 1))
