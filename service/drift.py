@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from service.kernels import KernelSpec, kernel_matrix, row_sq_norms
+from service.kernels import KernelSpec, kernel_matrix, squared_distances
 
 #: Rows kept per side (seeded uniform subsample above it).
 MAX_ROWS = 2000
@@ -48,8 +48,7 @@ def median_gamma(rows: np.ndarray) -> float:
     The median heuristic (Gretton et al. 2012, section 8; common practice). Falls back to
     γ = 1/d when at least half the pairs coincide (σ = 0).
     """
-    sq = row_sq_norms(rows)
-    d2 = np.maximum(sq[:, None] + sq[None, :] - 2.0 * rows @ rows.T, 0.0)
+    d2 = squared_distances(rows, rows)
     sigma = float(np.median(np.sqrt(d2[np.triu_indices(rows.shape[0], k=1)])))
     return 1.0 / (2.0 * sigma * sigma) if sigma > 0 else 1.0 / rows.shape[1]
 
