@@ -154,7 +154,7 @@ class Engine:
             self.xt = self.x.T
             if not self.xt.flags.c_contiguous:
                 self.xt = np.ascontiguousarray(self.xt)
-            prepare_l1(self.dtype)
+            prepare_l1(self.xt)
             self.aug = None
             self.width = self.d
         else:
