@@ -7,12 +7,13 @@ twin) stays in the per-core L2 cache, the kernel's elementwise step runs in plac
 (:func:`service.kernels.finish_tile`), and the tile's product with α is accumulated. Extra
 memory is O(tile × threads) whatever the batch size.
 
-Every kernel but the laplacian has an affine part that one matrix product computes whole from
-augmented operands (:func:`service.kernels.augmented_columns`): −c‖q − x‖² for the distance
-kernels, γ qᵀx + c₀ for the dot kernels. A single row then costs what the machine's floor
-costs (one GEMV, one elementwise pass, one dot) plus a few µs of Python. The price is a
-private copy of the training rows, (d + 2)·n·8 bytes per process (2.9 MB at 20,000 × 16);
-the memory-mapped original stays shared and unread.
+The tiles come from :class:`service.kernels.KernelBlocks`, the one kernel computation that
+training uses too, run on buffers the engine keeps. Every kernel but the laplacian has an
+affine part that one matrix product computes whole from augmented operands: −c‖q − x‖² for
+the distance kernels, γ qᵀx + c₀ for the dot kernels. A single row then costs what the
+machine's floor costs (one GEMV, one elementwise pass, one dot) plus a few µs of Python.
+The price is a private copy of the training rows, (d + 2)·n·8 bytes per process (2.9 MB at
+20,000 × 16), beside the training rows the store read into memory at load.
 
 For distance kernels the same product also yields the squared distances to any chosen
 training rows; the envelope's novelty score (k-th nearest reference row, when the reference
@@ -30,25 +31,15 @@ Two paths:
 
 from __future__ import annotations
 
-import math
 import threading
 
 import numpy as np
 
 from service.engine_threads import buffers, engine_threads, single_blas
 from service.engine_threads import pool as thread_pool
-from service.envelope import kth_value
-from service.kernels import (
-    KernelSpec,
-    augmented_columns,
-    augmented_width,
-    finish_tile,
-    query_factor,
-    row_sq_norms,
-    sqdist_scale,
-)
+from service.envelope import kth_distances
+from service.kernels import KernelBlocks, KernelSpec, finish_tile
 from service.l1_distance import prepare as prepare_l1
-from service.l1_distance import scaled_l1
 
 #: Elements in one kernel tile: 2¹⁶ float64 = 512 KiB. With the scratch twin that some
 #: kernels need it is 1 MiB, half of the 2 MiB per-core L2 of the machines we measured, so
@@ -83,8 +74,8 @@ class Engine:
     Parameters
     ----------
     spec : kernel and parameters.
-    x_train : (n, d) standardized training rows. A float64 array (such as a read-only
-        memory map) is read as is; kernels with an affine part keep a private augmented
+    x_train : (n, d) standardized training rows. A float64 array (such as the read-only
+        array the store loads) is read as is; kernels with an affine part keep a private augmented
         copy (see the module notes), the laplacian a feature-major view or copy.
     dual : (n,) or (n, t) dual coefficients α.
     threads : worker threads for large batches (default :func:`engine_threads`).
@@ -127,7 +118,7 @@ class Engine:
         self.dtype = np.dtype(dtype)
         if self.dtype not in (np.float64, np.float32):
             raise ValueError(f"engine precision must be float64 or float32, not {self.dtype}")
-        # np.asarray drops the memmap subclass (whose per-view Python hooks cost µs per
+        # np.asarray drops any ndarray subclass (a memmap's per-view Python hooks cost µs per
         # slice) but keeps the same memory; only a wrong dtype or a strided view forces a
         # copy. Row-major and column-major (how bundles store laplacian models) both serve.
         x = np.asarray(x_train)
@@ -148,20 +139,11 @@ class Engine:
         self.tile_elements = tile_elements or TILE_ELEMENTS
         default_rows = ROW_TILE_L1 if spec.uses == "l1" else ROW_TILE
         self.row_tile = max(1, min(row_tile or default_rows, self.tile_elements))
+        # X̃, or for the laplacian X feature-major (a column-major X, as laplacian bundles
+        # store it, is used as it is; a row-major one gets a private copy)
+        self.blocks = KernelBlocks(spec, self.x, self.dtype, shift, scale)
         if spec.uses == "l1":
-            # (d, n): the compiled L1 loop reads each feature's values as one contiguous
-            # run. A column-major X gives that for free; a row-major one gets a private copy.
-            self.xt = self.x.T
-            if not self.xt.flags.c_contiguous:
-                self.xt = np.ascontiguousarray(self.xt)
             prepare_l1(self.dtype)
-            self.aug = None
-            self.width = self.d
-        else:
-            aug = augmented_columns(spec, self.x)
-            self.aug = aug if aug.dtype == self.dtype else aug.astype(self.dtype)
-            self.xt = None
-            self.width = augmented_width(spec, self.d)
         self._near: tuple[np.ndarray, int] | None = None
         if neighbours is not None and spec.uses == "sqdist" and self.dtype == np.float64:
             rows, k = neighbours
@@ -172,16 +154,11 @@ class Engine:
                 self._near = (rows, min(int(k), rows.size) - 1)
         self._splits: dict[int, list[tuple[int, int, np.ndarray]]] = {}
         self._tls = threading.local()
-        self.shift = None if shift is None else np.asarray(shift, dtype=np.float64)
-        self.scale = None if scale is None else np.asarray(scale, dtype=np.float64)
-        self._factor = factor = query_factor(spec)
-        # Q̃'s leading block is f·s(x) = (x − shift)·(f/scale); −c‖s(x)‖² = −‖f·s(x)‖²/(4c)
-        self._lead = factor if self.scale is None else factor / self.scale
-        self._sq = -1.0 / (2.0 * factor) if spec.uses == "sqdist" else 0.0
+        self.shift = shift
         self.offset = np.zeros(self.targets) if offset is None else (
             np.asarray(offset, dtype=np.float64).reshape(self.targets))
         # [α; offset] for the single-tile path (float64 with an affine part only)
-        self._fast_ok = self.aug is not None and self.dtype == np.float64
+        self._fast_ok = spec.uses != "l1" and self.dtype == np.float64
         self._dual_ext = np.vstack([self.dual, self.offset[None, :]]) if self._fast_ok else None
         self._fast_rows = self.tile_elements // self.n if self._fast_ok else 0
         self._split_from = COLUMN_SPLIT_MIN / SPLIT_WEIGHT.get(spec.name, 1.0)
@@ -199,11 +176,10 @@ class Engine:
             rows = max(rows, self.row_tile if rows > 1 else 1)
             near = None if self._near is None else np.empty((rows, self._near[0].size))
             bufs = self._tls.bufs = (
-                np.empty((rows, self.width)),
+                self.blocks.rows_buffer(rows),
                 np.empty((rows, self.targets), self.dtype),
                 near,
             )
-            self._constant_columns(bufs[0])
         return bufs
 
     def _one_tile(self, m: int) -> tuple:
@@ -218,8 +194,7 @@ class Engine:
         if got is None:
             n = self.n
             flat, flat2 = buffers(m * (n + 1), self.dtype)
-            qa = np.empty((m, self.width))
-            self._constant_columns(qa)
+            qa = self.blocks.rows_buffer(m)
             ext = flat[: m * (n + 1)].reshape(m, n + 1)
             gather = self._scratch(m)[2]
             got = views[m] = (
@@ -231,32 +206,6 @@ class Engine:
                 None if gather is None else gather[:m],
             )
         return got
-
-    def _constant_columns(self, qa: np.ndarray) -> None:
-        """The 1 column(s) of Q̃ (:func:`augmented_columns`), written once per buffer."""
-        if self.spec.uses == "sqdist":
-            qa[:, self.d + 1] = 1.0
-        elif self.width > self.d:
-            qa[:, self.d] = 1.0
-
-    def _operand(self, q: np.ndarray, out: np.ndarray, head: np.ndarray, raw: bool) -> None:
-        """Q̃ of rows ``q`` into ``out`` (m, width) whose leading block (m, d) is ``head``
-        and whose constant columns are set already (:meth:`_constant_columns`).
-
-        ``raw``: standardize on the way, (q − shift)·(f/scale), one pass fewer than s(q)
-        followed by f·s(q).
-        """
-        if raw:
-            np.subtract(q, self.shift, out=head)
-            np.multiply(head, self._lead, out=head)
-        else:
-            np.multiply(q, self._factor, out=head)
-        if self._sq:
-            if q.shape[0] == 1:  # a dot product is several times cheaper than einsum's set-up
-                v = head.reshape(-1)
-                out[0, self.d] = self._sq * np.dot(v, v)
-            else:
-                np.multiply(row_sq_norms(head), self._sq, out=out[:, self.d])
 
     def _split(self, cols: int) -> list[tuple[int, int, np.ndarray]]:
         """Per column tile of width ``cols``: the neighbour rows it holds (start, stop in
@@ -281,7 +230,7 @@ class Engine:
         m = q.shape[0]
         spec, n, dual = self.spec, self.n, self.dual
         first, n = (0, n) if columns is None else columns  # n: the end of the range now
-        l1 = self.aug is None
+        blocks = self.blocks
         r = min(m, self.row_tile)
         cols = min(n - first, max(1, self.tile_elements // r))
         single = self.dtype == np.float32
@@ -291,28 +240,17 @@ class Engine:
         for i in range(0, m, r):
             qi = q[i : i + r]
             ri = qi.shape[0]
-            if l1:
-                qs = (qi - self.shift) / self.scale if raw else qi
-                qs = qs.astype(self.dtype, order="C", copy=False)
-            else:
-                qs = qbuf[:ri]
-                self._operand(qi, qs, qs[:, : self.d], raw)
-                if single:
-                    qs = qs.astype(np.float32)
+            qs = blocks.rows(qi, qbuf[:ri], raw)
             oi = out[i : i + r]
             for t, j in enumerate(range(first, n, cols)):
                 w = min(cols, n - j)
                 tile = flat[: ri * w].reshape(ri, w)
                 scratch = flat2[: ri * w].reshape(ri, w)
-                if l1:
-                    scaled_l1(qs, self.xt, j, -spec.gamma, tile)
-                    np.exp(tile, out=tile)
-                else:
-                    np.matmul(qs, self.aug[:, j : j + w], out=tile)
-                    if split is not None:  # u = −c‖q − x‖² of the neighbour rows, before exp
-                        lo, hi, at = split[t]
-                        np.take(tile, at, axis=1, out=gather[:ri, lo:hi], mode="clip")
-                    finish_tile(spec, tile, scratch)
+                blocks.exponent(qs, tile, j)
+                if split is not None:  # u = −c‖q − x‖² of the neighbour rows, before exp
+                    lo, hi, at = split[t]
+                    np.take(tile, at, axis=1, out=gather[:ri, lo:hi], mode="clip")
+                finish_tile(spec, tile, scratch)
                 if j == first and not single:
                     np.matmul(tile, dual[j : j + w], out=oi)
                 else:
@@ -323,35 +261,22 @@ class Engine:
                     else:
                         oi += a
             if near is not None:
-                self._kth(gather[:ri], near[i : i + ri])
-
-    def _kth(self, u: np.ndarray, out: np.ndarray) -> None:
-        """k-th smallest distance per row from u = −c‖q − x‖² (partially sorted in place)."""
-        k = self._near[1]
-        scale = -1.0 / sqdist_scale(self.spec)
-        if u.shape[0] == 1:  # the k-th smallest distance is the k-th largest u
-            out[0] = math.sqrt(max(kth_value(u[0], k, largest=True) * scale, 0.0))
-            return
-        at = u.shape[1] - 1 - k
-        u.partition(at, axis=1)
-        np.multiply(u[:, at], scale, out=out)
-        np.maximum(out, 0.0, out=out)
-        np.sqrt(out, out=out)
+                kth_distances(gather[:ri], self._near[1], self.blocks.c, near[i : i + ri])
 
     def _fast(self, q: np.ndarray, near: np.ndarray | None, raw: bool) -> np.ndarray:
         """A batch that fits one tile, float64, affine kernel: one product, one elementwise
         step, one product with [α; offset] (the offset added by the same product), on views
         built once (the single-row path)."""
         qa, head, ext, tile, scratch, gather = self._one_tile(q.shape[0])
-        self._operand(q, qa, head, raw)
-        np.matmul(qa, self.aug, out=tile)
+        blocks = self.blocks
+        blocks.exponent(blocks.rows(q, qa, raw, head), tile)
         if near is not None:
             np.take(tile, self._near[0], axis=1, out=gather, mode="clip")
         finish_tile(self.spec, tile, scratch)
         ext[:, self.n] = 1.0 if raw else 0.0
         out = np.dot(ext, self._dual_ext)  # np.dot: ~1 µs less set-up than matmul here
         if near is not None:
-            self._kth(gather, near)
+            kth_distances(gather, self._near[1], self.blocks.c, near)
         return out
 
     def _column_split(self, q: np.ndarray, out: np.ndarray, raw: bool) -> None:

@@ -15,7 +15,7 @@ import math
 
 import numpy as np
 
-from service.kernels import row_sq_norms
+from service.kernels import KernelBlocks
 
 #: Neighbours counted (common practice: small k, here 5).
 NOVELTY_K = 5
@@ -45,44 +45,51 @@ def kth_value(v: np.ndarray, k: int, largest: bool = False) -> float:
     return float(np.partition(cand, at)[at])
 
 
+def kth_distances(u: np.ndarray, k: int, c: float, out: np.ndarray) -> np.ndarray:
+    """Per row of u = −c‖q − x‖² (:class:`service.kernels.KernelBlocks`), the Euclidean
+    distance to the k-th nearest column (k from 0), into ``out``; u is partially sorted in
+    place. The k-th smallest distance is the k-th largest u: √max(−u/c, 0)."""
+    scale = -1.0 / c
+    if u.shape[0] == 1:
+        out[0] = math.sqrt(max(kth_value(u[0], k, largest=True) * scale, 0.0))
+        return out
+    at = u.shape[1] - 1 - k
+    u.partition(at, axis=1)
+    np.multiply(u[:, at], scale, out=out)
+    np.maximum(out, 0.0, out=out)
+    return np.sqrt(out, out=out)
+
+
 class NeighbourIndex:
     """Distances from query rows to their k-th nearest reference row, built once per model.
 
-    The reference is stored augmented as A = [−2R | ‖r‖²] so that for q̃ = [q, 1]
-    (A q̃)_j + ‖q‖² = ‖q − r_j‖²: one matrix product per batch (one GEMV for a single row,
-    the service's common case), then a partial sort.
+    The reference is prepared once as squared-distance kernel blocks
+    (:class:`service.kernels.KernelBlocks`, ``"sqeuclidean"``): one matrix product per batch
+    gives u = −‖q − r_j‖² (one GEMV for a single row, the service's common case), then a
+    partial sort.
     """
 
     def __init__(self, reference: np.ndarray, k: int):
         reference = np.asarray(reference, dtype=np.float64)
         self.rows, self.d = reference.shape
         self.k = k
-        self.aug = np.empty((self.rows, self.d + 1))
-        np.multiply(reference, -2.0, out=self.aug[:, : self.d])
-        self.aug[:, self.d] = row_sq_norms(reference)
+        self.blocks = KernelBlocks("sqeuclidean", reference)
 
     def distances(self, q: np.ndarray, skip_self: bool = False, block: int = 1024) -> np.ndarray:
         """Euclidean distance from each row of ``q`` (m, d) to its k-th nearest reference row.
 
         ``skip_self``: the queries are the reference rows themselves, so the zero distance to
-        itself is not counted (leave-one-out). Computed as √max(‖q‖² − 2qᵀr + ‖r‖², 0).
+        itself is not counted (leave-one-out).
         """
         kk = min(self.k + int(skip_self), self.rows) - 1
         m = q.shape[0]
-        if m == 1:  # the service's common case: one GEMV, one selection, scalars
-            q_aug = np.ones(self.d + 1)
-            q_aug[: self.d] = q[0]
-            sq = kth_value(self.aug @ q_aug, kk) + float(np.dot(q[0], q[0]))
-            return np.array([math.sqrt(max(sq, 0.0))])
-        q_aug = np.ones((m, self.d + 1))
-        q_aug[:, : self.d] = q
         out = np.empty(m)
+        u = np.empty((min(m, block), self.rows))
         for start in range(0, m, block):
-            t = q_aug[start : start + block] @ self.aug.T
-            out[start : start + block] = np.partition(t, kk, axis=1)[:, kk]
-        out += row_sq_norms(q)
-        np.maximum(out, 0.0, out=out)
-        return np.sqrt(out, out=out)
+            qb = q[start : start + block]
+            ub = self.blocks.exponent(self.blocks.rows(qb), u[: qb.shape[0]])
+            kth_distances(ub, kk, 1.0, out[start : start + block])
+        return out
 
 
 def rows_within(rows: np.ndarray, x: np.ndarray) -> np.ndarray | None:

@@ -1,112 +1,50 @@
-"""Kernel functions: the one definition shared by training and serving.
+"""Kernel blocks: the one computation of kernel values and of distances between rows.
 
-All kernels act on standardized rows ``a`` and ``b``:
+Every kernel value kridge computes (the exact fit's matrix, Nyström's landmark blocks, the
+serving engine's tiles) and every Euclidean or L1 distance between rows (the width search,
+k-means++ seeding, the novelty neighbours) comes from :class:`KernelBlocks`, in three steps:
 
-==========  ==========================================  ==========================
-name        k(a, b)                                     parameters
-==========  ==========================================  ==========================
-linear      aᵀb                                         –
-polynomial  (γ aᵀb + c₀)^d                              gamma, coef0, degree
-rbf         exp(-γ ‖a − b‖²)                            gamma
-laplacian   exp(-γ ‖a − b‖₁)                            gamma
-sigmoid     tanh(γ aᵀb + c₀)                            gamma, coef0
-matern32    (1 + √3 r/ℓ) exp(-√3 r/ℓ)                   gamma, with ℓ = 1/√(2γ)
-matern52    (1 + √5 r/ℓ + 5r²/(3ℓ²)) exp(-√5 r/ℓ)       gamma, with ℓ = 1/√(2γ)
-==========  ==========================================  ==========================
+1. affine operands: the fixed side X (training rows, landmarks, novelty reference) is
+   prepared once as X̃, each block of query rows as Q̃;
+2. one product u = Q̃·X̃ (the laplacian's and the L1 distance's u = −s‖q − x‖₁ come from the
+   compiled loop of :mod:`service.l1_distance` instead, as matrix products cannot form it);
+3. the kernel's elementwise finish k = φ(u) in place (:func:`finish_tile`); distances skip it.
 
-The first five follow scikit-learn's ``sklearn.metrics.pairwise`` definitions; the Matérn
-kernels are those of Rasmussen & Williams, *Gaussian Processes for Machine Learning* (2006),
-eq. 4.17, with the length scale tied to γ so that γ means the same as for rbf
-(exp(-γ r²) = exp(-r²/(2ℓ²))).
+==========================  ===================  ======================  ===================
+form                        X̃ (rows × n)         Q̃ (m × width)           u
+==========================  ===================  ======================  ===================
+rbf, Matérn                 [xᵀ; 1; −c‖x‖²]      [2c q, −c‖q‖², 1]       −c‖q − x‖²
+``"sqeuclidean"``           the same with c = 1                          −‖q − x‖²
+polynomial, sigmoid         [xᵀ; c₀]             [γ q, 1]                γ qᵀx + c₀
+linear                      xᵀ (a view)          q                       qᵀx
+laplacian                   xᵀ (feature-major)   q                       −γ‖q − x‖₁
+``"cityblock"``             xᵀ (feature-major)   q                       −‖q − x‖₁
+==========================  ===================  ======================  ===================
+
+c is :func:`service.kernel_spec.sqdist_scale`. The names and parameters of the kernels are
+defined in :mod:`service.kernel_spec` (re-exported here).
 """
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass
-
 import numpy as np
 
-from service.errors import UserError
+from service.kernel_spec import (
+    KERNEL_NAMES,
+    KERNEL_PARAMS,
+    KernelSpec,
+    default_spec,
+    sqdist_scale,
+)
 from service.l1_distance import scaled_l1
 
-KERNEL_NAMES = ("linear", "polynomial", "rbf", "laplacian", "sigmoid", "matern32", "matern52")
+__all__ = [
+    "DISTANCES", "KERNEL_NAMES", "KERNEL_PARAMS", "KernelBlocks", "KernelSpec", "default_spec",
+    "finish_tile", "kernel_block", "kernel_matrix", "l1_distances", "squared_distances",
+]
 
-#: Which parameters each kernel reads. Anything else given for it is refused.
-KERNEL_PARAMS: dict[str, tuple[str, ...]] = {
-    "linear": (),
-    "polynomial": ("gamma", "degree", "coef0"),
-    "rbf": ("gamma",),
-    "laplacian": ("gamma",),
-    "sigmoid": ("gamma", "coef0"),
-    "matern32": ("gamma",),
-    "matern52": ("gamma",),
-}
-
-_DOT_KERNELS = ("linear", "polynomial", "sigmoid")
-_SQDIST_KERNELS = ("rbf", "matern32", "matern52")
-
-
-@dataclass(frozen=True)
-class KernelSpec:
-    """A kernel and its parameters, fully resolved (no defaults left open)."""
-
-    name: str
-    gamma: float | None = None
-    degree: float | None = None
-    coef0: float | None = None
-
-    def __post_init__(self) -> None:
-        if self.name not in KERNEL_PARAMS:
-            raise UserError(
-                f"unknown kernel {self.name!r}; choose one of {', '.join(KERNEL_NAMES)}"
-            )
-        for key in ("gamma", "degree", "coef0"):
-            value = getattr(self, key)
-            if key in KERNEL_PARAMS[self.name]:
-                if value is None or not math.isfinite(value):
-                    raise UserError(f"kernel {self.name} needs a finite {key}")
-            elif value is not None:
-                raise UserError(f"kernel {self.name} takes no {key}")
-        if self.gamma is not None and self.name != "sigmoid" and self.gamma <= 0:
-            raise UserError(f"gamma must be positive for the {self.name} kernel")
-        if self.degree is not None and self.degree < 1:
-            raise UserError("degree must be at least 1")
-
-    @property
-    def uses(self) -> str:
-        """``"dot"``, ``"sqdist"`` or ``"l1"``: the pairwise quantity the kernel is built on."""
-        if self.name in _DOT_KERNELS:
-            return "dot"
-        return "sqdist" if self.name in _SQDIST_KERNELS else "l1"
-
-    def params(self) -> dict[str, float]:
-        """The kernel's parameters as a plain dict (manifest form)."""
-        return {key: getattr(self, key) for key in KERNEL_PARAMS[self.name]}
-
-    @classmethod
-    def from_params(cls, name: str, params: dict[str, float]) -> KernelSpec:
-        """Rebuild a spec from its manifest form."""
-        allowed = KERNEL_PARAMS.get(name, ())
-        return cls(name, **{k: float(v) for k, v in params.items() if k in allowed})
-
-    def describe(self) -> str:
-        """Short human form, e.g. ``rbf(gamma=0.05)``."""
-        inner = ", ".join(f"{k}={v:.6g}" for k, v in self.params().items())
-        return f"{self.name}({inner})"
-
-
-def default_spec(name: str, n_features: int, gamma=None, degree=None, coef0=None) -> KernelSpec:
-    """Fill omitted parameters with scikit-learn's defaults: γ = 1/n_features, d = 3, c₀ = 1."""
-    wanted = KERNEL_PARAMS.get(name)
-    if wanted is None:
-        KernelSpec(name)  # raises the unknown-kernel error
-    values = {"gamma": gamma, "degree": degree, "coef0": coef0}
-    fallback = {"gamma": 1.0 / max(n_features, 1), "degree": 3.0, "coef0": 1.0}
-    return KernelSpec(
-        name,
-        **{k: (fallback[k] if values[k] is None else float(values[k])) for k in wanted},
-    )
+#: The distances a :class:`KernelBlocks` gives instead of a kernel: ‖q − x‖² and ‖q − x‖₁.
+DISTANCES = ("sqeuclidean", "cityblock")
 
 
 def row_sq_norms(a: np.ndarray) -> np.ndarray:
@@ -114,115 +52,142 @@ def row_sq_norms(a: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", a, a)
 
 
-def sqdist_scale(spec: KernelSpec) -> float:
-    """The factor c with which a distance kernel reads c·‖a − b‖².
+class KernelBlocks:
+    """k(q_i, x_j), or a distance, for blocks of query rows against rows x prepared once.
 
-    rbf reads γ r²; Matérn reads t² = 2ν · 2γ · r² (t = √(2ν) r / ℓ, ℓ = 1/√(2γ)).
+    Parameters
+    ----------
+    form : a :class:`KernelSpec`, or ``"sqeuclidean"`` / ``"cityblock"`` for distances.
+    x : (n, d) rows of the fixed side, read as they are (X̃ is a new array but for linear
+        and a feature-major x with an L1 form, where it is a view).
+    dtype : precision of X̃ and of the blocks (float64, or float32 for the engine's option).
+    shift, scale : optional standardization s(q) = (q − shift) / scale that
+        :meth:`rows` folds into Q̃ when asked (``raw=True``).
+
+    Notes
+    -----
+    See the module table. :meth:`rows`, :meth:`exponent` and :func:`finish_tile` are the three
+    steps on buffers the caller keeps (the engine); :meth:`block` runs them on new arrays.
     """
-    if spec.name == "rbf":
-        return spec.gamma
-    return 2.0 * (3.0 if spec.name == "matern32" else 5.0) * spec.gamma
 
+    def __init__(self, form: KernelSpec | str, x: np.ndarray, dtype=np.float64,
+                 shift: np.ndarray | None = None, scale: np.ndarray | None = None):
+        kernel = isinstance(form, KernelSpec)
+        if not kernel and form not in DISTANCES:
+            raise ValueError(f"unknown distance {form!r}; choose one of {', '.join(DISTANCES)}")
+        self.spec = form if kernel else None
+        self.dtype = np.dtype(dtype)
+        self.uses = form.uses if kernel else ("sqdist" if form == "sqeuclidean" else "l1")
+        self.n, self.d = x.shape
+        #: c of u = −c‖q − x‖² (sqdist forms; 0 otherwise)
+        self.c = (sqdist_scale(form) if kernel else 1.0) if self.uses == "sqdist" else 0.0
+        linear = kernel and form.name == "linear"
+        if self.uses == "sqdist":
+            self.factor = 2.0 * self.c
+        else:
+            self.factor = form.gamma if kernel and self.uses == "dot" and not linear else 1.0
+        self.width = self.d + (2 if self.uses == "sqdist" else
+                               int(self.uses == "dot" and not linear))
+        if self.uses == "l1":
+            self.l1_scale = -(form.gamma if kernel else 1.0)
+            # (d, n): the compiled loop reads each feature's values as one contiguous run; a
+            # column-major x gives that for free, a row-major one gets a copy
+            xt = x.T
+            if xt.dtype != self.dtype or not xt.flags.c_contiguous:
+                xt = np.ascontiguousarray(xt, dtype=self.dtype)
+            self.columns = xt
+        else:
+            cols = self._augmented_columns(form, x, linear)
+            self.columns = cols if cols.dtype == self.dtype else cols.astype(self.dtype)
+        self.shift = None if shift is None else np.asarray(shift, dtype=np.float64)
+        scale = None if scale is None else np.asarray(scale, dtype=np.float64)
+        self.scale = scale
+        # Q̃'s leading block is f·s(q) = (q − shift)·(f/scale); −c‖s(q)‖² = −‖f·s(q)‖²/(4c)
+        self._lead = self.factor if scale is None else self.factor / scale
+        self._sq = -1.0 / (2.0 * self.factor) if self.uses == "sqdist" else 0.0
 
-def prepare_columns(
-    spec: KernelSpec, x: np.ndarray, x_sq: np.ndarray | None = None
-) -> np.ndarray | None:
-    """Training-side term of :func:`kernel_tile`, computed once per model.
+    def _augmented_columns(self, form, x: np.ndarray, linear: bool) -> np.ndarray:
+        """X̃ of the module table for the affine forms (a view of x for linear)."""
+        if linear:
+            return x.T
+        d, n = self.d, self.n
+        out = np.empty((self.width, n))
+        out[:d] = x.T
+        if self.uses == "sqdist":
+            out[d] = 1.0
+            out[d + 1] = -self.c * row_sq_norms(x)
+        else:
+            out[d] = form.coef0
+        return out
 
-    Returns c·‖x_j‖² for distance kernels (c from :func:`sqdist_scale`), None for the others.
-    Length n; never a copy of ``x`` itself, so a memory-mapped training matrix stays shared
-    between processes.
-    """
-    if spec.uses == "sqdist":
-        return sqdist_scale(spec) * (row_sq_norms(x) if x_sq is None else x_sq)
-    return None
+    # -- step 1: the query operand ---------------------------------------------------------
+    def rows_buffer(self, m: int) -> np.ndarray:
+        """A float64 (m, width) buffer for Q̃ with its constant column (of ones) already set."""
+        out = np.empty((m, self.width))
+        if self.uses == "sqdist":
+            out[:, self.d + 1] = 1.0
+        elif self.width > self.d:
+            out[:, self.d] = 1.0
+        return out
 
+    def rows(self, q: np.ndarray, out: np.ndarray | None = None, raw: bool = False,
+             head: np.ndarray | None = None) -> np.ndarray:
+        """Q̃ for the rows ``q`` (m, d), in the blocks' dtype.
 
-def prepare_rows(
-    spec: KernelSpec, q: np.ndarray, q_sq: np.ndarray | None = None
-) -> tuple[np.ndarray, np.ndarray | None]:
-    """Query-side operands of :func:`kernel_tile`: ``(q_scaled, row_term)``.
+        ``out``: a buffer from :meth:`rows_buffer` to write into (a new one when None), with
+        ``head`` its view ``out[:, :d]`` if the caller keeps one. ``raw``: the rows are in raw
+        units and the standardization given at construction is folded in, one pass fewer
+        than s(q) followed by f·s(q). L1 forms: the (standardized) rows themselves,
+        C-ordered, ``out`` unused. A float32 form returns a float32 copy of Q̃.
+        """
+        if self.uses == "l1":
+            qs = (q - self.shift) / self.scale if raw else q
+            return qs.astype(self.dtype, order="C", copy=False)
+        if out is None:
+            out = self.rows_buffer(q.shape[0])
+        if head is None:
+            head = out[:, : self.d]
+        if raw:
+            np.subtract(q, self.shift, out=head)
+            np.multiply(head, self._lead, out=head)
+        else:
+            np.multiply(q, self.factor, out=head)
+        if self._sq:
+            if q.shape[0] == 1:  # a dot product is several times cheaper than einsum's set-up
+                v = head.reshape(-1)
+                out[0, self.d] = self._sq * np.dot(v, v)
+            else:
+                np.multiply(row_sq_norms(head), self._sq, out=out[:, self.d])
+        return out if self.dtype == np.float64 else out.astype(self.dtype)
 
-    ========================  =================  =================
-    kernel                    q_scaled           row_term
-    ========================  =================  =================
-    linear                    q                  None
-    polynomial, sigmoid       γ q                None
-    rbf, Matérn               2c q               c‖q_i‖²
-    laplacian                 q                  None
-    ========================  =================  =================
+    # -- step 2: u, one product (or the L1 loop) -------------------------------------------
+    def exponent(self, qa: np.ndarray, out: np.ndarray, start: int = 0) -> np.ndarray:
+        """u for the operand ``qa`` (from :meth:`rows`) against the fixed rows
+        [start, start + w), w = out.shape[1], into ``out``: one product Q̃·X̃, or for the L1
+        forms the compiled loop (``out`` C-ordered)."""
+        if self.uses == "l1":
+            return scaled_l1(qa, self.columns, start, self.l1_scale, out)
+        w = out.shape[1]
+        cols = self.columns if w == self.n else self.columns[:, start : start + w]
+        return np.matmul(qa, cols, out=out)
 
-    Folding the scale into the small (m, d) query side saves a pass over every (m, n) tile.
-    """
-    if spec.uses == "sqdist":
-        c = sqdist_scale(spec)
-        qs = q * (2.0 * c)
-        row = c * row_sq_norms(q) if q_sq is None else c * q_sq
-        return qs, row
-    if spec.name in ("linear", "laplacian"):
-        return q, None
-    return q * spec.gamma, None
+    # -- all three steps on new arrays -----------------------------------------------------
+    def block(self, q: np.ndarray, out: np.ndarray | None = None,
+              scratch: np.ndarray | None = None) -> np.ndarray:
+        """(m, n) values for the standardized rows ``q``: k(q_i, x_j), or the distance.
 
-
-def augmented_columns(spec: KernelSpec, x: np.ndarray) -> np.ndarray | None:
-    """Training side X̃ of the kernel's affine part u = Q̃·X̃ (a new array; a view for linear).
-
-    ==========================  ===================  ======================
-    kernel                      X̃ (rows × n)         Q̃ (m × :func:`augmented_width`)
-    ==========================  ===================  ======================
-    rbf, Matérn                 [xᵀ; 1; −c‖x‖²]      [2c q, −c‖q‖², 1]
-    polynomial, sigmoid         [xᵀ; c₀]             [γ q, 1]
-    linear                      xᵀ (a view)          q
-    laplacian                   None (no affine form)
-    ==========================  ===================  ======================
-
-    One matrix product then gives u = −c‖q − x‖² for distance kernels and γ qᵀx + c₀ for
-    the dot kernels, so a tile needs no passes for the row and column terms; only
-    :func:`finish_tile` remains.
-    """
-    if spec.uses == "l1":
-        return None
-    if spec.name == "linear":
-        return x.T
-    d, n = x.shape[1], x.shape[0]
-    extra = 2 if spec.uses == "sqdist" else 1
-    out = np.empty((d + extra, n))
-    out[:d] = x.T
-    if spec.uses == "sqdist":
-        out[d] = 1.0
-        out[d + 1] = -prepare_columns(spec, x)
-    else:
-        out[d] = spec.coef0
-    return out
-
-
-def augmented_width(spec: KernelSpec, d: int) -> int:
-    """Columns of Q̃ (:func:`augmented_columns`) for ``d`` features."""
-    return d + {"sqdist": 2, "dot": 0 if spec.name == "linear" else 1}.get(spec.uses, 0)
-
-
-def query_factor(spec: KernelSpec) -> float:
-    """The factor on q in Q̃ (:func:`augmented_columns`): 2c, γ, or 1 for linear."""
-    if spec.uses == "sqdist":
-        return 2.0 * sqdist_scale(spec)
-    return 1.0 if spec.name == "linear" else spec.gamma
-
-
-def augmented_rows(spec: KernelSpec, q: np.ndarray) -> np.ndarray:
-    """Q̃ of :func:`augmented_columns` for the rows ``q`` (a new array; not for laplacian).
-
-    The serving engine writes Q̃ into buffers it keeps; this allocating form serves callers
-    that build Q̃ once per block (the Nyström accumulation).
-    """
-    m, d = q.shape
-    out = np.empty((m, augmented_width(spec, d)))
-    np.multiply(q, query_factor(spec), out=out[:, :d])
-    if spec.uses == "sqdist":
-        out[:, d] = -sqdist_scale(spec) * row_sq_norms(q)
-        out[:, d + 1] = 1.0
-    elif out.shape[1] > d:
-        out[:, d] = 1.0
-    return out
+        ``out`` and ``scratch`` (Matérn, cubic polynomial): optional buffers of at least m
+        rows; the result is ``out[:m]``. u of the squared distance is clipped at 0 from above
+        against rounding, as scikit-learn's ``euclidean_distances`` clips the distance.
+        """
+        m = q.shape[0]
+        out = np.empty((m, self.n), dtype=self.dtype) if out is None else out[:m]
+        u = self.exponent(self.rows(q), out)
+        if self.uses == "sqdist":
+            np.minimum(u, 0.0, out=u)
+        if self.spec is None:
+            return np.negative(u, out=u)
+        return finish_tile(self.spec, u, None if scratch is None else scratch[:m])
 
 
 def _integer_power(out: np.ndarray, degree: float, scratch: np.ndarray | None) -> np.ndarray:
@@ -242,65 +207,13 @@ def _integer_power(out: np.ndarray, degree: float, scratch: np.ndarray | None) -
     return np.power(out, degree, out=out)
 
 
-def kernel_tile(
-    spec: KernelSpec,
-    qs: np.ndarray,
-    row: np.ndarray | None,
-    xt: np.ndarray,
-    col: np.ndarray | None,
-    out: np.ndarray,
-    scratch: np.ndarray | None = None,
-) -> np.ndarray:
-    """Kernel values for one tile from prepared operands, in place in ``out``.
-
-    Parameters
-    ----------
-    spec : the kernel.
-    qs, row : from :func:`prepare_rows` for the tile's m query rows.
-    xt : (d, w) the tile's training rows transposed (a view such as ``x[j0:j1].T``).
-    col : the tile's slice of :func:`prepare_columns` (None for dot kernels).
-    out : (m, w) float buffer, overwritten.
-    scratch : optional (m, w) buffer (Matérn, polynomial of degree 3).
-
-    Returns
-    -------
-    ``out`` holding k(q_i, x_j).
-
-    Notes
-    -----
-    Distance kernels: u = 2c qᵀx − c‖q‖² − c‖x‖² = −c‖q − x‖² (the expansion scikit-learn's
-    ``euclidean_distances`` uses), clipped at 0 from above against rounding; then
-    :func:`finish_tile`. The serving engine gets u in one product from the augmented
-    operands instead (:func:`augmented_columns`). Laplacian: −γ‖q − x‖₁ from the compiled
-    loop of :mod:`service.l1_distance`.
-    """
-    name = spec.name
-    if spec.uses == "l1":
-        if not xt.flags.c_contiguous:
-            # the compiled loop reads each feature's values as one contiguous run; a copy
-            # (d × w values, read once) beats strided reads in every feature pass
-            xt = np.ascontiguousarray(xt)
-        scaled_l1(qs, xt, 0, -spec.gamma, out)
-        return np.exp(out, out=out)
-
-    np.matmul(qs, xt, out=out)
-    if spec.uses == "dot":
-        if name != "linear":
-            out += spec.coef0
-    else:  # distance kernels: u = −c r² ≤ 0, clipped against rounding
-        out -= row[:, None]
-        out -= col
-        np.minimum(out, 0.0, out=out)
-    return finish_tile(spec, out, scratch)
-
-
 def finish_tile(spec: KernelSpec, out: np.ndarray, scratch: np.ndarray | None = None) -> np.ndarray:
-    """The kernel's elementwise step, in place: k from its affine part u (see
-    :func:`augmented_columns`).
+    """The kernel's elementwise step, in place: k = φ(u) from u of :class:`KernelBlocks`.
 
-    u is γ qᵀx + c₀ for the dot kernels and −c‖q − x‖² for distance kernels (for rbf a u a
-    hair above 0 from rounding maps to 1 + O(1e-15), for Matérn to 1 − O(1e-16)).
-    ``scratch`` (same shape) serves Matérn and the cubic polynomial.
+    u is γ qᵀx + c₀ for the dot kernels, −γ‖q − x‖₁ for the laplacian and −c‖q − x‖² for the
+    other distance kernels (for rbf a u a hair above 0 from rounding maps to 1 + O(1e-15),
+    for Matérn to 1 − O(1e-16)). ``scratch`` (same shape) serves Matérn and the cubic
+    polynomial.
     """
     name = spec.name
     if name == "linear":
@@ -309,7 +222,7 @@ def finish_tile(spec: KernelSpec, out: np.ndarray, scratch: np.ndarray | None = 
         return _integer_power(out, spec.degree, scratch)
     if name == "sigmoid":
         return np.tanh(out, out=out)
-    if name == "rbf":
+    if name in ("rbf", "laplacian"):
         return np.exp(out, out=out)
     # Matérn: t = √(c r²) = √|u| (|u| rather than −u clipped at 0: one pass for two; a u a
     # hair above 0 from rounding then gives k = 1 − O(1e-16) instead of 1); the polynomial
@@ -331,51 +244,27 @@ def finish_tile(spec: KernelSpec, out: np.ndarray, scratch: np.ndarray | None = 
     return out
 
 
-def kernel_block(
-    spec: KernelSpec,
-    q: np.ndarray,
-    x: np.ndarray,
-    x_sq: np.ndarray | None = None,
-    q_sq: np.ndarray | None = None,
-    out: np.ndarray | None = None,
-    scratch: np.ndarray | None = None,
-) -> np.ndarray:
-    """Evaluate k(q_i, x_j) for one block, in place in ``out``.
-
-    Parameters
-    ----------
-    spec : the kernel.
-    q, x : (m, d) and (n, d) standardized rows.
-    x_sq, q_sq : optional precomputed ``row_sq_norms`` of x and q (distance kernels).
-    out : optional (m, n) float buffer to write into.
-    scratch : optional (m, n) buffer used by the Matérn and cubic kernels.
-
-    Returns
-    -------
-    (m, n) array of kernel values (``out`` when given).
-
-    Notes
-    -----
-    Squared distances use ‖a − b‖² = ‖a‖² − 2aᵀb + ‖b‖², clipped at 0, as scikit-learn's
-    ``euclidean_distances`` does, so one matrix product does most of the work. This is
-    :func:`kernel_tile` on freshly prepared operands: serving and training share one code path.
-    """
-    m, n = q.shape[0], x.shape[0]
-    if out is None:
-        out = np.empty((m, n), dtype=np.result_type(q.dtype, x.dtype))
-    qs, row = prepare_rows(spec, q, q_sq)
-    return kernel_tile(spec, qs, row, x.T, prepare_columns(spec, x, x_sq), out, scratch)
+def kernel_block(spec: KernelSpec, q: np.ndarray, x: np.ndarray, out: np.ndarray | None = None,
+                 scratch: np.ndarray | None = None) -> np.ndarray:
+    """k(q_i, x_j) for standardized rows q (m, d) and x (n, d): :meth:`KernelBlocks.block`."""
+    return KernelBlocks(spec, x).block(q, out, scratch)
 
 
 def kernel_matrix(spec: KernelSpec, a: np.ndarray, b: np.ndarray | None = None) -> np.ndarray:
-    """Full kernel matrix K[i, j] = k(a_i, b_j) (``b`` defaults to ``a``).
-
-    Used for training, where the whole matrix is needed anyway; serving goes through
-    :mod:`service.engine`, which applies the same :func:`kernel_tile` tile by tile.
-    """
+    """Full kernel matrix K[i, j] = k(a_i, b_j) (``b`` defaults to ``a``), for training."""
     b = a if b is None else b
     out = kernel_block(spec, a, b)
     if b is a and spec.uses in ("sqdist", "l1"):
         # k(a, a) = 1 exactly; the expanded distance forms leave rounding noise there
         np.fill_diagonal(out, 1.0)
     return out
+
+
+def squared_distances(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """(m, n) squared Euclidean distances ‖a_i − b_j‖² ≥ 0 (``"sqeuclidean"`` blocks)."""
+    return KernelBlocks("sqeuclidean", b).block(a)
+
+
+def l1_distances(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """(m, n) L1 (cityblock) distances ‖a_i − b_j‖₁ (``"cityblock"`` blocks)."""
+    return KernelBlocks("cityblock", b).block(a)

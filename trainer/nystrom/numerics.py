@@ -28,17 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.linalg as sla
 
-from service.kernels import (
-    KernelSpec,
-    augmented_columns,
-    augmented_rows,
-    finish_tile,
-    kernel_block,
-    kernel_matrix,
-    kernel_tile,
-    prepare_columns,
-    prepare_rows,
-)
+from service.kernels import KernelBlocks, KernelSpec, kernel_block, kernel_matrix
 from trainer.exact.fit import safe_lapack
 
 #: Eigenvalues of K_mm below this fraction of the largest are dropped (pseudo-inverse): they
@@ -106,15 +96,15 @@ def pick_landmarks(x_s: np.ndarray, m: int, scheme: str, rng: np.random.Generato
         raise ValueError(f"unknown landmark scheme {scheme!r}")
     chosen = np.empty(m, dtype=np.int64)
     chosen[0] = rng.integers(n)
-    sq = np.einsum("ij,ij->i", x_s, x_s)
-    best = np.maximum(sq - 2 * x_s @ x_s[chosen[0]] + sq[chosen[0]], 0.0)
+    rows = KernelBlocks("sqeuclidean", x_s)  # D² of every row to a chosen one: one GEMV
+    best = rows.block(x_s[chosen[0], None])[0]
     for i in range(1, m):
         total = best.sum()
         nxt = int(rng.integers(n)) if total <= 0 else int(
             np.searchsorted(np.cumsum(best), rng.random() * total))
         nxt = min(nxt, n - 1)
         chosen[i] = nxt
-        np.minimum(best, np.maximum(sq - 2 * x_s @ x_s[nxt] + sq[nxt], 0.0), out=best)
+        np.minimum(best, rows.block(x_s[nxt, None])[0], out=best)
     return np.sort(np.unique(chosen)) if np.unique(chosen).size == m else np.sort(chosen)
 
 
@@ -151,38 +141,8 @@ class Sums:
         return mean, self.ky - np.outer(self.k_sum, mean)
 
 
-class LandmarkKernel:
-    """k(·, L) for blocks of rows, with the landmark side prepared once.
-
-    Distance kernels use the augmented operands of :mod:`service.kernels`
-    ([2c x, −c‖x‖², 1]·[l; 1; −c‖l‖²] = −c‖x − l‖²), so one matrix product gives the exponent
-    and no pass over the (rows × m) block is spent on the norms; the other kernels get their
-    column terms computed once. Results equal :func:`service.kernels.kernel_block` up to the
-    order of the d + 2 terms of each product.
-    """
-
-    def __init__(self, spec: KernelSpec, landmarks: np.ndarray):
-        self.spec = spec
-        self.augmented = spec.uses == "sqdist"
-        if self.augmented:
-            self.xt, self.col = augmented_columns(spec, landmarks), None
-        else:
-            self.xt = np.ascontiguousarray(landmarks.T)
-            self.col = prepare_columns(spec, landmarks)
-
-    def block(self, rows: np.ndarray, out: np.ndarray | None = None,
-              scratch: np.ndarray | None = None) -> np.ndarray:
-        """(rows, m) kernel values, written into ``out[:rows]`` when given."""
-        b = rows.shape[0]
-        out = np.empty((b, self.xt.shape[1])) if out is None else out[:b]
-        if scratch is not None:
-            scratch = scratch[:b]
-        if self.augmented:  # u = Q̃·X̃ = −c‖x − l‖², clipped at 0 against rounding
-            np.matmul(augmented_rows(self.spec, rows), self.xt, out=out)
-            np.minimum(out, 0.0, out=out)
-            return finish_tile(self.spec, out, scratch)
-        qs, row = prepare_rows(self.spec, rows)
-        return kernel_tile(self.spec, qs, row, self.xt, self.col, out, scratch)
+#: k(·, L) for blocks of rows, the landmark side prepared once (``LandmarkKernel(spec, L)``).
+LandmarkKernel = KernelBlocks
 
 
 def accumulate(spec: KernelSpec, landmarks: np.ndarray, x_s: np.ndarray, y: np.ndarray,

@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from service.kernels import KernelSpec, kernel_matrix, l1_distances, squared_distances
+
 #: Rows sampled (against all rows) for the distance quantiles.
 DISTANCE_SAMPLE = 1000
 
@@ -27,15 +29,10 @@ def width_range(name: str, x_s: np.ndarray, seed: int = 0) -> tuple[float, float
     pick = rng.choice(n, size=min(n, DISTANCE_SAMPLE), replace=False)
     sub = x_s[pick]
     if name in ("polynomial", "sigmoid"):
-        s = float(np.quantile(np.abs(sub @ x_s.T), 0.9))
+        s = float(np.quantile(np.abs(kernel_matrix(KernelSpec("linear"), sub, x_s)), 0.9))
         s = s if s > 0 else 1.0
         return 0.01 / s, 3.0 / s
-    if name == "laplacian":
-        d = _l1_blocks(sub, x_s)
-    else:
-        d = (np.einsum("ij,ij->i", sub, sub)[:, None] - 2.0 * sub @ x_s.T
-             + np.einsum("ij,ij->i", x_s, x_s)[None, :])
-        np.maximum(d, 0.0, out=d)
+    d = (l1_distances if name == "laplacian" else squared_distances)(sub, x_s)
     d[np.arange(len(pick)), pick] = np.inf  # a row is not its own neighbour
     positive = np.where(d > 1e-12, d, np.inf)
     nn = np.min(positive, axis=1)
@@ -47,12 +44,3 @@ def width_range(name: str, x_s: np.ndarray, seed: int = 0) -> tuple[float, float
     if not hi > lo * 10:  # degenerate data (few distinct rows): still search two decades+
         hi = lo * 1e3
     return lo, hi
-
-
-def _l1_blocks(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """Pairwise L1 distances in row blocks of about 2 million (row, column, feature) cells."""
-    rows = max(1, int(2e6 // max(b.shape[0] * b.shape[1], 1)))
-    out = np.empty((a.shape[0], b.shape[0]))
-    for i in range(0, a.shape[0], rows):
-        out[i:i + rows] = np.abs(a[i:i + rows, None, :] - b[None, :, :]).sum(axis=2)
-    return out
