@@ -1,6 +1,7 @@
 """The ``kridge`` command line.
 
-Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1;
+Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1,
+as does ``drift --fail-on-drift`` on an alarm;
 a bug in kridge itself shows its traceback and exits 70.
 Heavy imports (scipy, matplotlib) happen inside the commands that need them, so ``kridge
 serve`` works in a serving image without the trainer's extras.
@@ -179,6 +180,20 @@ def cmd_predict(args) -> int:
     return 0
 
 
+def cmd_drift(args) -> int:
+    from service.model import load_model
+    from trainer import drift_check
+
+    level = drift_check.check_level(args.fail_on_drift)
+    model = load_model(_store(args), args.model, args.version and check_version(args.version))
+    result = drift_check.run(model, args.data, args.permutations, args.seed)
+    if args.json:
+        print(json.dumps(drift_check.as_json(model, result, level), indent=2))
+    else:
+        print(drift_check.as_text(model, result, level))
+    return EXIT_FAULT if level is not None and result.p_value < level else 0
+
+
 def cmd_serve(args) -> int:
     from service.launch import serve
 
@@ -281,6 +296,18 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("--out", help="output CSV (default: standard output)")
     pr.add_argument("--coverage", type=float, help="add interval bounds at this coverage")
     pr.add_argument("--quiet", action="store_true")
+
+    dr = add("drift", cmd_drift, "kernel two-sample test: do new inputs differ from the "
+             "training inputs? (no target needed)")
+    dr.add_argument("model")
+    dr.add_argument("data", help="CSV, Parquet or Excel file with the model's feature columns")
+    dr.add_argument("--version")
+    dr.add_argument("--json", action="store_true", help="the result as JSON")
+    dr.add_argument("--fail-on-drift", type=float, metavar="LEVEL",
+                    help="exit 1 when the p-value is below LEVEL (to gate a pipeline)")
+    dr.add_argument("--permutations", type=int, default=None,
+                    help="permutations behind the p-value (default 500)")
+    dr.add_argument("--seed", type=int, default=0, help="seed of subsamples and permutations")
 
     s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
     s.add_argument("--bind", default=None,
