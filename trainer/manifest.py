@@ -109,7 +109,7 @@ def exact_manifest(opts, *, data, final: Fit, spec: KernelSpec, ridge: float, ro
 
 def nystrom_training(*, rows: int, reason: str, landmarks: dict, parts: dict, src, data: str,
                      counts: dict, span, holdout: float, by_time: bool, seed: int,
-                     fit_seconds: float, cluster: bool) -> dict:
+                     fit_seconds: float, cluster: bool, solve: dict | None = None) -> dict:
     """A Nyström model's ``training`` entry: method, why, landmarks, rows and parts."""
     return {
         "rows": rows,
@@ -129,8 +129,12 @@ def nystrom_training(*, rows: int, reason: str, landmarks: dict, parts: dict, sr
         "seed": seed,
         "fit_seconds": round(fit_seconds, 3),
         "solver": ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), "
-                   "streamed sums, eigendecompositions of K_mm and of the m × m "
-                   "normal matrix"),
+                   + ("preconditioned conjugate gradient (FALKON's preconditioner, Rudi, "
+                      "Carratino & Rosasco 2017), K_nm formed tile by tile in every "
+                      "iteration" if solve and solve.get("solver") == "cg" else
+                      "streamed sums, eigendecompositions of K_mm and of the m × m "
+                      "normal matrix")),
+        "solve": solve,
         "cluster": cluster,
         "final_fit": "the training part only: holdout and calibration rows stay unseen",
     }

@@ -46,6 +46,7 @@ class TrainOptions:
     landmarks: int | None = None
     landmark_scheme: str | None = None
     cluster: str | None = None
+    solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
 
 
 def explicit_spec(opts: TrainOptions, n_features: int) -> KernelSpec | None:
@@ -72,13 +73,16 @@ def choose_method(opts: TrainOptions) -> tuple[str, str]:
     columns only), since sparse lab values can make a large export a small training set.
     """
     if opts.method == "exact":
+        if opts.solver == "cg":
+            raise UserError("--solver cg solves the Nyström system; use --method nystrom")
         if opts.cluster:
             raise UserError("--cluster runs the Nyström accumulation; use --method nystrom")
         return "exact", "asked for with --method exact"
-    if opts.method == "nystrom" or opts.cluster or opts.landmarks:
+    if opts.method == "nystrom" or opts.cluster or opts.landmarks or opts.solver == "cg":
         return "nystrom", "asked for with " + ("--method nystrom" if opts.method == "nystrom"
                                                else "--cluster" if opts.cluster
-                                               else "--landmarks")
+                                               else "--landmarks" if opts.landmarks
+                                               else "--solver cg")
     if opts.method != "auto":
         raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
     rows = columns.count_target_rows(opts.data, opts.targets, opts.sep, opts.decimal)
@@ -95,6 +99,8 @@ def check_options(opts: TrainOptions) -> Store:
     store.model_dir(opts.name)  # validates the name
     if opts.kernel != "auto":
         kernel_params(opts.kernel)
+    if opts.solver not in ("direct", "cg", "auto"):
+        raise UserError(f"--solver must be direct, cg or auto, not {opts.solver!r}")
     if opts.precision not in ("float64", "float32"):
         raise UserError(f"--precision must be float64 or float32, not {opts.precision!r}")
     return store

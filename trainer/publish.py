@@ -29,7 +29,8 @@ def bundle_arrays(spec, x_train: np.ndarray, dual: np.ndarray, reference: np.nda
 def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arrays: dict,
                           report_args: tuple, t0: float, *, spec, ridge: float,
                           features: list[str], rows: int, metrics: dict, tuning_info,
-                          check, counts: dict, method: str) -> dict:
+                          check, counts: dict, method: str,
+                          warnings: list[str] = ()) -> dict:
     """Publish the version (with its report), release it when asked; the train summary."""
     extra = None
     if opts.report:
@@ -38,7 +39,7 @@ def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arra
         def extra(folder, version):
             report.write_report(folder / "report.html", dict(manifest, version=version,
                                 model=opts.name), *report_args)
-    warnings = cautions.poor_holdout(metrics)
+    warnings = list(warnings) + cautions.poor_holdout(metrics)
     version = store.publish(opts.name, manifest, arrays, extra_files=extra)
     live = False
     if opts.release:

@@ -26,8 +26,10 @@ from trainer.calibration import split_conformal_section
 from trainer.errors import UserError
 from trainer.manifest import build_manifest, nystrom_training, time_span
 from trainer.nystrom import numerics
+from trainer.nystrom.cg_fit import FinalFit, choose_solver, fit_cg, ridge_candidates
 from trainer.nystrom.parts import Plan
 from trainer.nystrom.pass2 import run_pass2
+from trainer.nystrom.rank import rank_check
 from trainer.nystrom.scan import Scan, scan
 from trainer.nystrom.scores import predictor, score_parts
 from trainer.nystrom.tune import final_ridge, sample_problem, tune_on_sample
@@ -159,6 +161,44 @@ def nystrom_envelope(p1: Pass1, seed: int) -> tuple[dict, np.ndarray, dict | Non
     return env, reference, span
 
 
+def fit_direct(opts, plan: Plan, p1: Pass1, progress, ridge: float, problem, tuning_info
+               ) -> FinalFit:
+    """Pass 2's m × m sums, the eigendecompositions of K_mm and the normal matrix, and the
+    final ridge among 41 values at no extra pass (:mod:`trainer.nystrom.numerics`)."""
+    sums, held = run_pass2(plan, p1.scan.blocks, opts.cluster, progress)
+    if sums.count < 2:
+        raise UserError(f"{p1.src.path}: no training rows left for the final fit")
+    path = numerics.ridge_path(plan.spec, plan.landmarks, sums)
+    ridge = refine_ridge(path, plan.spec, plan.landmarks, held, ridge, problem, tuning_info,
+                         sums.count)
+    return FinalFit(path.dual(ridge), path.intercept, ridge, int(sums.count), held,
+                    {"solver": "direct"}, int(path.rank))
+
+
+def fit_with_cg(opts, plan: Plan, p1: Pass1, progress, ridge: float, problem, tuning_info
+                ) -> FinalFit:
+    """Pass 2 keeping the training rows, then preconditioned CG (:mod:`trainer.nystrom.cg`)
+    for the sample's ridge and, when it was tuned, two scaled ones; the validation part
+    picks among them."""
+    train_rows = int(p1.scan.count * (1 - sum(p1.fractions)))
+    grow = train_rows / max(problem.x_s.shape[0], 1) if problem is not None else 1.0
+    tuned = problem is not None and opts.ridge is None
+    fit = fit_cg(plan, p1.scan.blocks, opts.cluster, progress,
+                 ridge_candidates(ridge, grow, tuned), problem.inv_var if tuned else None)
+    if tuning_info is not None and "validation_scores" in fit.record:
+        tuning_info["final_ridge"] = {
+            "ridge": fit.ridge, "validation_rows": int(fit.held["validate"].x.shape[0]),
+            "how": "the sample's ridge and it scaled by √(rows/sample rows) and by "
+                   "rows/sample rows, each solved by CG with all training rows, scored on "
+                   "the validation part (validation MSE / Var(target), averaged over the "
+                   "targets)", "candidates": fit.record["ridges_solved"],
+            "scores": fit.record["validation_scores"]}
+        tuning_info["summary"] += (f"; final ridge {fit.ridge:.4g} of "
+                                   f"{len(fit.record['ridges_solved'])} by CG on "
+                                   f"{fit.held['validate'].x.shape[0]} validation rows")
+    return fit
+
+
 def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     """The Nyström job's stages (module notes); returns the train summary."""
     progress = _progress(opts.quiet)
@@ -178,42 +218,43 @@ def train_nystrom(opts, store: Store, log, t0: float, reason: str) -> dict:
     plan = Plan(str(p1.src.path), p1.src.sep, p1.src.decimal, p1.features, p1.targets,
                 opts.time, opts.drop_incomplete, p1.mean, p1.scale, spec, landmarks, opts.seed,
                 p1.fractions, p1.cuts)
+    solver, solver_reason = choose_solver(opts.solver, landmarks.shape[0])
     t_fit = time.perf_counter()
-    sums, held = run_pass2(plan, p1.scan.blocks, opts.cluster, progress)
-    if sums.count < 2:
-        raise UserError(f"{p1.src.path}: no training rows left for the final fit")
-    path = numerics.ridge_path(spec, landmarks, sums)
-    ridge = refine_ridge(path, spec, landmarks, held, ridge, problem, tuning_info, sums.count)
-    beta = path.dual(ridge)
+    fit = (fit_with_cg if solver == "cg" else fit_direct)(
+        opts, plan, p1, progress, ridge, problem, tuning_info)
     fit_seconds = time.perf_counter() - t_fit
-    scored = score_parts(predictor(spec, landmarks, beta, path.intercept), p1.targets, held,
+    beta, ridge, sums_count, held = fit.beta, fit.ridge, fit.count, fit.held
+    ranks = rank_check(spec, landmarks, np.random.default_rng([opts.seed, 7]))
+    scored = score_parts(predictor(spec, landmarks, beta, fit.intercept), p1.targets, held,
                          opts.seed)
     env, reference, span = nystrom_envelope(p1, opts.seed)
     sc = p1.scan
     counts = row_counts(sc.rows_read, sc.with_target, sc.dropped, sc.count, p1.targets)
-    parts = {"train": int(sums.count), **{p: int(h.x.shape[0]) for p, h in held.items()}}
+    parts = {"train": int(sums_count), **{p: int(h.x.shape[0]) for p, h in held.items()}}
     check = precision_check(opts.precision, spec, landmarks, beta, p1.sample_s[:5000],
                             p1.targets, sc.sample[:, len(p1.features):], log)
-    landmark_info.update(rank_kept=int(path.rank), how_many=(
+    landmark_info.update(rank_kept=fit.rank, rank_check=ranks, how_many=(
         f"--landmarks {opts.landmarks}" if opts.landmarks else
         numerics.describe_default(parts["train"], memory)))
     manifest = build_manifest(
         features=p1.features, targets=p1.targets, spec=spec, ridge=ridge,
         standardization={"mean": p1.mean.tolist(), "scale": p1.scale.tolist(), "ddof": 0,
                          "how": "streamed over every usable row (Chan et al. 1983)"},
-        intercept=path.intercept,
+        intercept=fit.intercept,
         training=nystrom_training(
-            rows=int(sums.count), reason=reason, landmarks=landmark_info, parts=parts,
+            rows=int(sums_count), reason=reason, landmarks=landmark_info, parts=parts,
             src=p1.src, data=Path(opts.data).name, counts=counts, span=span,
             holdout=opts.holdout, by_time=p1.cuts is not None, seed=opts.seed,
-            fit_seconds=fit_seconds, cluster=bool(opts.cluster)),
+            fit_seconds=fit_seconds, cluster=bool(opts.cluster),
+            solve=dict(fit.record, reason=solver_reason)),
         tuning=tuning_info, metrics=scored.metrics, envelope=env,
         intervals=split_conformal_section(scored.calib, scored.coverage, p1.cuts is not None),
         precision=opts.precision, check=check)
     arrays = bundle_arrays(spec, landmarks, beta, reference, scored.calib)
     return publish_and_summarize(
         opts, store, manifest, arrays, (tuning_info, scored.holdout_points, scored.calib), t0,
-        spec=spec, ridge=ridge, features=p1.features, rows=int(sums.count),
+        spec=spec, ridge=ridge, features=p1.features, rows=int(sums_count),
         metrics=scored.metrics, tuning_info=tuning_info, check=check, counts=counts,
         method=f"nystrom with {landmark_info['count']} {landmark_info['scheme']} landmarks "
-               f"({reason})")
+               f"({reason}), {solver} solve ({solver_reason})",
+        warnings=fit.warnings + ([ranks["warning"]] if ranks and ranks["warning"] else []))

@@ -41,11 +41,12 @@ class Plan:
     seed: int
     fractions: tuple[float, float, float]  # validate, holdout, calibrate (random parts)
     time_cuts: tuple[float, float, float] | None = None  # validate, calibrate, holdout starts
+    keep_train: bool = False  # CG: return the training rows themselves, no sums
 
 
 @dataclass
 class BlockResult:
-    sums: numerics.Sums
+    sums: numerics.Sums | None  # None when the plan keeps the training rows instead
     kept: dict = field(default_factory=dict)  # part → (x_s, y, t)
 
 
@@ -81,8 +82,12 @@ def block_sums(plan: Plan, block: Block, first_row: int) -> BlockResult:
     y = v[:, d:]
     t = t_all[keep] if t_all is not None else None
     train = part == 0
-    sums = numerics.accumulate(plan.spec, plan.landmarks, x_s[train], y[train])
     kept = {}
+    if plan.keep_train:
+        sums = None
+        kept["train"] = (x_s[train], y[train], None)
+    else:
+        sums = numerics.accumulate(plan.spec, plan.landmarks, x_s[train], y[train])
     for i, name in enumerate(PARTS[1:], start=1):
         sel = part == i
         if sel.any():

@@ -1,0 +1,108 @@
+"""The Nyström fit by preconditioned CG, as a stage of the Nyström job.
+
+Pass 2 gives every row its part as for the direct solve, but keeps the training part's
+standardized rows (here, or on the Dask workers that read them) instead of adding them into
+m × m sums; :func:`trainer.nystrom.cg.solve_nystrom_cg` then passes over them once per
+iteration. The final ridge is chosen on the validation part among a few values, all solved
+side by side in the same passes (each with its own preconditioner factor, see
+:mod:`trainer.nystrom.cg`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from trainer.errors import UserError
+from trainer.nystrom import cg
+from trainer.nystrom.cg_rows import LocalRows
+from trainer.nystrom.parts import HeldRows, Plan
+from trainer.nystrom.pass2 import run_pass2
+from trainer.nystrom.scores import predictor
+
+#: ``--solver auto``: CG from this many landmarks on, the direct solve below (README,
+#: "Large data: Nyström", for the measured crossover).
+CG_FROM_LANDMARKS = 4000
+
+
+def choose_solver(asked: str, m: int) -> tuple[str, str]:
+    """(solver, reason) for m landmarks: ``direct`` or ``cg``."""
+    if asked in ("direct", "cg"):
+        return asked, f"asked for with --solver {asked}"
+    if m >= CG_FROM_LANDMARKS:
+        return "cg", f"{m} landmarks ≥ {CG_FROM_LANDMARKS} (--solver auto)"
+    return "direct", f"{m} landmarks < {CG_FROM_LANDMARKS} (--solver auto)"
+
+
+def ridge_candidates(ridge: float, grow: float, tuned: bool) -> list[float]:
+    """The sample's ridge, and when it was tuned also that ridge scaled by √grow and by grow:
+    from the same penalty to the same penalty per training row (the penalty is on a sum over
+    rows; ``grow`` = training rows / sample fit rows)."""
+    if not tuned or grow <= 1.0:
+        return [ridge]
+    return [ridge, ridge * np.sqrt(grow), ridge * grow]
+
+
+@dataclass
+class FinalFit:
+    """The final Nyström fit, whichever solver made it."""
+
+    beta: np.ndarray
+    intercept: np.ndarray
+    ridge: float
+    count: int
+    held: dict[str, HeldRows]
+    record: dict  # the manifest's account of the solve
+    rank: int | None = None  # the direct solve's rank of K_mm (CG does not decompose it)
+    warnings: list[str] = field(default_factory=list)
+
+
+def _validation_scores(spec, landmarks, fit: cg.CgFit, val: HeldRows,
+                       inv_var: np.ndarray) -> list[float]:
+    """Validation MSE / Var(target), averaged over the targets, of each ridge's β."""
+    return [float((np.mean((val.y - predictor(spec, landmarks, b, fit.intercept)(val.x)) ** 2,
+                           axis=0) * inv_var).mean()) for b in fit.betas]
+
+
+def fit_cg(plan: Plan, blocks: list, cluster: str | None, progress, ridges: list[float],
+           inv_var: np.ndarray | None, tol: float = cg.CG_TOL,
+           max_iter: int = cg.CG_MAX_ITER) -> FinalFit:
+    """Pass 2 keeping the training rows, then CG for every candidate ridge; the ridge with
+    the lowest validation score is kept (the only one when the validation part is empty)."""
+    plan = replace(plan, keep_train=True)
+    if cluster:
+        from trainer.nystrom.cluster import ClusterRows  # Dask only with --cluster
+
+        rows = ClusterRows(cluster, plan, blocks)
+        d, t = len(plan.features), len(plan.targets)
+        held = {p: HeldRows.stack([h[p] for h in rows.held_rows if p in h], d, t)
+                for p in ("validate", "holdout", "calibrate")}
+    else:
+        _none, held = run_pass2(plan, blocks, None, progress)
+        train = held.pop("train")
+        rows = LocalRows(plan.spec, plan.landmarks, train.x, train.y)
+    try:
+        if rows.count < 2:
+            raise UserError(f"{plan.path}: no training rows left for the final fit")
+        val = held["validate"]
+        if inv_var is None or val.x.shape[0] < 2:
+            ridges = ridges[:1]
+        fit = cg.solve_nystrom_cg(plan.spec, plan.landmarks, rows, rows.mean, rows.count,
+                                  ridges, tol, max_iter)
+    finally:
+        if cluster:
+            rows.close()
+    record = {"solver": "cg", **fit.run.record(tol, max_iter), "jitter": fit.jitter,
+              "ridges_solved": [float(r) for r in ridges]}
+    best = 0
+    if len(ridges) > 1:
+        scores = _validation_scores(plan.spec, plan.landmarks, fit, val, inv_var)
+        best = int(np.argmin(scores))
+        record["validation_scores"] = scores
+    warnings = [] if fit.run.converged else [
+        f"CG stopped at its cap of {max_iter} iterations with relative residual "
+        f"{fit.run.residuals.max():.2g} > {tol:g}: β is CG's early-stopped iterate, not the "
+        "solution of the Nyström system (a larger ridge or --solver direct converge)"]
+    return FinalFit(fit.betas[best], fit.intercept, float(ridges[best]), fit.count, held,
+                    record, None, warnings)
