@@ -13,6 +13,11 @@ worker is still importing or loading its model (which takes longer for ours: it 
 the bundle and builds the engine) nor charged for that CPU.
 
     python bench/http_bench.py [--seconds 8] [--rounds 2] [--clients 4] [--workers 2]
+                               [--before DIR]
+
+``--before DIR`` adds a fourth server in every round: the service of another checkout (an
+earlier commit, e.g. from ``git worktree add`` or ``git archive``) with its own gunicorn
+config, so that a change is measured against what it replaces under the same load.
 
 wrk is installed with apt-get (``apt-get update`` then ``apt-get install -y wrk``) when it is
 missing and the bench runs as root; ``--no-install`` keeps the Python load generator instead.
@@ -150,6 +155,7 @@ def main() -> None:
     ap.add_argument("--clients", type=int, default=4)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--no-install", action="store_true", help="never apt-get install wrk")
+    ap.add_argument("--before", type=Path, help="another checkout's service, run alongside")
     add_json_option(ap)
     args = ap.parse_args()
     print(header("http bench: kridge vs a bare Flask handler and a scikit-learn handler"))
@@ -167,11 +173,16 @@ def main() -> None:
     print(f"load generator: {'wrk' if use_wrk else 'bench/loadgen.py'}, {args.clients} "
           f"concurrent clients, {args.seconds:.0f} s per run, {args.workers} gunicorn workers, "
           f"{args.rounds} rounds")
+    trees = dict.fromkeys(servers, ROOT)
+    if args.before:
+        servers["ours, before"] = "service.wsgi:app"
+        trees["ours, before"] = args.before.resolve()
     seen: dict[str, list[dict]] = {label: [] for label in servers}
     for rnd in range(args.rounds):
         for label, app in servers.items():
-            with Gunicorn.on_free_port(store, args.workers, cwd=str(ROOT), app=app,
-                          env={"BENCH_MODEL": "bench"}) as g:
+            tree = trees[label]  # its service and gunicorn config come first on the path
+            with Gunicorn.on_free_port(store, args.workers, cwd=str(tree), app=app,
+                          env={"BENCH_MODEL": "bench", "PYTHONPATH": str(tree)}) as g:
                 wait_booted(g.proc.pid, args.workers)
                 # one unmeasured second: first-request costs (lazy imports, metric files)
                 if use_wrk:
@@ -193,7 +204,7 @@ def main() -> None:
                   f"{res['cpu_us']:5.0f} µs/req  errors {res['errors']}", flush=True)
             seen[label].append(res)
     best = {label: best_figures(runs) for label, runs in seen.items()}
-    ours, bare, skl = (best[k] for k in servers)
+    ours, bare, skl = (best[k] for k in list(servers)[:3])
     keys = list(servers)
     p99_rounds = [o["p99_ms"] / b["p99_ms"] for o, b in zip(seen[keys[0]], seen[keys[1]],
                                                                  strict=True)]
@@ -210,6 +221,16 @@ def main() -> None:
     print(f"(a) / (b) requests/s:  {bare['rps'] / skl['rps']:.2f}")
     print(f"worker CPU per request, ours / (a): {ours['cpu_us'] / bare['cpu_us']:.2f} "
           "(server cost alone; the load generator shares the cores)")
+    before = {}
+    if args.before:  # round by round: each pair ran minutes apart at most
+        for key in ("rps", "p99_ms"):
+            before[key] = [o[key] / b[key] for o, b in zip(seen["ours"], seen["ours, before"],
+                                                           strict=True)]
+        print(f"ours / before ({args.before}), round by round: requests/s "
+              f"{', '.join(f'{r:.2f}' for r in before['rps'])} (median "
+              f"{float(np.median(before['rps'])):.2f}); p99 "
+              f"{', '.join(f'{r:.2f}' for r in before['p99_ms'])} (median "
+              f"{float(np.median(before['p99_ms'])):.2f})")
     save(args.json, "http", {
         "load_generator": "wrk" if use_wrk else "bench/loadgen.py", "clients": args.clients,
         "workers": args.workers, "seconds": args.seconds, "best": best,
@@ -217,7 +238,8 @@ def main() -> None:
         "ratio_p99_ours_to_bare": ours["p99_ms"] / bare["p99_ms"],
         "ratio_p99_ours_to_bare_by_round": p99_rounds,
         "ratio_rps_ours_to_sklearn": ours["rps"] / skl["rps"],
-        "ratio_cpu_ours_to_bare": ours["cpu_us"] / bare["cpu_us"]})
+        "ratio_cpu_ours_to_bare": ours["cpu_us"] / bare["cpu_us"],
+        "ratio_ours_to_before_by_round": before})
 
 
 if __name__ == "__main__":

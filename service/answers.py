@@ -4,6 +4,7 @@ request) and the feature at fault."""
 
 from __future__ import annotations
 
+import threading
 import time
 
 import numpy as np
@@ -14,11 +15,20 @@ from service.cautions import OUTSIDE_ENVELOPE
 from service.errors import ApiError
 from service.intervals import CoverageUnavailable
 from service.model import Model
+from service.request_body import refuse_before_parsing, too_many_rows
 from service.schemas import MAX_INPUT, RowBatch
+
+#: One predict request of this process is parsed, computed and serialized at a time
+#: (:func:`service.routes.predict.answer`): the worker's threads overlap waiting on slow
+#: sockets, never CPU, so workers × engine threads stay within the cores, and a worker
+#: holds one request's parsed rows at a time, as the sizing formula assumes.
+COMPUTE_SLOT = threading.Lock()
 
 
 def parse_body(raw: bytes, max_rows: int) -> RowBatch:
-    """JSON bytes → validated request (structure, strict finite numbers, no extra keys)."""
+    """JSON bytes → validated request (structure, strict finite numbers, no extra keys);
+    a body with more arrays and objects than ``max_rows`` rows need is refused unparsed."""
+    refuse_before_parsing(raw, max_rows)
     try:
         data = orjson.loads(raw)
     except orjson.JSONDecodeError as exc:
@@ -30,9 +40,7 @@ def parse_body(raw: bytes, max_rows: int) -> RowBatch:
                        'request body must be an object like {"rows": [...]}')
     rows = data.get("rows")
     if isinstance(rows, list) and len(rows) > max_rows:
-        raise ApiError(413, "too_many_rows",
-                       f"{len(rows)} rows in one request; the limit is {max_rows} "
-                       "(KRIDGE_MAX_ROWS)")
+        raise too_many_rows(len(rows), max_rows)
     quick = _plain_batch(data, rows)
     if quick is not None:
         return quick

@@ -13,7 +13,7 @@ affine part that one matrix product computes whole from augmented operands: −c
 the distance kernels, γ qᵀx + c₀ for the dot kernels. A single row then costs what the
 machine's floor costs (one GEMV, one elementwise pass, one dot) plus a few µs of Python.
 The price is a private copy of the training rows, (d + 2)·n·8 bytes per process (2.9 MB at
-20,000 × 16); the memory-mapped original stays shared and unread.
+20,000 × 16), beside the training rows the store read into memory at load.
 
 For distance kernels the same product also yields the squared distances to any chosen
 training rows; the envelope's novelty score (k-th nearest reference row, when the reference
@@ -74,8 +74,8 @@ class Engine:
     Parameters
     ----------
     spec : kernel and parameters.
-    x_train : (n, d) standardized training rows. A float64 array (such as a read-only
-        memory map) is read as is; kernels with an affine part keep a private augmented
+    x_train : (n, d) standardized training rows. A float64 array (such as the read-only
+        array the store loads) is read as is; kernels with an affine part keep a private augmented
         copy (see the module notes), the laplacian a feature-major view or copy.
     dual : (n,) or (n, t) dual coefficients α.
     threads : worker threads for large batches (default :func:`engine_threads`).
@@ -118,7 +118,7 @@ class Engine:
         self.dtype = np.dtype(dtype)
         if self.dtype not in (np.float64, np.float32):
             raise ValueError(f"engine precision must be float64 or float32, not {self.dtype}")
-        # np.asarray drops the memmap subclass (whose per-view Python hooks cost µs per
+        # np.asarray drops any ndarray subclass (a memmap's per-view Python hooks cost µs per
         # slice) but keeps the same memory; only a wrong dtype or a strided view forces a
         # copy. Row-major and column-major (how bundles store laplacian models) both serve.
         x = np.asarray(x_train)

@@ -1,6 +1,7 @@
 """Errors meant for people: ApiError, which request handlers raise and the app turns into
-the JSON error body, and UserError, a value given by the user (an option, an environment
-variable, a data cell) that cannot be used."""
+the JSON error body; UserError, a value given by the user (an option, an environment
+variable, a data cell) that cannot be used; and ClientTooSlow, what a socket deadline
+raises."""
 
 from __future__ import annotations
 
@@ -27,3 +28,8 @@ class ApiError(Exception):
         """The error body, through :class:`~service.schemas.ErrorResponse` (the document's)."""
         return ErrorResponse.model_validate({"error": {
             "code": self.code, "message": self.message, "details": self.details}}).model_dump()
+
+
+class ClientTooSlow(TimeoutError):
+    """A client that did not send its request, or take its answer, within the worker's
+    deadline (:mod:`service.threaded_worker`); reading a body it ends in a 408."""

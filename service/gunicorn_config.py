@@ -3,10 +3,14 @@
 Read by the gunicorn master before any worker starts, so the environment set here reaches
 every worker before numpy is imported there:
 
-- workers: ``KRIDGE_WORKERS``, else one sync worker per usable core (at least two); a core
+- workers: ``KRIDGE_WORKERS``, else one worker per usable core (at least two); a core
   is what the affinity mask and a container's CPU quota allow (``settings.usable_cores``);
-- threads: each worker gets ``cores // workers`` engine threads for large batches and a
-  single-threaded BLAS, so workers × threads never exceed the cores;
+- connections: each worker is gunicorn's threaded worker with deadlines
+  (:mod:`service.threaded_worker`): request heads are read by its event loop, and
+  :data:`REQUEST_THREADS` threads read bodies and write answers, so slow or idle clients
+  wait there instead of holding the worker; one request per worker computes at a time;
+- engine threads: each worker gets ``cores // workers`` engine threads for large batches
+  and a single-threaded BLAS, so workers × engine threads never exceed the cores;
 - drain: ``KRIDGE_DRAIN_SECONDS`` > 0 turns SIGTERM into "not ready, keep answering, then
   stop" (:mod:`service.drain`); ``graceful_timeout`` then bounds how long a worker may take
   to finish the request it holds;
@@ -28,12 +32,18 @@ from service.settings import drain_seconds, usable_cores, worker_count
 
 bind = os.environ.get("KRIDGE_BIND") or "127.0.0.1:8000"
 workers = worker_count()
-# the sync worker, closing connections that send nothing for a few seconds (browsers open
-# some ahead of need): see service/sync_worker.py
-worker_class = "service.sync_worker.PromptSyncWorker"
+worker_class = "service.threaded_worker.DeadlineWorker"
+#: Threads per worker for socket work (bodies in, answers out); computing is one at a time.
+#: Each may hold one request body (at most KRIDGE_MAX_BODY_BYTES) and one answer.
+REQUEST_THREADS = 4
+threads = REQUEST_THREADS
 timeout = 60
 graceful_timeout = 10
+#: A kept-alive connection's pause between requests (then closed), the same bound as a
+#: request head's (service.threaded_worker.HEAD_SECONDS).
 keepalive = 5
+# HTTP/1.1 only: the worker reads request heads itself
+http_protocols = "h1"
 accesslog = None
 errorlog = "-"
 loglevel = os.environ.get("KRIDGE_LOG_LEVEL", "info")

@@ -39,7 +39,8 @@ def conformal_rank(c: int, coverage: float) -> int | None:
 def half_width(sorted_abs: np.ndarray, coverage: float) -> np.ndarray:
     """Half-width per target from (c, t) absolute residuals sorted along axis 0.
 
-    The loaded model keeps its residuals sorted (memory-mapped), so no sort per request.
+    The loaded model keeps its residuals sorted (the bundle stores them so), so no sort per
+    request.
     """
     rank = conformal_rank(sorted_abs.shape[0], coverage)
     if rank is None:

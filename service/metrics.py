@@ -5,6 +5,7 @@ files and ``/metrics`` add them up, so the figures cover all workers whichever o
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 from datetime import datetime, timezone
 from functools import lru_cache
 from typing import NamedTuple
@@ -36,9 +37,20 @@ FLAGS = Counter(
     ["model", "version", "flag"],
 )
 ERRORS = Counter("kridge_errors", "Error responses by code.", ["model", "version", "code"])
+#: The ``model`` label of an error naming no model the store holds: a caller's typo or a
+#: scan of random names adds no series (label values come from the store only).
+UNKNOWN_MODEL = "(unknown)"
 LOAD_FAILURES = Counter(
     "kridge_load_failures", "Live versions a worker refused to load.", ["model", "version"]
 )
+
+
+def model_label(name: str, exists: Callable[[str], bool]) -> str:
+    """``name`` as a label value when ``exists(name)`` (a model in the store), "" for no
+    name, else :data:`UNKNOWN_MODEL`."""
+    if not name:
+        return ""
+    return name if exists(name) else UNKNOWN_MODEL
 
 
 class VersionSeries(NamedTuple):

@@ -29,6 +29,7 @@ ANSWERS: tuple[type[BaseModel], ...] = (
 ERRORS = {
     "400": "Malformed JSON or a bad query parameter",
     "404": "No such model or version",
+    "408": "Body not sent whole within the worker's deadline (10 s after the headers)",
     "413": "Body or row count over the limit",
     "415": "Body is not application/json",
     "422": "Request does not fit the model (names row and feature)",

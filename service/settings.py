@@ -5,7 +5,7 @@ variable                   meaning                                          defa
 =========================  ===============================================  ==============
 KRIDGE_STORE               store root                                       ./kridge-store
 KRIDGE_BIND                address gunicorn listens on                      127.0.0.1:8000
-KRIDGE_WORKERS             gunicorn worker processes (sync)                 max(2, cores)
+KRIDGE_WORKERS             gunicorn worker processes (threaded)             max(2, cores)
 KRIDGE_MAX_BODY_BYTES      largest request body accepted                    8 MiB
 KRIDGE_MAX_ROWS            most rows in one predict request                 10000
 KRIDGE_POLL_SECONDS        how often each worker re-reads live.json         0.25
@@ -115,7 +115,7 @@ def usable_cores() -> int:
 
 
 def default_workers() -> int:
-    """Sync workers: one per core (prediction is CPU-bound), at least two so that a long
+    """Workers: one per core (prediction is CPU-bound), at least two so that a long
     batch on one worker never leaves the probes unanswered."""
     return max(2, usable_cores())
 

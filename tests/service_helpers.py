@@ -19,7 +19,7 @@ from service.launch import free_port
 ROOT = Path(__file__).resolve().parents[1]
 
 __all__ = ["ROOT", "Gunicorn", "free_port", "holds_for", "metric_count", "metric_samples",
-           "wait_for"]
+           "small_model_store", "wait_for"]
 
 T = TypeVar("T")
 
@@ -46,6 +46,22 @@ class Gunicorn(launch.Gunicorn):
 
     def get(self, path: str, **kw) -> requests.Response:
         return requests.get(self.base + path, timeout=30, **kw)
+
+
+def small_model_store(root: Path, demo_csv: Path, name: str = "c") -> Path:
+    """A store under ``root`` with model ``name`` (version 1, live): a fixed rbf model (no
+    tuning, so it trains in a moment) of hardness on the first 60 rows of the demo data."""
+    from make_coating_data import TYPICAL_ROW
+
+    from trainer.cli import main
+
+    csv = root / "small.csv"
+    csv.write_text("\n".join(demo_csv.read_text().splitlines()[:61]) + "\n")
+    assert main(["train", str(csv), "--name", name, "--release", "--store",
+                 str(root / "store"), "--target", "hardness_s", "--features",
+                 ",".join(TYPICAL_ROW), "--gamma", "0.2", "--ridge", "0.5", "--no-report",
+                 "--quiet"]) == 0
+    return root / "store"
 
 
 def wait_for(predicate: Callable[[], T], seconds: float = 30.0, what: str = "the condition",

@@ -275,7 +275,8 @@ def test_gunicorn_config_loads_with_gunicorns_own_parser(tmp_path):
     cfg = dict(re.match(r"(\w+)\s+= (.*)", line).groups()
                for line in r.stdout.splitlines() if re.match(r"\w+\s+= ", line))
     assert cfg["workers"] == "3" and cfg["bind"] == "['127.0.0.1:9']"
-    assert cfg["worker_class"] == "service.sync_worker.PromptSyncWorker"
+    assert cfg["worker_class"] == "service.threaded_worker.DeadlineWorker"
+    assert cfg["threads"] == "4" and cfg["keepalive"] == "5" and cfg["http_protocols"] == "['h1']"
     assert cfg["graceful_timeout"] == "10"
     assert cfg["accesslog"] == "None" and cfg["errorlog"] == "-"  # text log on stderr
     assert cfg["wsgi_app"] == "service.wsgi:app"
@@ -409,7 +410,7 @@ def test_kridge_serve_runs_with_the_training_libraries_hidden(tmp_path, small_cs
                 try:
                     ready = requests.get(base + "/readyz", timeout=1)
                     break
-                except requests.ConnectionError:
+                except (requests.ConnectionError, requests.Timeout):  # still booting
                     time.sleep(0.1)
             assert ready.status_code == 200, ready.text
             r = requests.post(base + "/models/c/predict", json={"rows": [TYPICAL_ROW]},

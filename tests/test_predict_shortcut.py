@@ -15,14 +15,12 @@ import orjson
 import pytest
 from make_coating_data import TYPICAL_ROW
 from prometheus_client import REGISTRY
+from service_helpers import small_model_store
 
 from service.app import create_app
 from service.routes.predict import PredictShortcut
 from service.settings import Settings
-from trainer.cli import main
 
-ARGS = ["--target", "hardness_s", "--features", ",".join(TYPICAL_ROW), "--gamma", "0.2",
-        "--ridge", "0.5", "--no-report", "--quiet"]
 ARRAY = list(TYPICAL_ROW.values())
 FAR = [v * 40 for v in ARRAY]
 JSON = "application/json"
@@ -56,12 +54,7 @@ CASES = [
 
 @pytest.fixture(scope="module")
 def store(tmp_path_factory, demo_csv):
-    root = tmp_path_factory.mktemp("shortcut")
-    csv = root / "small.csv"
-    csv.write_text("\n".join(demo_csv.read_text().splitlines()[:61]) + "\n")
-    assert main(["train", str(csv), "--name", "c", "--release", "--store",
-                 str(root / "store"), *ARGS]) == 0
-    return root / "store"
+    return small_model_store(tmp_path_factory.mktemp("shortcut"), demo_csv)
 
 
 def build(store, log, shortcut: bool):

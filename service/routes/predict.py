@@ -5,13 +5,15 @@ WSGI layer in front of Flask, answers the common request — POST with a JSON bo
 length, no query, a live model already loaded — by the same :func:`answer` without Flask's
 per-request machinery (request and app contexts, URL matching, the Request and Response
 objects: about 100 µs of Python a request on a 2-core VM). Anything else, and any
-request whose answer would not be a 200, goes to Flask untouched (the body it read is put
-back), so routing, errors, their bodies and their counting stay Flask's alone.
+request whose answer would not be a 200, goes to Flask, so routing, errors, their bodies
+and their counting stay Flask's alone; a body the shortcut refused is not parsed again:
+the refusal goes along (:data:`REFUSED`) and the view raises it where it would have.
+Both read the body through :func:`service.request_body.read_body` (the byte limit, chunked
+bodies included).
 """
 
 from __future__ import annotations
 
-import io
 import re
 from collections.abc import Callable, Iterable
 from time import perf_counter
@@ -21,16 +23,19 @@ from flask import Blueprint, Response, request
 
 from service import metrics
 from service.access_log import LABELS, ROUTE, ROWS
-from service.answers import parse_body, predict_response
+from service.answers import COMPUTE_SLOT, parse_body, predict_response
 from service.app_state import AppState, state
 from service.errors import ApiError
 from service.model import Model
+from service.request_body import read_body
 from service.routes import model_name, not_found
 from service.store import NotFound, StoreError, check_version
 from service.store.names import valid_name
 
 bp = Blueprint("predict", __name__)
 RULE = "/models/<name>/predict"
+#: Environ key of the exception the shortcut met answering a request it then left to Flask.
+REFUSED = "kridge.refused"
 
 
 def sends_json(environ: dict) -> bool:
@@ -66,14 +71,15 @@ def answer(name: str, model: Model, raw: bytes, max_rows: int, t_start: float,
     count in ``environ``."""
     version = str(model.version)
     environ[LABELS] = labels = (name, version)
-    req = parse_body(raw, max_rows)
-    t_parsed = perf_counter()
-    body, compute = predict_response(model, req, t_start, t_parsed)
-    results = body["results"]
-    environ[ROWS] = len(results)
-    t = body["timing_ms"]
-    t["total"] = total = round((perf_counter() - t_start) * 1e3, 4)
-    payload = orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY)
+    with COMPUTE_SLOT:  # one request of this worker at a time; the socket work is outside
+        req = parse_body(raw, max_rows)
+        t_parsed = perf_counter()
+        body, compute = predict_response(model, req, t_start, t_parsed)
+        results = body["results"]
+        environ[ROWS] = len(results)
+        t = body["timing_ms"]
+        t["total"] = total = round((perf_counter() - t_start) * 1e3, 4)
+        payload = orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY)
     metrics.count_request(labels, results, compute, total / 1e3)  # last: nothing can fail
     # wire order; with Content-Type in the list werkzeug skips its mimetype work
     return payload, [
@@ -94,8 +100,12 @@ def predict(name: str):
     if not sends_json(environ):
         raise ApiError(415, "unsupported_media_type",
                        "send the body as JSON with Content-Type: application/json")
-    payload, headers = answer(name, model, request.get_data(cache=False),
-                              state().settings.max_rows, t_start, environ)
+    refused = environ.pop(REFUSED, None)
+    if refused is not None:  # the shortcut parsed this body already
+        raise refused
+    settings = state().settings
+    payload, headers = answer(name, model, read_body(environ, settings.max_body_bytes),
+                              settings.max_rows, t_start, environ)
     return Response(payload, 200, headers)
 
 
@@ -122,7 +132,7 @@ class PredictShortcut:
         return self.flask_wsgi(environ, start_response)
 
     def _answer(self, name: str, environ: dict) -> tuple[bytes, list] | None:
-        """The answer, or None to leave the request to Flask (body put back)."""
+        """The answer, or None to leave the request to Flask (with the refusal, if any)."""
         t_start = perf_counter()
         # a name the store refuses, a model not loaded yet: Flask's 404s and loading
         if not valid_name(name) or not sends_json(environ):
@@ -133,13 +143,13 @@ class PredictShortcut:
         if (model is None or not length.isdigit() or int(length) > settings.max_body_bytes
                 or environ.get("HTTP_TRANSFER_ENCODING")):
             return None
-        raw = environ["wsgi.input"].read(int(length))
         try:
+            raw = read_body(environ, settings.max_body_bytes)
             done = answer(name, model, raw, settings.max_rows, t_start, environ)
-        except Exception:  # Flask answers it again, as it always would
+        except Exception as exc:  # Flask's view raises it again, unparsed, and answers it
             environ.pop(LABELS, None)
             environ.pop(ROWS, None)
-            environ["wsgi.input"] = io.BytesIO(raw)
+            environ[REFUSED] = exc
             return None
         environ[ROUTE] = RULE
         return done
