@@ -171,8 +171,13 @@ def cg_runs(args, data: Path, store: Path, x_test: np.ndarray, y_test: np.ndarra
                     "--solver", solver)
         res["fresh_rmse"], res["f_rmse"] = fresh_rmse(store, name, x_test, y_test)
         out.append((f"nystrom {solver}, m = {m}", args.rows, res))
+        from service.store import Store
+
+        train_rec = Store(store).read_manifest(name, 1)["training"]
+        solve = {k: v for k, v in (train_rec.get("solve") or {}).items()
+                 if k in ("iterations", "final_residual", "converged", "seconds")}
         print(f"nystrom {solver} with {m} landmarks: {res['wall_seconds']:.0f} s "
-              f"({res['load']})", flush=True)
+              f"({res['load']}); fit {train_rec['fit_seconds']:.0f} s {solve}", flush=True)
     sk = sklearn_nystroem(data, store, f"cg-{m}", m, x_test, y_test)
     if sk is None:
         print(f"scikit-learn Nystroem + Ridge skipped: its {args.rows} × {m} feature matrix "
