@@ -81,7 +81,7 @@ def fit_cg(plan: Plan, blocks: list, cluster: str | None, progress, ridges: list
     else:
         _none, held = run_pass2(plan, blocks, None, progress)
         train = held.pop("train")
-        rows = LocalRows(plan.spec, plan.landmarks, train.x, train.y)
+        rows = LocalRows(plan.spec, plan.landmarks, train.x, train.y, train.block_rows)
     try:
         if rows.count < 2:
             raise UserError(f"{plan.path}: no training rows left for the final fit")

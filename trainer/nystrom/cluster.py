@@ -53,9 +53,11 @@ def _held_of(res) -> tuple[dict, int, object]:
 
 
 def _apply(fn, kern, res, *args):
-    """fn(kern, x_train, y_train, *args) on the worker that holds the block."""
+    """Σ fn(kern, x, y, *args) over the block's chunks, on the worker that holds it."""
+    from trainer.nystrom.cg_rows import block_total
+
     x, y, _t = res.kept["train"]
-    return fn(kern, x, y, *args)
+    return block_total(fn, kern, x, y, *args)
 
 
 class ClusterRows:
@@ -95,9 +97,10 @@ class ClusterRows:
                    for b in self.blocks]
         total = None
         for fut in futures:  # block order
-            part = fut.result()
+            part = fut.result()  # None for a block without training rows
             fut.release()
-            total = part if total is None else total + part
+            if part is not None:
+                total = part if total is None else total + part
         return total
 
     def close(self) -> None:

@@ -102,6 +102,7 @@ class HeldRows:
     x: np.ndarray
     y: np.ndarray
     t: np.ndarray | None
+    block_rows: list[int] = field(default_factory=list)  # rows from each block, in order
 
     @classmethod
     def stack(cls, rows: list, d: int, t: int) -> HeldRows:
@@ -109,4 +110,4 @@ class HeldRows:
             return cls(np.empty((0, d)), np.empty((0, t)), None)
         times = None if rows[0][2] is None else np.concatenate([r[2] for r in rows])
         return cls(np.concatenate([r[0] for r in rows]), np.concatenate([r[1] for r in rows]),
-                   times)
+                   times, [r[0].shape[0] for r in rows])
