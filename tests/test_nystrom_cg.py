@@ -179,6 +179,8 @@ def test_cli_cg_fit_records_the_solve_and_serves_like_the_direct_one(tmp_path, c
     q = np.random.default_rng(9).uniform(-1, 1, (100, 4))
     np.testing.assert_allclose(b.predict(q), a.predict(q), rtol=0,
                                atol=1e-5 * np.abs(a.predict(q)).max())
+    assert main(["inspect", "cg", "--store", str(store)]) == 0
+    assert f"cg, {solve['iterations']} iterations" in capsys.readouterr().out
 
 
 def test_solver_choice_is_checked_and_explained(tmp_path, capsys):
