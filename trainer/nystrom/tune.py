@@ -114,6 +114,16 @@ def _refine_width(problem: SampleProblem, coarse: Curve, runner) -> list[Curve]:
     return curves
 
 
+def _fine_problem(problem: SampleProblem, rng: np.random.Generator) -> SampleProblem:
+    """The problem the width steps decide on: all landmarks up to FINE_MAX_LANDMARKS, above
+    a uniform subset of that many."""
+    m = problem.landmarks.shape[0]
+    if m <= FINE_MAX_LANDMARKS:
+        return problem
+    pick = np.sort(rng.choice(m, FINE_MAX_LANDMARKS, replace=False))
+    return replace(problem, landmarks=problem.landmarks[pick], evaluated=0)
+
+
 def tune_on_sample(opts, problem: SampleProblem, log,
                    rng: np.random.Generator | None = None) -> tuple[KernelSpec, float, dict]:
     """Kernel parameters and a first ridge on the sample (same width range as exact tuning).
@@ -136,11 +146,7 @@ def tune_on_sample(opts, problem: SampleProblem, log,
         rng = rng or np.random.default_rng(0)
         subset = np.sort(rng.choice(m, COARSE_LANDMARKS, replace=False))
         coarse = replace(problem, landmarks=problem.landmarks[subset], evaluated=0)
-    fine = problem
-    if m > FINE_MAX_LANDMARKS:
-        pick = np.sort((rng or np.random.default_rng(0)).choice(m, FINE_MAX_LANDMARKS,
-                                                                replace=False))
-        fine = replace(problem, landmarks=problem.landmarks[pick], evaluated=0)
+    fine = _fine_problem(problem, rng or np.random.default_rng(0))
     curves, ranges = [], {}
     for name in kernels:
         for base in search.kernel_candidates(name, opts):
