@@ -90,6 +90,29 @@ def cross_sums(kern: KernelBlocks, x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return out
 
 
+#: Rows per chunk of a pass over the training rows: one work item of a thread or a share of
+#: a Dask block, enough tiles to hide the hand-over.
+CHUNK_ROWS = 8192
+
+
+def chunks(start: int, stop: int) -> list[slice]:
+    """Slices of at most :data:`CHUNK_ROWS` rows covering [start, stop)."""
+    return [slice(i, min(i + CHUNK_ROWS, stop)) for i in range(start, stop, CHUNK_ROWS)]
+
+
+def _ordered_sum(parts) -> np.ndarray:
+    total = None
+    for part in parts:
+        total = part if total is None else total + part
+    return total
+
+
+def block_total(fn, kern: KernelBlocks, x: np.ndarray, y: np.ndarray, *args) -> np.ndarray:
+    """Σ over the block's chunks of fn(kern, x_chunk, y_chunk, *args), in chunk order (None
+    for a block without rows)."""
+    return _ordered_sum(fn(kern, x[s], y[s], *args) for s in chunks(0, x.shape[0]))
+
+
 #: How a solver sums a per-block function over every training block, in block order:
 #: ``row_sum(fn, *args)`` = Σ_blocks fn(kern, x_block, y_block, *args).
 RowSum = Callable[..., np.ndarray]

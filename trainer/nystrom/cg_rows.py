@@ -3,10 +3,10 @@
 CG passes over the rows tens of times, so the training part's standardized rows are kept
 (n·(d + t)·8 bytes: 72 MB for a million rows of 8 inputs and one target), never K_nm
 (n·m·8 bytes: 80 GB at m = 10,000). A pass splits each file block's rows into chunks of
-:data:`CHUNK_ROWS`, one thread per core with single-threaded BLAS
+:data:`trainer.nystrom.cg.CHUNK_ROWS`, one thread per core with single-threaded BLAS
 (:func:`trainer.nystrom.pass2.in_threads`), adds the chunks' sums in order within the block
 and the blocks' sums in block order, exactly as a Dask worker sums its block
-(:func:`block_total`): the same sums on any number of cores or workers.
+(:func:`trainer.nystrom.cg.block_total`): the same sums on any number of cores or workers.
 """
 
 from __future__ import annotations
@@ -14,27 +14,8 @@ from __future__ import annotations
 import numpy as np
 
 from service.kernels import KernelBlocks, KernelSpec
+from trainer.nystrom.cg import chunks as _chunks
 from trainer.nystrom.pass2 import in_threads
-
-#: Rows per chunk of a pass: enough tiles per thread to hide the hand-over.
-CHUNK_ROWS = 8192
-
-
-def _chunks(start: int, stop: int) -> list[slice]:
-    return [slice(i, min(i + CHUNK_ROWS, stop)) for i in range(start, stop, CHUNK_ROWS)]
-
-
-def _ordered_sum(parts) -> np.ndarray:
-    total = None
-    for part in parts:
-        total = part if total is None else total + part
-    return total
-
-
-def block_total(fn, kern: KernelBlocks, x: np.ndarray, y: np.ndarray, *args) -> np.ndarray:
-    """Σ over the block's chunks of fn(kern, x_chunk, y_chunk, *args), in chunk order (None
-    for a block without rows)."""
-    return _ordered_sum(fn(kern, x[s], y[s], *args) for s in _chunks(0, x.shape[0]))
 
 
 class LocalRows:

@@ -54,7 +54,7 @@ def _held_of(res) -> tuple[dict, int, object]:
 
 def _apply(fn, kern, res, *args):
     """Σ fn(kern, x, y, *args) over the block's chunks, on the worker that holds it."""
-    from trainer.nystrom.cg_rows import block_total
+    from trainer.nystrom.cg import block_total
 
     x, y, _t = res.kept["train"]
     return block_total(fn, kern, x, y, *args)
