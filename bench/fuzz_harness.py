@@ -4,6 +4,7 @@ and the statuses of the JSON-lines access log."""
 
 from __future__ import annotations
 
+import os
 import re
 import subprocess
 import sys
@@ -34,7 +35,11 @@ def run_schemathesis(base: str, workdir: Path, max_examples: int, seed: int,
             "--no-color", "--generation-database", "none"]
     if token:
         argv += ["--header", f"Authorization: Bearer {token}"]
-    r = subprocess.run(argv, capture_output=True, text=True, cwd=workdir, timeout=900)
+    root = str(Path(__file__).resolve().parents[1])
+    env = {**os.environ, "SCHEMATHESIS_HOOKS": "bench.fuzz_hooks",
+           "PYTHONPATH": os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")]))}
+    r = subprocess.run(argv, capture_output=True, text=True, cwd=workdir, timeout=900,
+                       env=env)
     out = r.stdout + r.stderr
     found = re.search(r"(\d+) generated, (\d+) passed", out)
     return {"exit": r.returncode, "generated": int(found[1]) if found else 0,

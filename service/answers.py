@@ -16,7 +16,7 @@ from service.errors import ApiError
 from service.intervals import CoverageUnavailable
 from service.model import Model
 from service.request_body import refuse_before_parsing, too_many_rows
-from service.schemas import MAX_INPUT, RowBatch
+from service.schemas import MAX_ID_CHARS, MAX_INPUT, RowBatch
 
 #: One predict request of this process is parsed, computed and serialized at a time
 #: (:func:`service.routes.predict.answer`): the worker's threads overlap waiting on slow
@@ -25,9 +25,11 @@ from service.schemas import MAX_INPUT, RowBatch
 COMPUTE_SLOT = threading.Lock()
 
 
-def parse_body(raw: bytes, max_rows: int) -> RowBatch:
+def parse_body(raw: bytes, max_rows: int, features: list[str] | None = None) -> RowBatch:
     """JSON bytes → validated request (structure, strict finite numbers, no extra keys);
-    a body with more arrays and objects than ``max_rows`` rows need is refused unparsed."""
+    a body with more arrays and objects than ``max_rows`` rows need is refused unparsed.
+    With the model's ``features`` a refused row is explained by its cause (see
+    :func:`row_fault`)."""
     refuse_before_parsing(raw, max_rows)
     try:
         data = orjson.loads(raw)
@@ -41,24 +43,32 @@ def parse_body(raw: bytes, max_rows: int) -> RowBatch:
     rows = data.get("rows")
     if isinstance(rows, list) and len(rows) > max_rows:
         raise too_many_rows(len(rows), max_rows)
-    quick = _plain_batch(data, rows)
-    if quick is not None:
-        return quick
-    try:
-        return RowBatch.model_validate(data)
-    except ValidationError as exc:
-        raise _explain(exc, rows) from None
+    batch = _plain_batch(data, rows)
+    if batch is None:
+        try:
+            batch = RowBatch.model_validate(data)
+        except ValidationError as exc:
+            raise _explain(exc, rows, features) from None
+    ids = batch.ids
+    if ids is not None and len(ids) != len(batch.rows):
+        raise ApiError(422, "invalid_ids",
+                       f"field 'ids': {len(ids)} ids for {len(batch.rows)} rows; send one "
+                       "per row, in row order",
+                       {"field": "ids", "ids": len(ids), "rows": len(batch.rows)})
+    return batch
+
+
+_FIELDS = frozenset(("rows", "coverage", "ids"))
 
 
 def _plain_batch(data: dict, rows) -> RowBatch | None:
     """The common request, held to every rule of :class:`RowBatch` in plain Python (a few
     µs where pydantic's union of row shapes takes about ten); None for anything else, which
-    pydantic then checks and explains. Rules: only ``rows`` and ``coverage``; a non-empty list
-    of non-empty arrays or objects of numbers (int or float, never bool) within ±MAX_INPUT,
-    finite; coverage absent, null or a float strictly between 0 and 1."""
-    if len(data) > 2 or not (len(data) == 1 or "coverage" in data) or type(rows) is not list:
-        return None
-    if not rows:
+    pydantic then checks and explains. Rules: only ``rows``, ``coverage`` and ``ids``; a
+    non-empty list of non-empty arrays or objects of numbers (int or float, never bool)
+    within ±MAX_INPUT, finite; coverage absent, null or a float strictly between 0 and 1;
+    ids absent, null or a list of strings of at most MAX_ID_CHARS characters."""
+    if type(rows) is not list or not rows or not _FIELDS.issuperset(data):
         return None
     top = MAX_INPUT
     for row in rows:
@@ -79,11 +89,67 @@ def _plain_batch(data: dict, rows) -> RowBatch | None:
     coverage = data.get("coverage")
     if coverage is not None and (type(coverage) is not float or not 0.0 < coverage < 1.0):
         return None
-    return RowBatch.model_construct(rows=rows, coverage=coverage)
+    ids = data.get("ids")
+    if ids is not None and (type(ids) is not list or not all(
+            type(i) is str and len(i) <= MAX_ID_CHARS for i in ids)):
+        return None
+    return RowBatch.model_construct(rows=rows, coverage=coverage, ids=ids)
 
 
-def _explain(exc: ValidationError, rows) -> ApiError:
-    """Turn pydantic's errors into one message naming row and feature, plus details."""
+#: One wording and one code per cause of a refused row value.
+UNKNOWN_FEATURE = ("unknown_feature", "unknown feature")
+MISSING_VALUE = ("missing_value", "missing value")
+NOT_A_NUMBER = ("not_a_number", "not a number")
+
+
+def _refused(cause: tuple[str, str], i: int, where: str | int,
+             features: list[str]) -> ApiError:
+    code, wording = cause
+    spot = f"feature {where!r}" if isinstance(where, str) else f"position {where}"
+    detail = {"row": i, ("feature" if isinstance(where, str) else "position"): where,
+              "message": wording, "features": features}
+    return ApiError(422, code, f"row {i}, {spot}: {wording}", detail)
+
+
+def _value_cause(v) -> tuple[str, str] | None:
+    if v is None:
+        return MISSING_VALUE
+    kind = type(v)
+    return None if kind is float or kind is int else NOT_A_NUMBER
+
+
+def row_fault(i: int, row, features: list[str]) -> ApiError | None:
+    """The first fault of row ``i`` by cause, or None: in key order an unknown feature, a
+    null (missing value) or a non-number, then a feature the object leaves out (missing
+    value). Values out of range and array lengths are checked elsewhere."""
+    if isinstance(row, dict):
+        known = set(features)
+        for key, v in row.items():
+            if key not in known:
+                return _refused(UNKNOWN_FEATURE, i, key, features)
+            cause = _value_cause(v)
+            if cause is not None:
+                return _refused(cause, i, key, features)
+        for f in features:
+            if f not in row:
+                return _refused(MISSING_VALUE, i, f, features)
+    elif isinstance(row, list):
+        for k, v in enumerate(row):
+            cause = _value_cause(v)
+            if cause is not None:
+                return _refused(cause, i, k, features)
+    return None
+
+
+def _explain(exc: ValidationError, rows, features: list[str] | None) -> ApiError:
+    """Turn pydantic's errors into one message naming row and feature, plus details; with
+    ``features`` a row's unknown feature, missing value or non-number is named by its cause
+    (the first such row), whatever pydantic met first."""
+    if features is not None and isinstance(rows, list):
+        for i, row in enumerate(rows):
+            fault = row_fault(i, row, features)
+            if fault is not None:
+                return fault
     details = []
     for err in exc.errors(include_url=False, include_input=False):
         loc = err["loc"]
@@ -105,6 +171,12 @@ def _explain(exc: ValidationError, rows) -> ApiError:
             details.append(item)
         elif loc and loc[0] == "rows":
             details.append({"field": "rows", "message": err["msg"]})
+        elif loc and loc[0] == "ids":
+            item = {"field": "ids", "message": "must be a list of strings, one per row"}
+            if len(loc) > 1:
+                item.update(row=loc[1], message="an id must be a string of at most "
+                            f"{MAX_ID_CHARS} characters")
+            details.append(item)
         else:
             field = ".".join(str(p) for p in loc) or "body"
             msg = "unknown field" if err["type"] == "extra_forbidden" else err["msg"]
@@ -112,15 +184,20 @@ def _explain(exc: ValidationError, rows) -> ApiError:
     if not details:  # pragma: no cover - pydantic always says something
         details = [{"message": str(exc)}]
     first = details[0]
-    if "row" in first:
+    if "field" in first:
+        spot = f"field {first['field']!r}"
+        if "row" in first:
+            spot += f", row {first['row']}"
+    elif "row" in first:
         spot = f"row {first['row']}"
         if "feature" in first:
             spot += f", feature {first['feature']!r}"
         elif "position" in first:
             spot += f", position {first['position']}"
     else:
-        spot = f"field {first.get('field', 'body')!r}"
-    return ApiError(422, "invalid_request", f"{spot}: {first['message']}", details)
+        spot = "body"
+    code = "invalid_ids" if first.get("field") == "ids" else "invalid_request"
+    return ApiError(422, code, f"{spot}: {first['message']}", details)
 
 
 def rows_to_array(req: RowBatch, model: Model) -> np.ndarray:
@@ -131,16 +208,7 @@ def rows_to_array(req: RowBatch, model: Model) -> np.ndarray:
     for i, row in enumerate(req.rows):
         if isinstance(row, dict):
             if len(row) != d or any(f not in row for f in feats):
-                missing = [f for f in feats if f not in row]
-                unknown = [k for k in row if k not in model.features]
-                bits = []
-                if unknown:
-                    bits.append(f"unknown feature(s) {', '.join(map(repr, unknown))}")
-                if missing:
-                    bits.append(f"missing feature(s) {', '.join(map(repr, missing))}")
-                raise ApiError(422, "invalid_row", f"row {i}: {'; '.join(bits)}",
-                               {"row": i, "unknown": unknown, "missing": missing,
-                                "features": feats})
+                raise row_fault(i, row, feats)
             out[i] = [row[f] for f in feats]
         else:
             if len(row) != d:
@@ -169,9 +237,11 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
                        f"row {i}: the prediction overflowed (the kernel value is not finite); "
                        "the row lies far outside the training envelope", {"row": i})
     multi = y.shape[1] > 1
+    ids = req.ids
     results = []
     for i in range(y.shape[0]):
-        item: dict = {"value": y[i].tolist() if multi else float(y[i, 0])}
+        value = y[i].tolist() if multi else float(y[i, 0])
+        item: dict = {"value": value} if ids is None else {"id": ids[i], "value": value}
         if half is not None:
             lo, hi = y[i] - half, y[i] + half
             item["interval"] = (np.column_stack([lo, hi]).tolist() if multi

@@ -23,3 +23,11 @@ BEFORE_ACTING = (
     "batch — follow your site's procedures and have a qualified person review the result "
     "against measurements."
 )
+
+#: Shown with every ``kridge drift`` result, alarm or not.
+DRIFT_ALARM = (
+    "A drift alarm says the new rows are unlikely to come from the distribution the model "
+    "was trained on; it is a reason to check the process, the sensors and the model's recent "
+    "errors against lab values, not proof that the model is wrong. No alarm is no proof that "
+    "the model is right either: a small batch can hide a real change."
+)

@@ -143,7 +143,9 @@ class Engine:
         # store it, is used as it is; a row-major one gets a private copy)
         self.blocks = KernelBlocks(spec, self.x, self.dtype, shift, scale)
         if spec.uses == "l1":
-            prepare_l1(self.dtype)
+            # compiled for the very arrays requests pass (a read-only bundle array is
+            # another numba argument type than a writable one)
+            prepare_l1(self.blocks.columns)
         self._near: tuple[np.ndarray, int] | None = None
         if neighbours is not None and spec.uses == "sqdist" and self.dtype == np.float64:
             rows, k = neighbours

@@ -8,15 +8,20 @@ L1 cache while the features stream past: several times ``cdist``'s rate (DEVELOP
 
 numba is imported on first use, so models with other kernels never load it. The function is
 compiled in memory (no on-disk cache: the serving filesystem may be read-only), once per
-process and dtype, when an engine for a laplacian model is built (:func:`prepare`). Where numba
-cannot be imported the numpy form serves the same values, more slowly.
+process and argument types, when an engine for a laplacian model is built (:func:`prepare`,
+with the engine's own training array: a read-only memory map is another argument type than a
+writable array, and numba compiles once per type). Each new compilation is logged and told to
+the :data:`ON_COMPILE` listeners, marked as met while warming (:func:`warming`) or not: a
+compilation outside warming is a request paying it. Where numba cannot be imported the numpy
+form serves the same values, more slowly.
 """
 
 from __future__ import annotations
 
 import logging
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 
 import numpy as np
 
@@ -30,6 +35,39 @@ CHUNK = 2048
 _lock = threading.Lock()
 _kernel: Callable | None = None
 _tried = False
+_signatures = 0  # argument types the loop has been compiled for in this process
+_warm = threading.local()
+
+#: Called with True (while warming) or False (on a request's path) after each compilation.
+ON_COMPILE: list[Callable[[bool], None]] = []
+
+
+@contextmanager
+def warming() -> Iterator[None]:
+    """Mark compilations on this thread as part of warming a model, not a request's."""
+    _warm.on = True
+    try:
+        yield
+    finally:
+        _warm.on = False
+
+
+def _count_compiles(loop) -> None:
+    """Tell a compilation the call just made (a dispatcher's overloads grow by one per new
+    argument types); costs one dict length per call otherwise."""
+    global _signatures
+    n = len(loop.overloads)
+    if n == _signatures:
+        return
+    with _lock:
+        new, _signatures = n - _signatures, n
+    if new <= 0:
+        return
+    during_warm = getattr(_warm, "on", False)
+    log.info("compiled the L1 loop for new argument types (%s in this process; %s)", n,
+             "while warming" if during_warm else "on a request")
+    for listener in ON_COMPILE:
+        listener(during_warm)
 
 
 def _compile() -> Callable | None:
@@ -95,10 +133,14 @@ def compiled() -> bool:
     return _loop() is not None
 
 
-def prepare(dtype: np.dtype) -> None:
-    """Compile the loop for ``dtype`` now, so that no request pays the ~0.5 s compile."""
-    q = np.zeros((1, 1), dtype=dtype)
-    scaled_l1(q, q, 0, 1.0, np.empty((1, 1), dtype=dtype))
+def prepare(xt: np.ndarray) -> None:
+    """Compile the loop now for the argument types requests will pass with training array
+    ``xt`` ((d, N), N ≥ 1), so that no request pays the ~0.5 s compile."""
+    if xt.shape[1] == 0:
+        return
+    q = np.zeros((1, xt.shape[0]), dtype=xt.dtype)
+    with warming():
+        scaled_l1(q, xt, 0, 1.0, np.empty((1, 1), dtype=xt.dtype))
 
 
 def _numpy_l1(q: np.ndarray, xt: np.ndarray, j0: int, scale: float, out: np.ndarray) -> None:
@@ -133,7 +175,9 @@ def scaled_l1(q: np.ndarray, xt: np.ndarray, j0: int, scale: float, out: np.ndar
     loop = _loop()
     if loop is not None:
         try:
-            return loop(q, xt, j0, scale, out)
+            loop(q, xt, j0, scale, out)
+            _count_compiles(loop)
+            return out
         except Exception as exc:  # the first call of a dtype compiles; see _give_up
             _give_up(exc)
     _numpy_l1(q, xt, j0, scale, out)

@@ -22,6 +22,7 @@ from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from service.l1_distance import warming
 from service.model import Model, load_model
 from service.store import NotFound, Store, StoreError
 
@@ -53,6 +54,16 @@ def fault_kind(exc: BaseException) -> str:
     if isinstance(exc, StoreError):
         return exc.kind
     return "unreadable" if isinstance(exc, OSError) else "damaged"
+
+
+def warm(model: Model) -> None:
+    """One prediction (at the training minimum) before the version is served, so that its
+    first-call costs, the laplacian's compiled loop above all, are paid here and not by the
+    first request: a worker says ready only with every live model warmed."""
+    with warming():
+        model.score(model.lo[None, :].copy())
+    log.info("model %s: version %s warmed in process %s", model.name, model.version,
+             os.getpid())
 
 
 class LiveModels:
@@ -95,6 +106,7 @@ class LiveModels:
             model = self._cached_pinned(name, version)
             if model is None:
                 model = load_model(self.store, name, version)
+                warm(model)
                 self.loads += 1
                 with self._lock:
                     self.pinned[(name, version)] = model

@@ -19,6 +19,8 @@ from prometheus_client import (
     generate_latest,
 )
 
+from service import l1_distance
+
 # Latency buckets in seconds: 0.1 ms to 2.5 s; single-row requests live at the low end.
 BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25,
            0.5, 1.0, 2.5)
@@ -43,6 +45,13 @@ UNKNOWN_MODEL = "(unknown)"
 LOAD_FAILURES = Counter(
     "kridge_load_failures", "Live versions a worker refused to load.", ["model", "version"]
 )
+L1_COMPILES = Counter(
+    "kridge_l1_compiles", "Compilations of the laplacian kernel's L1 loop, by whether a "
+    "model's warm-up before serving or a request met them (request: a request waited).",
+    ["during"],
+)
+l1_distance.ON_COMPILE.append(
+    lambda during_warm: L1_COMPILES.labels("warm" if during_warm else "request").inc())
 
 
 def model_label(name: str, exists: Callable[[str], bool]) -> str:

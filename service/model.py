@@ -64,6 +64,8 @@ class Model:
         nov = env["novelty"]
         self.novelty_tau = float(nov["threshold_distance"])
         self.neighbours = envelope.NeighbourIndex(arrays["novelty_reference"], int(nov["k"]))
+        #: standardized training rows (all, or a uniform sample): the drift check's reference
+        self.reference: np.ndarray = arrays["novelty_reference"]
         # reference rows that are training rows: their distances come with the prediction
         shared = None
         if self.spec.uses == "sqdist" and precision == "float64":

@@ -94,14 +94,17 @@ def component_schemas(max_rows: int) -> dict:
         ref_template=REF,
     )
     defs = defs.get("$defs", {})
-    defs["RowBatch"]["properties"]["rows"]["maxItems"] = max_rows
+    batch = defs["RowBatch"]["properties"]
+    batch["rows"]["maxItems"] = max_rows
+    batch["ids"]["anyOf"][0]["maxItems"] = max_rows
     return defs
 
 
 def _model_body(batch: dict, served: ServedModel) -> dict:
     """The request schema of one model: every feature by name, or exactly that many numbers
-    in feature order; ``coverage`` only when the model has intervals, up to what they allow
-    (the rule of :func:`service.intervals.coverage_limit`, which the service applies)."""
+    in feature order; ``ids`` as for every model; ``coverage`` only when the model has
+    intervals, up to what they allow (the rule of :func:`service.intervals.coverage_limit`,
+    which the service applies)."""
     number = batch["properties"]["rows"]["items"]["anyOf"][0]["additionalProperties"]
     rows = dict(batch["properties"]["rows"], items={"anyOf": [
         {"type": "object", "properties": {f: number for f in served.features},
@@ -110,7 +113,7 @@ def _model_body(batch: dict, served: ServedModel) -> dict:
          "maxItems": len(served.features),
          "description": "In this order: " + ", ".join(served.features)},
     ]})
-    props = {"rows": rows}
+    props = {"rows": rows, "ids": batch["properties"]["ids"]}
     if served.calibration is not None:
         c = served.calibration
         props["coverage"] = {"anyOf": [

@@ -20,6 +20,12 @@ from service.kernels import KernelSpec
 from service.metrics import RowCounts
 from service.store import Store, StoreError
 from service.text_safety import html_name
+from service.version_facts import (
+    FEATURES_LISTED,
+    data_fingerprint,
+    features_text,
+    method_text,
+)
 
 
 def safe_message(store: Store, exc: Exception) -> str:
@@ -139,6 +145,9 @@ class VersionCard:
     kernel: str = "–"
     ridge: str = "–"
     rows: str = "–"
+    method: str = "–"
+    features: str = "–"  # HTML: names isolated (Markup)
+    data: str = "–"
     scores: list[Score] = field(default_factory=list)
     intervals: str = "none stored"
     coverage: list[str] = field(default_factory=list)
@@ -176,6 +185,13 @@ def _intervals(manifest: dict) -> tuple[str, list[str]]:
     return method, lines
 
 
+def feature_cells(features: list[str]) -> str:
+    """The feature names, each isolated, when few; else their count and short hash."""
+    if len(features) <= FEATURES_LISTED:
+        return Markup(", ").join(html_name(f) for f in features)
+    return features_text(features)
+
+
 def versions(store: Store, name: str, live: int | None) -> list[VersionCard]:
     """Every version of ``name``, newest first; a damaged one says what is wrong with it."""
     cards = []
@@ -187,6 +203,9 @@ def versions(store: Store, name: str, live: int | None) -> list[VersionCard]:
             card.kernel = kernel_text(man)
             card.ridge = number(man.get("ridge"))
             card.rows = number((man.get("training") or {}).get("rows"), 12)
+            card.method = method_text(man)
+            card.features = feature_cells(list(man.get("features") or []))
+            card.data = data_fingerprint(man)
             card.scores = scores(man)
             card.intervals, card.coverage = _intervals(man)
             card.has_report = store.report_path(name, v) is not None

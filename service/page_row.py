@@ -91,7 +91,7 @@ def try_row(model: Model, row: dict[str, float], coverage: float | None,
     t0 = time.perf_counter()
     try:
         # orjson writes a NaN or infinity as null, which the route's validation refuses
-        req = parse_body(orjson.dumps(body), max_rows)
+        req = parse_body(orjson.dumps(body), max_rows, model.features)
         resp, _ = predict_response(model, req, t0, time.perf_counter())
     except ApiError as exc:
         return Outcome(error=exc.message)

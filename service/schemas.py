@@ -37,6 +37,11 @@ ObjectRow = Annotated[dict[str, Number], Field(min_length=1)]
 ArrayRow = Annotated[list[Number], Field(min_length=1)]
 
 
+#: Longest row identifier: room for a UUID, a sample code or a path-like key.
+MAX_ID_CHARS = 200
+RowId = Annotated[str, Field(max_length=MAX_ID_CHARS)]
+
+
 class RowBatch(Strict):
     rows: list[ObjectRow | ArrayRow] = Field(
         ..., min_length=1, description="Rows to predict. " + ROW_DOC
@@ -44,6 +49,10 @@ class RowBatch(Strict):
     coverage: Annotated[float, Field(gt=0, lt=1, allow_inf_nan=False)] | None = Field(
         None,
         description="Ask for a prediction interval with this nominal coverage, e.g. 0.9.",
+    )
+    ids: list[RowId] | None = Field(
+        None, description="One identifier per row, in row order; each comes back as its "
+        "result's id. As many as there are rows.",
     )
 
 
@@ -72,6 +81,8 @@ class Envelope(Answer):
 
 
 class Result(Answer):
+    id: str | None = Field(None, description="The row's entry of the request's ids, when "
+                           "it sent them.")
     value: float | list[float] = Field(description="Prediction in raw units; a list per row "
                                        "when the model has several targets.")
     interval: list[float] | list[list[float]] | None = Field(

@@ -88,8 +88,8 @@ def test_only_a_laplacian_model_loads_numba_and_it_serves_without_scipy(
 
 def test_the_boundary_check_catches_a_forbidden_import(store):
     # control: the same probe, with the trainer pulled in, must see it (and its scipy)
-    seen = probe(store, "trainer.exact.job")
-    assert "trainer.exact.job" in seen["loaded"] and "scipy" in seen["loaded"]
+    seen = probe(store, "trainer.exact.solver")
+    assert "trainer.exact.solver" in seen["loaded"] and "scipy" in seen["loaded"]
 
 
 TEST_MODULES = {p.stem for p in (ROOT / "tests").glob("*.py")}

@@ -81,7 +81,10 @@ def test_versions_marks_the_live_one(trained, small_csv, capsys):
     rows = [line.split() for line in out.strip().splitlines()[2:]]
     assert rows[0][:2] == ["*", "1"] and rows[1][0] == "2"
     code, out, _ = run_cli(capsys, "versions", "coat", "--json")
-    assert json.loads(out) == {"model": "coat", "live": 1, "versions": [1, 2]}
+    doc = json.loads(out)
+    assert {k: doc[k] for k in ("model", "live", "versions")} == {
+        "model": "coat", "live": 1, "versions": [1, 2]}
+    assert [d["version"] for d in doc["details"]] == [1, 2]
     code, _, err = run_cli(capsys, "versions", "nosuch")
     assert code == 2 and "no model named 'nosuch'" in err
 

@@ -245,7 +245,8 @@ def test_old_store_names_print_escaped_and_the_model_serves(tmp_path, store_dir,
     assert not any(text_safety.is_refused(ch) for ch in text.replace("\n", ""))
     inspect = printed[0]
     assert re.search(r"targets +y\\x1b\[31mred\n", inspect)
-    assert re.search(r"features +iny\\x1b\[31mred, b\\u202e\n", inspect)
+    assert re.search(r"features +2: iny\\x1b\[31mred, b\\u202e \(sha256 [0-9a-f]{12}\)\n",
+                     inspect)
     header = next(csv.reader(io.StringIO(printed[3])))
     assert header[:3] == ["iny\\x1b[31mred", "b\\u202e", "y\\x1b[31mred_predicted"]
     # the manifest itself is unchanged: --json gives the names as stored

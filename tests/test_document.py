@@ -143,7 +143,16 @@ def test_every_predict_answer_fits_the_document(served):
     one = _check(doc, gloss, "post", served.post(gloss, json={"rows": [TYPICAL_ROW],
                                                               "coverage": 0.5}))
     assert isinstance(one["results"][0]["value"], float)
+    # row ids come back in the results, in a field the document declares
+    body = doc["paths"][coat]["post"]["requestBody"]["content"]["application/json"]["schema"]
+    assert body["properties"]["ids"]["anyOf"][0]["items"]["type"] == "string"
+    tagged = _check(doc, coat, "post", served.post(coat, json={
+        "rows": [TYPICAL_ROW, EMPTY_REGION_ROW], "ids": ["s-1", "s-2"], "coverage": 0.9}))
+    assert [r["id"] for r in tagged["results"]] == ["s-1", "s-2"]
+    assert "id" not in both["results"][0]
     refusals = [
+        (422, dict(json={"rows": [TYPICAL_ROW], "ids": ["s-1", "s-2"]})),
+        (422, dict(json={"rows": [TYPICAL_ROW], "ids": [7]})),
         (400, dict(data=b"{", headers={"Content-Type": "application/json"})),
         (404, dict(params={"version": "9"}, json={"rows": [TYPICAL_ROW]})),
         (413, dict(json={"rows": [TYPICAL_ROW] * 21})),

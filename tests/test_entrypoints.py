@@ -5,6 +5,7 @@ from __future__ import annotations
 import signal
 import subprocess
 import time
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -55,3 +56,17 @@ def test_parquet_input_trains_the_same_model_as_csv(small_csv, store_dir, tmp_pa
     x = data[:, :5]  # the process settings: the first five columns
     assert a.features == b.features
     assert np.array_equal(a.predict(x), b.predict(x))
+
+
+def test_a_plain_install_carries_every_package_of_the_code():
+    """``pip install .`` (the serving image's install) ships what pyproject's package rule
+    finds: every folder of service/ and trainer/ that holds an ``__init__.py``."""
+    import tomllib
+    from setuptools import find_packages
+
+    root = Path(__file__).resolve().parents[1]
+    rule = tomllib.loads((root / "pyproject.toml").read_text())["tool"]["setuptools"]
+    found = set(find_packages(where=str(root), include=rule["packages"]["find"]["include"]))
+    on_disk = {".".join(p.parent.relative_to(root).parts)
+               for top in ("service", "trainer") for p in (root / top).rglob("__init__.py")}
+    assert on_disk <= found, sorted(on_disk - found)

@@ -84,3 +84,30 @@ def test_the_graph_sees_imports_inside_functions():
 
 def test_no_import_circle_in_trainer_or_service():
     assert cycles(import_graph()) == []
+
+
+SHARED_STAGE_MODULES = ("trainer.calibration", "trainer.manifest", "trainer.publish")
+
+
+def test_solvers_leave_calibration_manifest_and_publish_to_the_job():
+    # a solver offers residuals, rows and its manifest section; the job calibrates, writes
+    # the manifest and publishes (trainer/job.py), so no solver module imports those stages
+    graph = import_graph()
+    solver_modules = [m for m in graph if m.startswith(("trainer.exact.", "trainer.nystrom."))]
+    assert "trainer.exact.solver" in solver_modules and "trainer.nystrom.solver" in solver_modules
+    faults = {m: sorted(graph[m] & set(SHARED_STAGE_MODULES)) for m in solver_modules}
+    assert {m: f for m, f in faults.items() if f} == {}
+    assert set(SHARED_STAGE_MODULES) <= graph["trainer.job"]
+
+
+def test_only_the_job_and_its_callers_see_the_train_options():
+    # the options become a Plan at the top of the job; deeper stages take the plan's fields
+    callers = {"trainer.plan", "trainer.job", "trainer.cli", "trainer.demo"}
+    seeing = set()
+    for path in (ROOT / "trainer").rglob("*.py"):
+        tree = ast.parse(path.read_text(), str(path))
+        if any(isinstance(n, ast.Name) and n.id == "TrainOptions" for n in ast.walk(tree)) or \
+                any(isinstance(n, ast.alias) and n.name == "TrainOptions"
+                    for n in ast.walk(tree)):
+            seeing.add(_module_name(path))
+    assert seeing <= callers, sorted(seeing - callers)

@@ -139,17 +139,16 @@ def test_two_stage_width_search_decides_with_all_landmarks(monkeypatch):
     """The first stage searches widths on a landmark subset; the width and ridge returned
     are those that score best with every landmark, and their score is that of a fresh
     evaluation with all of them."""
-    from trainer.job import TrainOptions
     from trainer.nystrom import tune as nystrom_tune
+    from trainer.plan import Parameters
 
     monkeypatch.setattr(nystrom_tune, "COARSE_LANDMARKS", 30)
     x, y = _data(2400, seed=13)
     xs = (x - x.mean(0)) / x.std(0)
     lm = xs[:120]
     problem = nystrom_tune.sample_problem(xs, y, None, lm, None, np.random.default_rng(0))
-    opts = TrainOptions(data="-", targets=["y"], name="t", store="-")
-    spec, ridge, info = nystrom_tune.tune_on_sample(opts, problem, lambda *_: None,
-                                                    np.random.default_rng(1))
+    spec, ridge, info = nystrom_tune.tune_on_sample(Parameters("rbf"), 0, problem,
+                                                    lambda *_: None, np.random.default_rng(1))
     assert "subset of 30 landmarks" in info["method"]
     assert len(info["coarse_curves"]) >= 8 and len(info["curves"]) >= 3
     fresh = nystrom_tune._evaluate(problem, spec)  # all 120 landmarks

@@ -1,5 +1,6 @@
-"""A Nyström fit draws every row's part once: landmarks, the tuning sample and the fit come
-from the training part, and no validation, holdout or calibration row ever reaches them."""
+"""A Nyström fit draws every row's part once: landmarks, the tuning sample, the fit and the
+novelty reference come from the training part, and no validation, holdout or calibration row
+ever reaches them."""
 
 from __future__ import annotations
 
@@ -29,9 +30,9 @@ def _ids(x_s: np.ndarray, mean: np.ndarray, scale: np.ndarray) -> set[int]:
 
 
 @pytest.mark.parametrize("in_time", [False, True])
-def test_landmarks_tuning_and_fit_rows_never_include_held_out_rows(tmp_path, monkeypatch,
+def test_landmarks_tuning_fit_and_novelty_rows_never_include_held_out_rows(tmp_path, monkeypatch,
                                                                     in_time):
-    import trainer.nystrom.job as job
+    import trainer.nystrom.solver as job
 
     seen: dict = {}
     sample_problem, run_pass2 = job.sample_problem, job.run_pass2
@@ -63,9 +64,13 @@ def test_landmarks_tuning_and_fit_rows_never_include_held_out_rows(tmp_path, mon
     assert len(train_rows) == seen["train_count"]
     assert all(held[p] for p in ("validate", "holdout", "calibrate"))
     assert not held["validate"] & held["holdout"] and not held["holdout"] & held["calibrate"]
-    landmarks = Store(store).load_arrays("ids", 1, man)["x_train"]
-    assert _ids(np.asarray(landmarks), mean, scale) <= train_rows
+    arrays = Store(store).load_arrays("ids", 1, man)
+    assert _ids(np.asarray(arrays["x_train"]), mean, scale) <= train_rows
     assert _ids(seen["tuning"], mean, scale) <= train_rows
+    # the novelty reference is drawn from the sample's training rows, as its text says
+    reference = _ids(np.asarray(arrays["novelty_reference"]), mean, scale)
+    assert reference <= train_rows
+    assert len(reference) == man["envelope"]["novelty"]["reference_rows"]
 
 
 def test_final_ridge_minimises_the_stated_criterion():

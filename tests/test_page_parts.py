@@ -65,7 +65,7 @@ def test_try_a_row_refuses_what_the_predict_route_refuses(client):
         page = client.get(f"/page/coating/try?{row_query(wet_film_um=bad)}").get_data(True)
         row = dict(zip(FEATURES, [190.0, 20.0, float(bad), 50.0, 600.0], strict=True))
         with pytest.raises(ApiError) as err:
-            parse_body(orjson.dumps({"rows": [row], "coverage": 0.9}), 100)
+            parse_body(orjson.dumps({"rows": [row], "coverage": 0.9}), 100, FEATURES)
         assert "wet_film_um" in err.value.message
         assert f"The row was refused: {err.value.message}".replace("'", "&#39;") in page
     page = client.get(f"/page/coating/try?{row_query(wet_film_um='6,5')}").get_data(True)

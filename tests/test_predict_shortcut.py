@@ -34,6 +34,10 @@ CASES = [
      True),
     ("POST", "/models/c/predict", {"rows": [[1, 2, 3, 4, 5]]}, JSON, 200, True),
     ("POST", "/models/c/predict?version=1", {"rows": [ARRAY]}, JSON, 200, False),
+    ("POST", "/models/c/predict", {"rows": [ARRAY, FAR], "ids": ["a", "b"]}, JSON, 200, True),
+    ("POST", "/models/c/predict?version=1", {"rows": [ARRAY], "ids": ["a"]}, JSON, 200,
+     False),
+    ("POST", "/models/c/predict", {"rows": [ARRAY], "ids": ["a", "b"]}, JSON, 422, False),
     ("POST", "/models/c/predict?version=x", {"rows": [ARRAY]}, JSON, 400, False),
     ("POST", "/models/c/predict", {"rows": [[1.0, 2.0]]}, JSON, 422, False),
     ("POST", "/models/c/predict", {"rows": [{**TYPICAL_ROW, "extra": 1.0}]}, JSON, 422,
@@ -92,7 +96,8 @@ def counts() -> dict[str, float]:
            "out_of_range": value("kridge_envelope_flags_total", flag="out_of_range"),
            "requests": value("kridge_request_seconds_count"),
            "computes": value("kridge_compute_seconds_count")}
-    for code in ("invalid_request", "invalid_row", "too_many_rows", "request_entity_too_large",
+    for code in ("invalid_request", "invalid_row", "unknown_feature", "not_a_number",
+                 "invalid_ids", "too_many_rows", "request_entity_too_large",
                  "malformed_json", "unsupported_media_type", "invalid_version"):
         out[code] = value("kridge_errors_total", code=code)
     return out
@@ -138,8 +143,10 @@ def test_the_shortcut_answers_as_the_flask_route_does(store, tmp_path):
             assert len(fast.get_data()) == int(fast.headers["Content-Length"])
     # the same counts: rows, flags, histogram observations and error codes
     assert deltas[True] == deltas[False]
-    assert deltas[True]["rows"] == 1 + 2 + 2 + 1 + 1 + 1 and deltas[True]["out_of_range"] >= 1
-    assert deltas[True]["invalid_request"] >= 2 and deltas[True]["invalid_row"] == 2
+    assert deltas[True]["rows"] == 1 + 2 + 2 + 1 + 1 + 1 + 2 + 1
+    assert deltas[True]["out_of_range"] >= 1 and deltas[True]["invalid_request"] >= 1
+    assert deltas[True]["invalid_row"] == deltas[True]["unknown_feature"] == 1
+    assert deltas[True]["not_a_number"] == deltas[True]["invalid_ids"] == 1
 
     def same(rec):
         return {k: v for k, v in rec.items() if k not in ("time", "request_id", "latency_ms")}

@@ -38,7 +38,7 @@ def kill_trials(store: str, csv: str, trials: int, seed: int, fsync_delay: float
                 window: float) -> dict:
     """Fork ``trials`` publishing ``kridge train`` runs and SIGKILL each at a random moment
     of its publish (runs in the driver process; prints nothing, returns counts)."""
-    import trainer.exact.job  # noqa: F401 - the job and its libraries imported before forking, once
+    import trainer.exact.solver  # noqa: F401 - the solver and its libraries imported before forking, once
     import trainer.job  # noqa: F401
 
     rng = random.Random(seed)

@@ -1,4 +1,7 @@
-"""Prediction-interval calibration for exact models, and its honest check on the holdout.
+"""Prediction-interval calibration for every solver, and its honest check on the holdout.
+
+:func:`calibrate` is the job's calibration stage: it picks the method from the residuals the
+solver offers (:class:`trainer.solvers.Evidence`) and writes the manifest's ``intervals``.
 
 What the intervals are
 ----------------------
@@ -41,7 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.intervals import half_width
-from trainer.exact.fit import Fit
+from trainer.solvers import Evidence, Predicted
 
 #: Nominal coverages reported on the holdout.
 COVERAGE_LEVELS = (0.8, 0.9, 0.95)
@@ -89,18 +92,22 @@ class HoldoutCheck:
     how: str | None
 
 
-def check_on_holdout(part: Fit, actual: np.ndarray, predicted: np.ndarray,
+def check_on_holdout(scorer_loo: np.ndarray | None, held: Predicted | None,
                      timed: bool) -> HoldoutCheck:
-    """Coverage of the interval method on the holdout, by the training-part model ``part``."""
-    if part.loo_residuals is not None:
+    """Coverage of an exact model's interval method on the holdout ``held``, predicted by
+    the training-part model (``scorer_loo``: its exact LOO residuals, for the jackknife)."""
+    if held is None:
+        return HoldoutCheck(None, None)
+    actual, predicted = held.actual, held.predicted
+    if scorer_loo is not None:
         return HoldoutCheck(
-            interval_coverage(np.abs(part.loo_residuals), actual, predicted),
+            interval_coverage(np.abs(scorer_loo), actual, predicted),
             "jackknife half-widths from the training-part model's exact leave-one-out "
             "residuals, applied to its predictions on the holdout rows (which neither the fit "
             "nor the calibration saw)")
     if actual.shape[0] >= 4:
         half = actual.shape[0] // 2
-        abs_res = np.abs(actual - predicted)
+        abs_res = held.abs_residuals()
         order = "earlier half of the holdout" if timed else "first half of the holdout rows"
         return HoldoutCheck(
             interval_coverage(abs_res[:half], actual[half:], predicted[half:]),
@@ -109,19 +116,33 @@ def check_on_holdout(part: Fit, actual: np.ndarray, predicted: np.ndarray,
     return HoldoutCheck(None, None)
 
 
-def calibrate(final: Fit, holdout_abs: np.ndarray | None, check: HoldoutCheck,
-              timed: bool) -> tuple[np.ndarray | None, dict | None]:
-    """(absolute calibration residuals, the manifest's ``intervals``) for an exact model;
-    (None, None) when there is nothing to calibrate on."""
-    if final.loo_residuals is not None:
-        calib = np.abs(final.loo_residuals)
+def calibrate(evidence: Evidence, timed: bool) -> tuple[np.ndarray | None, dict | None]:
+    """(absolute calibration residuals, the manifest's ``intervals``) of any model; (None,
+    None) when there is nothing to calibrate on.
+
+    The residuals, in order of preference: the served model's exact leave-one-out
+    residuals (the jackknife, asked for only where :func:`uses_jackknife`); a calibration
+    part the served model never saw (split conformal); the holdout residuals of the
+    training-part model (split conformal, approximate for the refitted served model).
+    """
+    if evidence.calibration is not None:  # held out for calibration, even when empty
+        if not evidence.calibration.rows:
+            return None, None
+        calib = evidence.calibration.abs_residuals()
+        hold = evidence.holdout
+        coverage = None if hold is None else interval_coverage(calib, hold.actual,
+                                                               hold.predicted)
+        return calib, split_conformal_section(calib, coverage, timed)
+    check = check_on_holdout(evidence.scorer_loo, evidence.holdout, timed)
+    if evidence.loo is not None:
+        calib = evidence.loo.abs_residuals()
         name, source = "jackknife", "LOO"
         how = ("jackknife: final model ± the ⌈(c+1)·coverage⌉-th smallest absolute exact "
                "leave-one-out residual of the final model. No finite-sample coverage "
                "guarantee (Barber, Candès, Ramdas & Tibshirani, Ann. Statist. 2021): the "
                "coverage measured on the holdout (when there is one) is stored beside it")
-    elif holdout_abs is not None:
-        calib = holdout_abs
+    elif evidence.holdout is not None:
+        calib = evidence.holdout.abs_residuals()
         name, source = "split-conformal", "holdout"
         how = ("split-conformal quantile of the holdout residuals of the model fitted on the "
                "training part (Lei et al. 2018); the served model is refitted on all rows, "

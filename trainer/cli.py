@@ -1,6 +1,7 @@
 """The ``kridge`` command line.
 
-Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1;
+Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1,
+as does ``drift --fail-on-drift`` on an alarm;
 a bug in kridge itself shows its traceback and exits 70.
 Heavy imports (scipy, matplotlib) happen inside the commands that need them, so ``kridge
 serve`` works in a serving image without the trainer's extras.
@@ -80,25 +81,33 @@ def cmd_train(args) -> int:
 
 
 def cmd_versions(args) -> int:
-    from trainer.show import first_error, fmt, table
+    from service.version_facts import facts
+    from trainer.show import fmt, table
 
     st = _store(args)
     live = st.live_version(args.model)
-    rows = []
+    rows, details = [], []
     for v in st.versions(args.model):
         try:
             m = st.read_manifest(args.model, v)
         except StoreError as exc:
-            rows.append(["*" if v == live else "", v, "?", "broken", str(exc).split(": ", 1)[-1]])
+            why = str(exc).split(": ", 1)[-1]
+            rows.append(["*" if v == live else "", v, "?", "broken", why, "", "", "", ""])
+            details.append({"version": v, "fault": why})
             continue
+        f = facts(m)
+        details.append({"version": v, **f})
         rows.append([
-            "*" if v == live else "", v, m.get("created", "?"),
-            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}", first_error(m.get("metrics", {})),
+            "*" if v == live else "", v, m.get("created", "?"), f["method"], f["features"],
+            f["training_rows"], f["data_sha256"],
+            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}", f["error"],
         ])
     if args.json:
-        print(json.dumps({"model": args.model, "live": live, "versions": [r[1] for r in rows]}))
+        print(json.dumps({"model": args.model, "live": live, "versions": [r[1] for r in rows],
+                          "details": details}))
     else:
-        table(["live", "version", "created", "kernel", "error"], rows)
+        table(["live", "version", "created", "method", "features", "rows", "data sha256",
+               "kernel", "error"], rows)
     return 0
 
 
@@ -128,6 +137,8 @@ def cmd_inspect(args) -> int:
     from trainer.show import manifest_summary, print_pairs
 
     st = _store(args)
+    if args.other is not None:
+        return _inspect_changes(st, args)
     v = _resolve_version(st, args.model, args.version)
     m = st.read_manifest(args.model, v)
     if args.json:
@@ -137,6 +148,20 @@ def cmd_inspect(args) -> int:
         report = st.version_dir(args.model, v) / "report.html"
         if report.exists():
             print(f"report  {report}")
+    return 0
+
+
+def _inspect_changes(st: Store, args) -> int:
+    """``kridge inspect MODEL A B``: what changed from version A to version B."""
+    from service.version_facts import changes
+    from trainer.show import change_lines, print_pairs
+
+    a, b = check_version(args.version), check_version(args.other)
+    diff = changes(st.read_manifest(args.model, a), st.read_manifest(args.model, b))
+    if args.json:
+        print(json.dumps({"model": args.model, "from": a, "to": b, "changes": diff}, indent=2))
+    else:
+        print_pairs([("model", f"{args.model}: v{a} → v{b}"), *change_lines(diff)])
     return 0
 
 
@@ -177,6 +202,20 @@ def cmd_predict(args) -> int:
         scored = score_csv(model, args.data, sys.stdout, args.coverage, quiet=True)
     print(envelope_note(scored), file=sys.stderr)
     return 0
+
+
+def cmd_drift(args) -> int:
+    from service.model import load_model
+    from trainer import drift_check
+
+    level = drift_check.check_level(args.fail_on_drift)
+    model = load_model(_store(args), args.model, args.version and check_version(args.version))
+    result = drift_check.run(model, args.data, args.permutations, args.seed)
+    if args.json:
+        print(json.dumps(drift_check.as_json(model, result, level), indent=2))
+    else:
+        print(drift_check.as_text(model, result, level))
+    return EXIT_FAULT if level is not None and result.p_value < level else 0
 
 
 def cmd_serve(args) -> int:
@@ -269,10 +308,13 @@ def build_parser() -> argparse.ArgumentParser:
     rb = add("rollback", cmd_rollback, "make the previously live version live again")
     rb.add_argument("model")
 
-    i = add("inspect", cmd_inspect, "summary of a version's manifest (default: live)")
+    i = add("inspect", cmd_inspect, "summary of a version's manifest (default: live); with "
+            "two versions A B, what changed from A to B")
     i.add_argument("model")
     i.add_argument("version", nargs="?")
-    i.add_argument("--json", action="store_true", help="the whole manifest as JSON")
+    i.add_argument("other", nargs="?", metavar="version_b")
+    i.add_argument("--json", action="store_true",
+                   help="the whole manifest (or, with A B, the changes) as JSON")
 
     ve = add("verify", cmd_verify, "check checksums and loadability (all versions by default)")
     ve.add_argument("model")
@@ -285,6 +327,18 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("--out", help="output CSV (default: standard output)")
     pr.add_argument("--coverage", type=float, help="add interval bounds at this coverage")
     pr.add_argument("--quiet", action="store_true")
+
+    dr = add("drift", cmd_drift, "kernel two-sample test: do new inputs differ from the "
+             "training inputs? (no target needed)")
+    dr.add_argument("model")
+    dr.add_argument("data", help="CSV, Parquet or Excel file with the model's feature columns")
+    dr.add_argument("--version")
+    dr.add_argument("--json", action="store_true", help="the result as JSON")
+    dr.add_argument("--fail-on-drift", type=float, metavar="LEVEL",
+                    help="exit 1 when the p-value is below LEVEL (to gate a pipeline)")
+    dr.add_argument("--permutations", type=int, default=None,
+                    help="permutations behind the p-value (default 500)")
+    dr.add_argument("--seed", type=int, default=0, help="seed of subsamples and permutations")
 
     s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
     s.add_argument("--bind", default=None,

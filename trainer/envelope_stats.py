@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from service.envelope import NOVELTY_K, NOVELTY_QUANTILE, NeighbourIndex
+from trainer.solvers import EnvelopeRows
 
 #: Largest reference set kept for the novelty score. It bounds the score's per-request cost
 #: to a small share of the kernel sum's (timings: DEVELOPERS.md, "Measured limits"); a
@@ -55,3 +56,15 @@ def envelope_stats(
         "training_rows_flagged": float(np.mean(calib > tau)),
     }
     return {"ranges": ranges, "novelty": novelty}, np.ascontiguousarray(reference)
+
+
+def training_envelope(rows: EnvelopeRows, features, seed: int,
+                      span: dict | None) -> tuple[dict, np.ndarray]:
+    """The job's envelope stage: :func:`envelope_stats` of the solver's training rows, the
+    ranges of every row when those are a sample, and the time span."""
+    env, reference = envelope_stats(rows.x_raw, rows.x_s, list(features), seed)
+    if rows.ranges is not None:
+        env["ranges"], env["ranges_from"] = rows.ranges, rows.ranges_from
+    if span:
+        env["time_span"] = span
+    return env, reference

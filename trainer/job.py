@@ -1,30 +1,64 @@
-"""The training job: options → plan → the chosen solver's stages → a published bundle.
+"""The training job: one sequence of stages for every solver.
 
-:func:`train` checks the options once (:mod:`trainer.plan`), chooses the solver with its
-reason, and runs that solver's job: :mod:`trainer.exact.job` (every row in memory) or
-:mod:`trainer.nystrom.job` (streamed, landmark rows). Both end in the same stages:
-calibration (:mod:`trainer.calibration`), envelope (:mod:`trainer.envelope_stats`),
-manifest (:mod:`trainer.manifest`) and publish (:mod:`trainer.publish`).
+read → choose rows and columns → split (random or time) → tune → fit → calibrate →
+envelope → manifest → publish. The options become a plan first (:mod:`trainer.plan`:
+source, columns, method and why, splits, given and to-tune parameters). The solver
+(:mod:`trainer.solvers`: exact or Nyström) supplies only what differs — how rows are read,
+how parameters are tuned, how the model is fitted and what it offers the shared stages;
+splitting (:mod:`trainer.validation.splits`), scoring (:mod:`trainer.metrics`), calibration
+(:mod:`trainer.calibration`), the envelope (:mod:`trainer.envelope_stats`), the precision
+check (:mod:`trainer.precision`), the manifest (:mod:`trainer.manifest`) and publishing
+(:mod:`trainer.publish`) are called here, once per job.
 """
 
 from __future__ import annotations
 
 import time
 
-from trainer.plan import TrainOptions, check_options, choose_method
+from trainer import calibration, envelope_stats, manifest, metrics, publish
+from trainer.plan import TrainOptions, resolve
+from trainer.precision import precision_check
+from trainer.solvers import Solver
+from trainer.validation.splits import split_rows
 
 __all__ = ["TrainOptions", "train"]
+
+
+def solver_for(method: str) -> Solver:
+    """The solver strategy of ``method`` (its libraries imported only when chosen)."""
+    if method == "nystrom":
+        from trainer.nystrom.solver import NystromSolver
+
+        return NystromSolver()
+    from trainer.exact.solver import ExactSolver
+
+    return ExactSolver()
 
 
 def train(opts: TrainOptions, log=print) -> dict:
     """Run the whole job; returns a summary (version, metrics, timings)."""
     t0 = time.perf_counter()
-    store = check_options(opts)
-    method, reason = choose_method(opts)
-    if method == "nystrom":
-        from trainer.nystrom.job import train_nystrom
-
-        return train_nystrom(opts, store, log, t0, reason)
-    from trainer.exact.job import train_exact
-
-    return train_exact(opts, store, log, t0, reason)
+    plan, store = resolve(opts)
+    solver = solver_for(plan.method.name)
+    rows = solver.read(plan, log)
+    split = split_rows(rows.count, rows.times, plan.splits.holdout, plan.splits.seed,
+                       solver.rows_in_memory)
+    tuned = solver.tune(plan, rows, split, log)
+    want_loo = solver.offers_loo and calibration.uses_jackknife(rows.count, split.by_time)
+    fitted = solver.fit(plan, rows, split, tuned, want_loo, log)
+    scores = metrics.held_out_metrics(plan.columns.targets, fitted.evidence)
+    calib, intervals = calibration.calibrate(fitted.evidence, split.by_time)
+    span = manifest.time_span(plan.columns.time, rows.times, rows.clock)
+    envelope, reference = envelope_stats.training_envelope(
+        fitted.envelope, plan.columns.features, plan.splits.seed, span)
+    check_x, check_y = fitted.check_rows
+    check = precision_check(plan.output.precision, fitted.spec, fitted.x_train, fitted.dual,
+                            check_x, list(plan.columns.targets), check_y, log)
+    bundle = manifest.build_manifest(plan, rows, split, fitted, metrics=scores,
+                                     envelope=envelope, intervals=intervals, check=check,
+                                     span=span)
+    arrays = publish.bundle_arrays(fitted.spec, fitted.x_train, fitted.dual, reference, calib)
+    report_args = (fitted.tuning, publish.report_points(fitted.evidence.holdout,
+                                                        plan.splits.seed), calib)
+    published = publish.publish(store, plan.output, bundle, arrays, report_args)
+    return publish.summary(plan, store, published, fitted, scores, rows.counts, check, t0)

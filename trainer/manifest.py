@@ -10,16 +10,16 @@ from __future__ import annotations
 
 import platform
 from datetime import datetime, timezone
-from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
 
-from service.kernels import KernelSpec
 from service.store import now_iso
 
 if TYPE_CHECKING:
-    from trainer.exact.fit import Fit
+    from trainer.plan import Plan
+    from trainer.solvers import Fitted, Rows
+    from trainer.validation.splits import HoldoutSplit, PartSplit
 
 
 def time_text(value: float, clock: bool) -> str | float:
@@ -50,91 +50,48 @@ def library_versions() -> dict[str, str]:
     return out
 
 
-def build_manifest(*, features: list[str], targets: list[str], spec: KernelSpec,
-                   ridge: float, standardization: dict, intercept: np.ndarray, training: dict,
-                   tuning: dict | None, metrics: dict, envelope: dict, intervals: dict | None,
-                   precision: str, check: dict | None) -> dict:
-    """The manifest of any model: the one builder both solvers use (the store adds
-    ``schema``, ``model``, ``version`` and ``arrays`` when it publishes)."""
+def build_manifest(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,
+                   fitted: Fitted, *, metrics: dict, envelope: dict, intervals: dict | None,
+                   check: dict | None, span: dict | None) -> dict:
+    """The manifest of any model, fed by the solver's :class:`~trainer.solvers.Fitted` (the
+    store adds ``schema``, ``model``, ``version`` and ``arrays`` when it publishes)."""
     return {
         "created": now_iso(),
-        "features": list(features),
-        "targets": list(targets),
-        "kernel": {"name": spec.name, "params": spec.params()},
-        "ridge": ridge,
-        "standardization": standardization,
-        "intercept": np.asarray(intercept).tolist(),
-        "training": training,
-        "tuning": tuning,
+        "features": list(plan.columns.features),
+        "targets": list(plan.columns.targets),
+        "kernel": {"name": fitted.spec.name, "params": fitted.spec.params()},
+        "ridge": fitted.ridge,
+        "standardization": fitted.standardization,
+        "intercept": np.asarray(fitted.intercept).tolist(),
+        "training": training_section(plan, rows, split, fitted, span),
+        "tuning": fitted.tuning,
         "metrics": metrics,
         "envelope": envelope,
         "intervals": intervals,
-        "precision": precision,
+        "precision": plan.output.precision,
         "precision_check": check,
         "libraries": library_versions(),
     }
 
 
-def exact_manifest(opts, *, data, final: Fit, spec: KernelSpec, ridge: float, rows: int,
-                   holdout_rows: int, timed: bool, span: dict | None, fit_seconds: float,
-                   reason: str, tuning_info: dict | None, metrics: dict, envelope: dict,
-                   intervals: dict | None, check: dict | None) -> dict:
-    """The manifest of an exact fit (``opts``: the train options; ``data``: the loaded
-    training data, for its fingerprint, format and row account)."""
-    return build_manifest(
-        features=data.features, targets=opts.targets, spec=spec, ridge=ridge,
-        standardization={"mean": final.scaler.mean.tolist(),
-                         "scale": final.scaler.scale.tolist(), "ddof": 0},
-        intercept=final.intercept, tuning=tuning_info, metrics=metrics, envelope=envelope,
-        intervals=intervals, precision=opts.precision, check=check,
-        training={
-            "rows": int(rows),
-            "data_file": Path(opts.data).name,
-            "data_sha256": data.sha256,
-            "data_format": data.dialect,
-            "row_counts": data.counts,
-            "time": span,
-            "holdout_kind": ("the most recent rows in time" if timed
-                             else "seeded random draw"),
-            "holdout_fraction": opts.holdout,
-            "holdout_rows": int(holdout_rows),
-            "seed": opts.seed,
-            "fit_seconds": round(fit_seconds, 3),
-            "method": "exact",
-            "method_reason": reason,
-            "solver": "cholesky (scipy.linalg.cho_factor)",
-            "final_fit": "refitted on all rows with the chosen parameters",
-        })
-
-
-def nystrom_training(*, rows: int, reason: str, landmarks: dict, parts: dict, src, data: str,
-                     counts: dict, span, holdout: float, by_time: bool, seed: int,
-                     fit_seconds: float, cluster: bool, solve: dict | None = None) -> dict:
-    """A Nyström model's ``training`` entry: method, why, landmarks, rows and parts."""
+def training_section(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,
+                     fitted: Fitted, span: dict | None) -> dict:
+    """The manifest's ``training``: the data, the split, the method and why, then the
+    solver's own entries (landmarks, parts, how it solves, what the final fit saw)."""
+    holdout = fitted.evidence.holdout
     return {
-        "rows": rows,
-        "method": "nystrom",
-        "method_reason": reason,
-        "landmarks": landmarks,
-        "parts": parts,
-        "data_file": data,
-        "data_sha256": src.sha256,
-        "data_format": src.dialect(),
-        "row_counts": counts,
+        "rows": int(fitted.rows),
+        "method": plan.method.name,
+        "method_reason": plan.method.reason,
+        "data_file": plan.source.path.name,
+        "data_sha256": plan.source.sha256,
+        "data_format": plan.source.dialect(),
+        "row_counts": rows.counts,
         "time": span,
-        "holdout_fraction": holdout,
-        "holdout_rows": parts["holdout"],
-        "holdout_kind": "the most recent rows in time" if by_time
-        else "seeded random draw per block",
-        "seed": seed,
-        "fit_seconds": round(fit_seconds, 3),
-        "solver": ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), "
-                   + ("preconditioned conjugate gradient (FALKON's preconditioner, Rudi, "
-                      "Carratino & Rosasco 2017), K_nm formed tile by tile in every "
-                      "iteration" if solve and solve.get("solver") == "cg" else
-                      "streamed sums, eigendecompositions of K_mm and of the m × m "
-                      "normal matrix")),
-        "solve": solve,
-        "cluster": cluster,
-        "final_fit": "the training part only: holdout and calibration rows stay unseen",
+        "holdout_kind": split.kind,
+        "holdout_fraction": plan.splits.holdout,
+        "holdout_rows": holdout.rows if holdout is not None else 0,
+        "seed": plan.splits.seed,
+        "fit_seconds": round(fitted.fit_seconds, 3),
+        **fitted.training,
     }

@@ -2,7 +2,12 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
+
+if TYPE_CHECKING:
+    from trainer.solvers import Evidence
 
 
 def scores(y_true: np.ndarray, y_pred: np.ndarray) -> dict[str, float]:
@@ -20,3 +25,12 @@ def scores(y_true: np.ndarray, y_pred: np.ndarray) -> dict[str, float]:
 def per_target(targets: list[str], y: np.ndarray, pred: np.ndarray) -> dict:
     """{target: :func:`scores`} for (n, t) actual and predicted values."""
     return {t: scores(y[:, j], pred[:, j]) for j, t in enumerate(targets)}
+
+
+def held_out_metrics(targets, evidence: Evidence) -> dict:
+    """The manifest's ``metrics``: each kind of held-out prediction the solver offers,
+    scored per target (holdout, validation part, the served model's exact LOO)."""
+    kinds = (("holdout", evidence.holdout), ("validation", evidence.validation),
+             ("loo", evidence.loo))
+    return {name: per_target(list(targets), p.actual, p.predicted)
+            for name, p in kinds if p is not None}

@@ -1,8 +1,9 @@
-"""The user's options, resolved before any work: the method and why, the kernel as given.
+"""The user's options, resolved once at the top of the job into a :class:`Plan`.
 
-:class:`TrainOptions` is what the command line (or a caller) asks for; the job checks it
-here once (:func:`check_options`), chooses the solver (:func:`choose_method`) and hands the
-deeper stages only what they use.
+:class:`TrainOptions` is what the command line (or a caller) asks for. :func:`resolve`
+checks it, opens the source (its dialect detected), names the columns, chooses the solver
+and says why, and sorts the kernel parameters into given and to-tune. The stages after it
+read the plan's fields, never the options.
 """
 
 from __future__ import annotations
@@ -13,15 +14,19 @@ from service.kernels import KERNEL_NAMES, KERNEL_PARAMS, KernelSpec, default_spe
 from service.store import Store
 from trainer.errors import UserError
 from trainer.read import columns
+from trainer.read.source import Source
 
 #: ``--method auto``: exact KRR up to this many usable rows, Nyström above. An exact fit of
 #: 15,000 rows holds a 1.8 GB kernel matrix (8 n² bytes); twice the rows cost four times the
 #: memory and eight times the time (timings: DEVELOPERS.md, "Measured limits").
 AUTO_EXACT_MAX_ROWS = 15_000
+METHODS = ("exact", "nystrom", "auto")
 
 
 @dataclass
 class TrainOptions:
+    """What the caller asks for: the public input of :func:`trainer.job.train`."""
+
     data: str
     targets: list[str]
     name: str
@@ -49,14 +54,86 @@ class TrainOptions:
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
 
 
-def explicit_spec(opts: TrainOptions, n_features: int) -> KernelSpec | None:
-    """The kernel when the user gave it, every parameter it reads and the ridge; else None
-    (something is left to tune)."""
-    if opts.kernel == "auto" or opts.ridge is None or any(
-            getattr(opts, p) is None for p in ("gamma", "degree", "coef0")
-            if p in kernel_params(opts.kernel)):
-        return None
-    return default_spec(opts.kernel, n_features, opts.gamma, opts.degree, opts.coef0)
+@dataclass(frozen=True)
+class Columns:
+    """The columns a fit reads (names checked against the header) and which rows it keeps."""
+
+    features: tuple[str, ...]
+    targets: tuple[str, ...]
+    time: str | None
+    drop_incomplete: bool
+
+
+@dataclass(frozen=True)
+class Method:
+    """The solver, why it was chosen, and the options only Nyström reads."""
+
+    name: str  # "exact" or "nystrom"
+    reason: str
+    landmarks: int | None = None
+    landmark_scheme: str | None = None
+    cluster: str | None = None
+    solver: str = "auto"
+
+
+@dataclass(frozen=True)
+class Splits:
+    """How rows are held out: the holdout fraction and the job's one seed (which also draws
+    the tuning subsample, the landmarks and the novelty reference)."""
+
+    holdout: float
+    seed: int
+
+
+@dataclass(frozen=True)
+class Parameters:
+    """The kernel and ridge as given; None (or kernel ``auto``) means "tune it"."""
+
+    kernel: str
+    gamma: float | None = None
+    degree: float | None = None
+    coef0: float | None = None
+    ridge: float | None = None
+
+    @property
+    def to_tune(self) -> tuple[str, ...]:
+        """The names left to the search (empty when every parameter the kernel reads is given)."""
+        if self.kernel == "auto":
+            kernel_reads = ("gamma", "degree", "coef0")
+        else:
+            kernel_reads = kernel_params(self.kernel)
+        names = [p for p in kernel_reads if getattr(self, p) is None]
+        names += ["ridge"] if self.ridge is None else []
+        return (("kernel",) if self.kernel == "auto" else ()) + tuple(names)
+
+    def explicit(self, n_features: int) -> KernelSpec | None:
+        """The kernel when nothing is left to tune; else None."""
+        if self.to_tune:
+            return None
+        return default_spec(self.kernel, n_features, self.gamma, self.degree, self.coef0)
+
+
+@dataclass(frozen=True)
+class Output:
+    """What becomes of the fitted model: its name, release, report, precision, chatter."""
+
+    name: str
+    release: bool
+    report: bool
+    precision: str
+    quiet: bool
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Everything the job decided before reading a data row."""
+
+    source: Source  # the input file, opened: format, dialect, header, fingerprint
+    columns: Columns
+    method: Method
+    splits: Splits
+    parameters: Parameters
+    output: Output
 
 
 def kernel_params(kernel: str) -> tuple[str, ...]:
@@ -66,26 +143,39 @@ def kernel_params(kernel: str) -> tuple[str, ...]:
     return KERNEL_PARAMS[kernel]
 
 
-def choose_method(opts: TrainOptions) -> tuple[str, str]:
+def check_options(opts: TrainOptions) -> Store:
+    """Refuse a bad model name, kernel, precision or method before any reading; the store."""
+    store = Store(opts.store)
+    store.model_dir(opts.name)  # validates the name
+    if opts.kernel != "auto":
+        kernel_params(opts.kernel)
+    if opts.precision not in ("float64", "float32"):
+        raise UserError(f"--precision must be float64 or float32, not {opts.precision!r}")
+    if opts.method == "exact" and opts.cluster:
+        raise UserError("--cluster runs the Nyström accumulation; use --method nystrom")
+    if opts.solver not in ("direct", "cg", "auto"):
+        raise UserError(f"--solver must be direct, cg or auto, not {opts.solver!r}")
+    if opts.method == "exact" and opts.solver == "cg":
+        raise UserError("--solver cg solves the Nyström system; use --method nystrom")
+    if opts.method not in METHODS:
+        raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
+    return store
+
+
+def choose_method(opts: TrainOptions, src: Source) -> tuple[str, str]:
     """(method, reason): exact KRR up to :data:`AUTO_EXACT_MAX_ROWS` usable rows, else Nyström.
 
     ``auto`` counts the rows that have every target (one streamed pass over the target
     columns only), since sparse lab values can make a large export a small training set.
     """
     if opts.method == "exact":
-        if opts.solver == "cg":
-            raise UserError("--solver cg solves the Nyström system; use --method nystrom")
-        if opts.cluster:
-            raise UserError("--cluster runs the Nyström accumulation; use --method nystrom")
         return "exact", "asked for with --method exact"
     if opts.method == "nystrom" or opts.cluster or opts.landmarks or opts.solver == "cg":
         return "nystrom", "asked for with " + ("--method nystrom" if opts.method == "nystrom"
                                                else "--cluster" if opts.cluster
                                                else "--landmarks" if opts.landmarks
                                                else "--solver cg")
-    if opts.method != "auto":
-        raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
-    rows = columns.count_target_rows(opts.data, opts.targets, opts.sep, opts.decimal)
+    rows = columns.count_target_rows(src, opts.targets)
     if rows <= AUTO_EXACT_MAX_ROWS:
         return "exact", (f"{rows} rows with a target ≤ {AUTO_EXACT_MAX_ROWS}: exact KRR "
                          "(--method auto)")
@@ -93,14 +183,20 @@ def choose_method(opts: TrainOptions) -> tuple[str, str]:
                        f"need an n × n matrix of {rows**2 * 8 / 1e9:.0f} GB (--method auto)")
 
 
-def check_options(opts: TrainOptions) -> Store:
-    """Refuse a bad model name, kernel or precision before any reading; the store."""
-    store = Store(opts.store)
-    store.model_dir(opts.name)  # validates the name
-    if opts.kernel != "auto":
-        kernel_params(opts.kernel)
-    if opts.solver not in ("direct", "cg", "auto"):
-        raise UserError(f"--solver must be direct, cg or auto, not {opts.solver!r}")
-    if opts.precision not in ("float64", "float32"):
-        raise UserError(f"--precision must be float64 or float32, not {opts.precision!r}")
-    return store
+def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
+    """The plan of a job and the store it publishes to; every option error is raised here
+    or, for the data's cells, by the reading stage."""
+    store = check_options(opts)
+    src = Source(opts.data, opts.sep, opts.decimal)
+    features = columns.feature_names(src, opts.targets, opts.features, opts.time)
+    method, reason = choose_method(opts, src)
+    return Plan(
+        source=src,
+        columns=Columns(tuple(features), tuple(opts.targets), opts.time,
+                        opts.drop_incomplete),
+        method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
+                      opts.solver),
+        splits=Splits(opts.holdout, opts.seed),
+        parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge),
+        output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet),
+    ), store

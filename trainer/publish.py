@@ -1,16 +1,21 @@
-"""The last stage of every training job: publish the version, release it when asked, and
-summarize the run."""
+"""The last stage of every training job: the bundle's arrays, publish the version (with its
+report), release it when asked, and summarize the run."""
 
 from __future__ import annotations
 
 import time
+from dataclasses import dataclass
 
 import numpy as np
 
 from service.model import verifier
 from service.store import Store
 from trainer import cautions
-from trainer.plan import TrainOptions
+from trainer.plan import Output, Plan
+from trainer.solvers import Fitted, Predicted
+
+#: Holdout rows kept for the report's actual-against-predicted plot.
+PLOT_ROWS = 5000
 
 
 def bundle_arrays(spec, x_train: np.ndarray, dual: np.ndarray, reference: np.ndarray,
@@ -26,43 +31,65 @@ def bundle_arrays(spec, x_train: np.ndarray, dual: np.ndarray, reference: np.nda
     return arrays
 
 
-def publish_and_summarize(opts: TrainOptions, store: Store, manifest: dict, arrays: dict,
-                          report_args: tuple, t0: float, *, spec, ridge: float,
-                          features: list[str], rows: int, metrics: dict, tuning_info,
-                          check, counts: dict, method: str,
-                          warnings: list[str] = ()) -> dict:
-    """Publish the version (with its report), release it when asked; the train summary."""
+def report_points(holdout: Predicted | None, seed: int) -> dict | None:
+    """The holdout points the report plots: every row up to :data:`PLOT_ROWS`, else a seeded
+    draw of that many, in row order (so in time order with ``--time``)."""
+    if holdout is None:
+        return None
+    keep = np.arange(holdout.rows)
+    if holdout.rows > PLOT_ROWS:
+        keep = np.sort(np.random.default_rng([seed, 5]).permutation(holdout.rows)[:PLOT_ROWS])
+    points = {"actual": holdout.actual[keep].tolist(),
+              "predicted": holdout.predicted[keep].tolist()}
+    if holdout.time is not None:
+        points["time"] = holdout.time[keep].tolist()
+    return points
+
+
+@dataclass(frozen=True)
+class Published:
+    version: int
+    live: bool
+    report: str | None  # the report's path
+
+
+def publish(store: Store, out: Output, manifest: dict, arrays: dict,
+            report_args: tuple) -> Published:
+    """Publish the version (with its report when asked), release it when asked."""
     extra = None
-    if opts.report:
+    if out.report:
         from trainer import report
 
         def extra(folder, version):
             report.write_report(folder / "report.html", dict(manifest, version=version,
-                                model=opts.name), *report_args)
-    warnings = list(warnings) + cautions.poor_holdout(metrics)
-    version = store.publish(opts.name, manifest, arrays, extra_files=extra)
-    live = False
-    if opts.release:
-        store.release(opts.name, version, check=verifier(store, opts.name))
-        live = True
+                                model=out.name), *report_args)
+    version = store.publish(out.name, manifest, arrays, extra_files=extra)
+    if out.release:
+        store.release(out.name, version, check=verifier(store, out.name))
+    return Published(version, out.release, str(store.version_dir(out.name, version) /
+                                               "report.html") if extra is not None else None)
+
+
+def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, metrics: dict,
+            counts: dict, check: dict | None, t0: float) -> dict:
+    """The train summary (printed by ``kridge train``, returned by :func:`trainer.job.train`)."""
     return {
-        "name": opts.name,
-        "version": version,
-        "live": live,
-        "rows": int(rows),
+        "name": plan.output.name,
+        "version": published.version,
+        "live": published.live,
+        "rows": int(fitted.rows),
         "data": counts["summary"],
-        "method": method,
-        "features": features,
-        "targets": list(opts.targets),
-        "kernel": spec.describe(),
-        "ridge": ridge,
+        "method": f"{fitted.described} ({plan.method.reason})",
+        "features": list(plan.columns.features),
+        "targets": list(plan.columns.targets),
+        "kernel": fitted.spec.describe(),
+        "ridge": fitted.ridge,
         "metrics": metrics,
-        "tuning": tuning_info["summary"] if tuning_info else None,
-        "precision": opts.precision,
+        "tuning": fitted.tuning["summary"] if fitted.tuning else None,
+        "precision": plan.output.precision,
         "precision_check": check,
-        "report": (str(store.version_dir(opts.name, version) / "report.html")
-                   if extra is not None else None),
+        "report": published.report,
         "seconds": round(time.perf_counter() - t0, 2),
         "store": str(store.root),
-        "warnings": warnings,
+        "warnings": list(fitted.warnings) + cautions.poor_holdout(metrics),
     }

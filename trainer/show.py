@@ -10,6 +10,7 @@ from __future__ import annotations
 import sys
 
 from service.text_safety import visible
+from service.version_facts import features_hash
 
 
 def table(headers: list[str], rows: list[list], out=None) -> None:
@@ -51,13 +52,32 @@ def error_lines(metrics: dict) -> list[tuple[str, str]]:
             if metrics.get(key) or key == "holdout"]
 
 
-def first_error(metrics: dict) -> str:
-    """'holdout rmse=1.2' (or LOO, validation) for the first target: the versions table."""
-    for key, label in (ERROR_KINDS[1], ERROR_KINDS[2], ERROR_KINDS[0]):
-        first = next(iter((metrics.get(key) or {}).values()), None)
-        if first:
-            return f"{label} rmse={fmt(first.get('rmse', float('nan')))}"
-    return ""
+def change_lines(diff: dict) -> list[tuple[str, str]]:
+    """Lines of :func:`service.version_facts.changes` for ``kridge inspect MODEL A B``."""
+    def span(c: dict, digits: int = 6) -> str:
+        return f"{fmt(c['from'], digits)} → {fmt(c['to'], digits)}"
+
+    lines = []
+    if diff["features_added"]:
+        lines.append(("features added", ", ".join(diff["features_added"])))
+    if diff["features_removed"]:
+        lines.append(("features removed", ", ".join(diff["features_removed"])))
+    if "features_reordered" in diff:
+        lines.append(("feature order", ", ".join(diff["features_reordered"]["to"])))
+    for key, label in (("method", "method"), ("kernel", "kernel"), ("ridge", "ridge"),
+                       ("training_rows", "training rows"), ("data_sha256", "data sha256"),
+                       ("targets", "targets")):
+        if key in diff:
+            lines.append((label, span(diff[key])))
+    for param, c in diff.get("kernel_params", {}).items():
+        lines.append((f"kernel {param}", span(c)))
+    labels = dict((k, v) for k, v in ERROR_KINDS)
+    for family, targets in diff.get("metrics", {}).items():
+        for target, measures in targets.items():
+            lines.append((f"{labels.get(family, family)} {target}", ", ".join(
+                f"{m.upper() if m != 'r2' else 'R²'} {span(c, 4)}"
+                for m, c in measures.items())))
+    return lines or [("changes", "none: the two versions hold the same figures")]
 
 
 def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
@@ -70,7 +90,8 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     lines = [
         ("model", f"{m['model']} v{m['version']}" + ("  (live)" if live == m["version"] else "")),
         ("created", m.get("created", "?")),
-        ("features", ", ".join(m["features"])),
+        ("features", f"{len(m['features'])}: {', '.join(m['features'])} (sha256 "
+                     f"{features_hash(m['features'])})"),
         ("targets", ", ".join(m["targets"])),
         ("kernel", f"{kern['name']}({params})"),
         ("ridge", fmt(m["ridge"], 6)),

@@ -17,7 +17,7 @@ import numpy as np
 from trainer.errors import UserError
 from trainer.nystrom import cg
 from trainer.nystrom.cg_rows import LocalRows
-from trainer.nystrom.parts import HeldRows, Plan
+from trainer.nystrom.parts import BlockPlan, HeldRows
 from trainer.nystrom.pass2 import run_pass2
 from trainer.nystrom.scores import predictor
 
@@ -56,6 +56,7 @@ class FinalFit:
     record: dict  # the manifest's account of the solve
     rank: int | None = None  # the direct solve's rank of K_mm (CG does not decompose it)
     warnings: list[str] = field(default_factory=list)
+    account: dict | None = None  # the tuning account with the final-ridge step
 
 
 def _validation_scores(spec, landmarks, fit: cg.CgFit, val: HeldRows,
@@ -65,11 +66,12 @@ def _validation_scores(spec, landmarks, fit: cg.CgFit, val: HeldRows,
                            axis=0) * inv_var).mean()) for b in fit.betas]
 
 
-def fit_cg(plan: Plan, blocks: list, cluster: str | None, progress, ridges: list[float],
+def fit_cg(plan: BlockPlan, blocks: list, cluster: str | None, progress, ridges_for,
            inv_var: np.ndarray | None, tol: float = cg.CG_TOL,
            max_iter: int = cg.CG_MAX_ITER) -> FinalFit:
-    """Pass 2 keeping the training rows, then CG for every candidate ridge; the ridge with
-    the lowest validation score is kept (the only one when the validation part is empty)."""
+    """Pass 2 keeping the training rows, then CG for every candidate ridge
+    (``ridges_for(training rows)``); the ridge with the lowest validation score is kept (the
+    first when the validation part is empty or there is no criterion)."""
     plan = replace(plan, keep_train=True)
     if cluster:
         from trainer.nystrom.cluster import ClusterRows  # Dask only with --cluster
@@ -86,6 +88,7 @@ def fit_cg(plan: Plan, blocks: list, cluster: str | None, progress, ridges: list
         if rows.count < 2:
             raise UserError(f"{plan.path}: no training rows left for the final fit")
         val = held["validate"]
+        ridges = ridges_for(rows.count)
         if inv_var is None or val.x.shape[0] < 2:
             ridges = ridges[:1]
         fit = cg.solve_nystrom_cg(plan.spec, plan.landmarks, rows, rows.mean, rows.count,
@@ -106,3 +109,35 @@ def fit_cg(plan: Plan, blocks: list, cluster: str | None, progress, ridges: list
         "solution of the Nyström system (a larger ridge or --solver direct converge)"]
     return FinalFit(fit.betas[best], fit.intercept, float(ridges[best]), fit.count, held,
                     record, None, warnings)
+
+
+def solve_with_cg(block_plan: BlockPlan, blocks: list, cluster: str | None, progress,
+                  tuned, reason: str) -> FinalFit:
+    """The Nyström solver's solve by CG: the sample's ridge and, when it was tuned, two
+    scaled ones; the tuning account gains the final-ridge step."""
+    problem, account = tuned.problem, tuned.account
+    tuned_ridge = problem is not None and account is not None
+
+    def ridges_for(count: int) -> list[float]:
+        grow = count / max(problem.x_s.shape[0], 1) if problem is not None else 1.0
+        return ridge_candidates(tuned.ridge, grow, tuned_ridge)
+
+    fit = fit_cg(block_plan, blocks, cluster, progress, ridges_for,
+                 problem.inv_var if tuned_ridge else None)
+    fit.record["reason"] = reason
+    if tuned_ridge and "validation_scores" in fit.record:
+        val_rows = int(fit.held["validate"].x.shape[0])
+        fit.account = {
+            **account,
+            "summary": account["summary"] + f"; final ridge {fit.ridge:.4g} of "
+                       f"{len(fit.record['ridges_solved'])} by CG on {val_rows} validation rows",
+            "final_ridge": {
+                "ridge": fit.ridge, "validation_rows": val_rows,
+                "how": "the sample's ridge and it scaled by √(rows/sample rows) and by "
+                       "rows/sample rows, each solved by CG with all training rows, scored "
+                       "on the validation part (validation MSE / Var(target), averaged over "
+                       "the targets)", "candidates": fit.record["ridges_solved"],
+                "scores": fit.record["validation_scores"]}}
+    else:
+        fit.account = account
+    return fit

@@ -18,13 +18,13 @@ from service.kernels import KernelSpec
 from trainer.nystrom import numerics
 from trainer.read.columns import usable_rows
 from trainer.read.source import Block, Source
-from trainer.validation.splits import part_keys, parts_of_keys
+from trainer.validation.splits import PartSplit, part_keys
 
 PARTS = ("train", "validate", "holdout", "calibrate")
 
 
 @dataclass
-class Plan:
+class BlockPlan:
     """What every block needs to know to do its share of pass 2 (sent to Dask workers)."""
 
     path: str
@@ -39,8 +39,7 @@ class Plan:
     spec: KernelSpec
     landmarks: np.ndarray
     seed: int
-    fractions: tuple[float, float, float]  # validate, holdout, calibrate (random parts)
-    time_cuts: tuple[float, float, float] | None = None  # validate, calibrate, holdout starts
+    split: PartSplit  # the job's split: the rule that gives each row its part
     keep_train: bool = False  # CG: return the training rows themselves, no sums
 
 
@@ -50,21 +49,7 @@ class BlockResult:
     kept: dict = field(default_factory=dict)  # part → (x_s, y, t)
 
 
-def row_parts(plan: Plan, block: Block, n_rows: int, t: np.ndarray | None) -> np.ndarray:
-    """Part index (0 train, 1 validate, 2 holdout, 3 calibrate) of every row of a block."""
-    if plan.time_cuts is not None:
-        out = np.zeros(n_rows, dtype=np.int8)
-        v_cut, c_cut, h_cut = plan.time_cuts
-        out[t >= v_cut] = 1
-        out[t >= c_cut] = 3
-        out[t >= h_cut] = 2
-        return out
-    return parts_of_keys(part_keys(plan.seed, block.index, n_rows), plan.fractions)
-
-
-
-
-def block_sums(plan: Plan, block: Block, first_row: int) -> BlockResult:
+def block_sums(plan: BlockPlan, block: Block, first_row: int) -> BlockResult:
     """Pass 2 for one block: sums of its train rows, and its other parts' rows.
 
     Runs locally or on a Dask worker (which opens the file itself); the result depends only
@@ -76,7 +61,8 @@ def block_sums(plan: Plan, block: Block, first_row: int) -> BlockResult:
     keep = usable_rows(src, chunk, plan.features, plan.time, first_row,
                        plan.drop_incomplete)[0]
     t_all = chunk.time
-    part = row_parts(plan, block, keep.size, t_all)[keep]
+    keys = part_keys(plan.seed, block.index, keep.size)
+    part = plan.split.parts(keys, t_all)[keep]
     v = chunk.values[keep]
     x_s = (v[:, :d] - plan.mean) / plan.scale
     y = v[:, d:]

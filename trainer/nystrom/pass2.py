@@ -9,7 +9,7 @@ from collections.abc import Callable, Iterable, Iterator
 
 from service.settings import usable_cores
 from trainer.nystrom import numerics
-from trainer.nystrom.parts import PARTS, BlockResult, HeldRows, Plan, block_sums
+from trainer.nystrom.parts import PARTS, BlockPlan, BlockResult, HeldRows, block_sums
 
 
 def in_threads(work: Callable, items: Iterable) -> Iterator:
@@ -39,7 +39,7 @@ def in_threads(work: Callable, items: Iterable) -> Iterator:
             yield pending.popleft().result()
 
 
-def run_pass2(plan: Plan, blocks: list, cluster: str | None, progress
+def run_pass2(plan: BlockPlan, blocks: list, cluster: str | None, progress
               ) -> tuple[numerics.Sums | None, dict[str, HeldRows]]:
     """The training sums and the held-out parts, from this process or a Dask cluster.
 

@@ -1,25 +1,20 @@
-"""What a Nyström fit reports: held-out scores, split-conformal residuals, measured coverage.
+"""What a Nyström fit offers the job's scoring and calibration: the served model's
+predictions of the parts it never saw.
 
 The holdout scores the final model honestly and the calibration part gives split-conformal
-intervals (Lei, G'Sell, Rinaldo, Tibshirani & Wasserman, JASA 2018), because the final model
-never saw either part; their finite-sample guarantee holds for exchangeable rows, so not for
-rows split in time order.
+intervals (:mod:`trainer.calibration`), because the final model never saw either part.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
 
 import numpy as np
 
 from service.kernels import KernelSpec, kernel_block
-from trainer.metrics import per_target
 from trainer.nystrom import numerics
 from trainer.nystrom.parts import HeldRows
-
-#: Holdout rows kept for the report's actual-against-predicted plot.
-PLOT_ROWS = 5000
+from trainer.solvers import Evidence, Predicted
 
 
 def predictor(spec: KernelSpec, landmarks: np.ndarray, beta: np.ndarray,
@@ -34,36 +29,13 @@ def predictor(spec: KernelSpec, landmarks: np.ndarray, beta: np.ndarray,
     return predict
 
 
-@dataclass
-class Scores:
-    metrics: dict
-    holdout_points: dict | None
-    calib: np.ndarray | None  # |residuals| of the calibration part
-    coverage: list | None
+def held_predictions(predict, held: dict[str, HeldRows]) -> Evidence:
+    """The served model's predictions of the held-out parts it never saw: the holdout
+    scores it, the calibration part calibrates its intervals, the validation part chose
+    its final ridge."""
+    def predicted(rows: HeldRows) -> Predicted | None:
+        return Predicted(rows.y, predict(rows.x), rows.t) if rows.x.shape[0] else None
 
-
-def score_parts(predict, targets: list[str], held: dict[str, HeldRows], seed: int) -> Scores:
-    """Holdout and validation metrics, calibration residuals and holdout interval coverage."""
-    from trainer.calibration import COVERAGE_LEVELS, interval_coverage
-
-    metrics: dict = {}
-    points = coverage = None
-    hold, cal, val = held["holdout"], held["calibrate"], held["validate"]
-    calib = np.abs(cal.y - predict(cal.x)) if cal.x.shape[0] else None
-    if hold.x.shape[0]:
-        ph = predict(hold.x)
-        metrics["holdout"] = per_target(targets, hold.y, ph)
-        keep = np.random.default_rng([seed, 5]).permutation(hold.x.shape[0])[:PLOT_ROWS]
-        if hold.t is not None:
-            keep = np.sort(keep)
-        points = {"actual": hold.y[keep].tolist(), "predicted": ph[keep].tolist()}
-        if hold.t is not None:
-            points["time"] = hold.t[keep].tolist()
-        if calib is not None:
-            coverage = interval_coverage(calib, hold.y, ph, COVERAGE_LEVELS)
-    if val.x.shape[0]:
-        pv = predict(val.x)
-        metrics["validation"] = per_target(targets, val.y, pv)
-    return Scores(metrics, points, calib, coverage)
-
-
+    cal = held["calibrate"]  # offered even when empty: it, not the holdout, calibrates
+    return Evidence(holdout=predicted(held["holdout"]), validation=predicted(held["validate"]),
+                    calibration=Predicted(cal.y, predict(cal.x), cal.t))

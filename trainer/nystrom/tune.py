@@ -21,6 +21,7 @@ from trainer.nystrom import numerics
 
 if TYPE_CHECKING:
     from trainer.exact.candidates import Curve
+    from trainer.plan import Parameters
 
 #: Rows of the sample the width search fits on (the rest of the tuning rows validate).
 TUNE_ROWS = 24_000
@@ -124,7 +125,7 @@ def _fine_problem(problem: SampleProblem, rng: np.random.Generator) -> SamplePro
     return replace(problem, landmarks=problem.landmarks[pick], evaluated=0)
 
 
-def tune_on_sample(opts, problem: SampleProblem, log,
+def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
                    rng: np.random.Generator | None = None) -> tuple[KernelSpec, float, dict]:
     """Kernel parameters and a first ridge on the sample (same width range as exact tuning).
 
@@ -136,10 +137,10 @@ def tune_on_sample(opts, problem: SampleProblem, log,
     from trainer.tuning import search
 
     t0 = time.perf_counter()
-    kernels = list(search.AUTO_KERNELS) if opts.kernel == "auto" else [opts.kernel]
+    kernels = list(search.AUTO_KERNELS) if given.kernel == "auto" else [given.kernel]
     runner = _run_specs
     m = problem.landmarks.shape[0]
-    two_stage = m > COARSE_LANDMARKS and (opts.gamma is None) and any(
+    two_stage = m > COARSE_LANDMARKS and (given.gamma is None) and any(
         "gamma" in KERNEL_PARAMS[k] for k in kernels)
     coarse = problem
     if two_stage:
@@ -149,12 +150,12 @@ def tune_on_sample(opts, problem: SampleProblem, log,
     fine = _fine_problem(problem, rng or np.random.default_rng(0))
     curves, ranges = [], {}
     for name in kernels:
-        for base in search.kernel_candidates(name, opts):
-            if "gamma" in KERNEL_PARAMS[name] and opts.gamma is None:
+        for base in search.kernel_candidates(name, given):
+            if "gamma" in KERNEL_PARAMS[name] and given.gamma is None:
                 got, ranges[name] = search.search_widths(coarse, base, name, runner,
-                                                          opts.seed)
+                                                          seed)
             else:
-                gamma = {"gamma": float(opts.gamma)} if "gamma" in KERNEL_PARAMS[name] else {}
+                gamma = {"gamma": float(given.gamma)} if "gamma" in KERNEL_PARAMS[name] else {}
                 got = runner(coarse, [KernelSpec(name, **gamma, **base)])
             curves += got
     best = min(curves, key=lambda c: c.best_score)
@@ -188,7 +189,7 @@ def tune_on_sample(opts, problem: SampleProblem, log,
         "error_method": "validation",
         "error_label": "validation RMSE",
         "kernels": kernels,
-        "searched": [p for p in ("gamma", "ridge") if getattr(opts, p) is None],
+        "searched": [p for p in ("gamma", "ridge") if getattr(given, p) is None],
         "grid": {"gamma_range": ranges},
         "chosen": {"kernel": best.spec.name, "params": best.spec.params(), "ridge": ridge,
                    "score": best.best_score, "rmse": [float(v) for v in best.rmse[best.best]]},

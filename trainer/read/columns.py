@@ -176,15 +176,23 @@ def feature_names(src: Source, targets: list[str], features: list[str] | None,
 def load_training(path, targets: list[str], features: list[str] | None = None,
                   time: str | None = None, drop_incomplete: bool = False,
                   sep: str | None = None, decimal: str | None = None) -> TrainingData:
-    """Read the rows to fit on: rows with every target present, complete features.
+    """Open ``path``, resolve the feature names and :func:`read_rows` (tests, tools)."""
+    src = Source(path, sep, decimal)
+    return read_rows(src, targets, feature_names(src, targets, features, time), time,
+                     drop_incomplete)
+
+
+def read_rows(src: Source, targets: list[str], features: list[str], time: str | None,
+              drop_incomplete: bool) -> TrainingData:
+    """Read the rows to fit on: rows with every target present, complete features
+    (``features`` already resolved by :func:`feature_names`).
 
     Returns
     -------
     TrainingData with ``counts``: ``rows_read``, ``rows_with_target``,
     ``rows_dropped_incomplete`` and ``rows_used``.
     """
-    src = Source(path, sep, decimal)
-    features = feature_names(src, targets, features, time)
+    targets, features = list(targets), list(features)
     d = len(features)
     xs, ys, ts = [], [], []
     read = with_target = dropped = 0
@@ -218,10 +226,9 @@ def load_training(path, targets: list[str], features: list[str] | None = None,
                         src.dialect(), time, clock)
 
 
-def count_target_rows(path, targets: list[str], sep: str | None = None,
-                      decimal: str | None = None) -> int:
+def count_target_rows(src: Source, targets: list[str]) -> int:
     """Rows that have a value in every target column (reads only those columns)."""
-    src = Source(path, sep, decimal)
+    targets = list(targets)
     src.check_columns(targets, "target column")
     return sum(int((~np.isnan(c.values).any(axis=1)).sum()) for c in src.chunks(targets))
 

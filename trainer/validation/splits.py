@@ -1,12 +1,17 @@
-"""Every split of a training job's rows: the exact job's holdout, the Nyström job's parts.
+"""Every split of a training job's rows, decided once by the job's split stage.
 
-Both solvers draw their held-out rows here. Random splits are seeded; with ``--time`` the
-held-out rows are the latest ones. A Nyström row's part is decided by one seeded uniform
-key per row (:func:`part_keys`), which pass 1 keeps for its sample and pass 2 draws again,
-so the landmarks and tuning rows taken from the sample are training-part rows.
+:func:`split_rows` is that stage. Rows held in memory are split into index sets
+(:class:`HoldoutSplit`: training part and holdout); rows read block by block get a rule
+every row is put through as it is read (:class:`PartSplit`: train, validate, holdout and
+calibrate parts). Random splits are seeded; with ``--time`` the held-out rows are the latest
+ones. A streamed row's part is decided by one seeded uniform key per row (:func:`part_keys`),
+which pass 1 keeps for its sample and pass 2 draws again, so the landmarks and tuning rows
+taken from the sample are training-part rows.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -67,3 +72,61 @@ def parts_of_keys(u: np.ndarray, fractions: tuple[float, float, float]) -> np.nd
     out[u < fv] = 1
     return out
 
+
+
+@dataclass(frozen=True)
+class HoldoutSplit:
+    """Rows in memory: training-part and holdout indices."""
+
+    train: np.ndarray
+    holdout: np.ndarray
+    by_time: bool
+
+    @property
+    def kind(self) -> str:
+        return "the most recent rows in time" if self.by_time else "seeded random draw"
+
+
+@dataclass(frozen=True)
+class PartSplit:
+    """Streamed rows: the part of each row follows from its key or its time."""
+
+    fractions: tuple[float, float, float]  # validate, holdout, calibrate (random parts)
+    cuts: tuple[float, float, float] | None  # validate, calibrate, holdout start times
+
+    @property
+    def by_time(self) -> bool:
+        return self.cuts is not None
+
+    @property
+    def kind(self) -> str:
+        return ("the most recent rows in time" if self.by_time
+                else "seeded random draw per block")
+
+    def parts(self, keys: np.ndarray, times: np.ndarray | None) -> np.ndarray:
+        """Part index (0 train, 1 validate, 2 holdout, 3 calibrate) of rows with part keys
+        ``keys`` (:func:`part_keys`) and, with ``--time``, times ``times``."""
+        if self.cuts is None:
+            return parts_of_keys(keys, self.fractions)
+        out = np.zeros(keys.shape[0], dtype=np.int8)
+        v_cut, c_cut, h_cut = self.cuts
+        out[times >= v_cut] = 1
+        out[times >= c_cut] = 3
+        out[times >= h_cut] = 2
+        return out
+
+    def training_share(self) -> float:
+        """The share of rows the training part gets."""
+        return 1 - sum(self.fractions)
+
+
+def split_rows(count: int, times: np.ndarray | None, holdout: float, seed: int,
+               in_memory: bool) -> HoldoutSplit | PartSplit:
+    """The split stage: ``count`` usable rows (``times``: theirs, in row order, with
+    ``--time``) into the parts the solver holds out."""
+    if in_memory:
+        train, held = split_holdout(count, holdout, seed, most_recent=times is not None)
+        return HoldoutSplit(train, held, times is not None)
+    fractions = part_fractions(count, holdout)
+    cuts = time_cuts(times, *fractions) if times is not None else None
+    return PartSplit(fractions, cuts)
