@@ -17,6 +17,14 @@ and the bench prints the noise floor beside every figure so the headroom is visi
     .venv/bin/python bench/scale_bench.py                  # 1e6 rows
     .venv/bin/python bench/scale_bench.py --rows 10000000 \
         --exact-rows                                                                 # 1e7 rows
+    .venv/bin/python bench/scale_bench.py --exact-rows --cg-landmarks 10000 \
+        --direct-too                                   # CG with 10,000 landmarks vs direct
+
+With ``--cg-landmarks M`` the bench also fits Nyström with M landmarks by preconditioned CG
+(``--solver cg``), with ``--direct-too`` the direct solve at the same M, and scikit-learn's
+``Nystroem`` + ``Ridge`` with M components and our kernel and ridge where its n × M feature
+matrix fits in a quarter of the memory. Every figure is printed with the load average
+before and after it: the machine is shared.
 
 Printed: times, peak memory, held-out RMSE and their ratios, with the machine's cores and
 BLAS kernel in the header. Data and store go to a temporary folder that is deleted at the
@@ -79,6 +87,7 @@ def train(data: Path, store: Path, name: str, *extra: str) -> dict:
     """
     argv = [KRIDGE, "train", str(data), "--target", "y", "--name", name, "--store",
             str(store), "--no-report", "--quiet", "--json", *extra]
+    before = os.getloadavg()
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
         t0 = time.perf_counter()
         child = subprocess.Popen(argv, stdout=out, stderr=err)
@@ -94,7 +103,47 @@ def train(data: Path, store: Path, name: str, *extra: str) -> dict:
     summary["peak_rss_mb"] = usage.ru_maxrss / 1024  # Linux reports kilobytes
     # CPU seconds beside wall seconds: on a shared machine the ratio shows the contention
     summary["cpu_seconds"] = usage.ru_utime + usage.ru_stime
+    summary["load"] = load_line(before)
     return summary
+
+
+def load_line(before: tuple[float, ...]) -> str:
+    """'load b → a': 1-minute load averages before and after a fit (cores: os.cpu_count())."""
+    return f"load {before[0]:.1f} → {os.getloadavg()[0]:.1f}"
+
+
+def sklearn_nystroem(data: Path, store: Path, name: str, m: int, x: np.ndarray,
+                     y: np.ndarray) -> dict | None:
+    """scikit-learn's Nystroem (m random components) + Ridge with the kernel and ridge our
+    model ``name`` chose, on the same standardized rows; None when n × m does not fit in a
+    quarter of the memory."""
+    import pyarrow.csv as pcsv
+
+    from service import load_model
+
+    model = load_model(store, name, 1)
+    man = model.manifest
+    table = pcsv.read_csv(data).to_pandas().to_numpy()  # every row of the file
+    if table.shape[0] * m * 8 > os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 4:
+        return None
+    from sklearn.kernel_approximation import Nystroem
+    from sklearn.linear_model import Ridge
+
+    mean, scale = (np.array(man["standardization"][k]) for k in ("mean", "scale"))
+    kern = man["kernel"]
+    before = os.getloadavg()
+    t0 = time.perf_counter()
+    xs = (table[:, :8] - mean) / scale
+    ny = Nystroem(kernel=kern["name"], gamma=kern["params"].get("gamma"), n_components=m,
+                  random_state=0).fit(xs)
+    reg = Ridge(alpha=man["ridge"]).fit(ny.transform(xs), table[:, 8])
+    seconds = time.perf_counter() - t0
+    pred = reg.predict(ny.transform((x - mean) / scale))
+    return {"wall_seconds": seconds, "cpu_seconds": float("nan"), "peak_rss_mb": float("nan"),
+            "fresh_rmse": float(np.sqrt(np.mean((pred - y) ** 2))),
+            "f_rmse": float(np.sqrt(np.mean((pred - response(x)) ** 2))),
+            "method": f"scikit-learn Nystroem({m}) + Ridge", "kernel": kern["name"],
+            "ridge": man["ridge"], "load": load_line(before)}
 
 
 def fresh_rmse(store: Path, name: str, x: np.ndarray, y: np.ndarray
@@ -108,6 +157,36 @@ def fresh_rmse(store: Path, name: str, x: np.ndarray, y: np.ndarray
             float(np.sqrt(np.mean((pred - response(x)) ** 2))))
 
 
+def ny_default(results: list) -> dict:
+    return results[0][2]
+
+
+def cg_runs(args, data: Path, store: Path, x_test: np.ndarray, y_test: np.ndarray) -> list:
+    """CG at --cg-landmarks, the direct solve at the same m (--direct-too), scikit-learn."""
+    m = args.cg_landmarks
+    out = []
+    for solver in ("cg", "direct") if args.direct_too else ("cg",):
+        name = f"{solver}-{m}"
+        res = train(data, store, name, "--method", "nystrom", "--landmarks", str(m),
+                    "--solver", solver)
+        res["fresh_rmse"], res["f_rmse"] = fresh_rmse(store, name, x_test, y_test)
+        out.append((f"nystrom {solver}, m = {m}", args.rows, res))
+        from service.store import Store
+
+        train_rec = Store(store).read_manifest(name, 1)["training"]
+        solve = {k: v for k, v in (train_rec.get("solve") or {}).items()
+                 if k in ("iterations", "final_residual", "converged", "seconds")}
+        print(f"nystrom {solver} with {m} landmarks: {res['wall_seconds']:.0f} s "
+              f"({res['load']}); fit {train_rec['fit_seconds']:.0f} s {solve}", flush=True)
+    sk = sklearn_nystroem(data, store, f"cg-{m}", m, x_test, y_test)
+    if sk is None:
+        print(f"scikit-learn Nystroem + Ridge skipped: its {args.rows} × {m} feature matrix "
+              f"({args.rows * m * 8 / 1e9:.0f} GB) exceeds a quarter of the memory")
+    else:
+        out.append((f"sklearn Nystroem+Ridge, m = {m}", args.rows, sk))
+    return out
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=1_000_000)
@@ -117,6 +196,10 @@ def main() -> int:
                          "that takes longer than the Nyström fit")
     ap.add_argument("--landmarks", type=int, nargs="*", default=[],
                     help="also fit Nyström with these landmark counts (the default m first)")
+    ap.add_argument("--cg-landmarks", type=int, metavar="M",
+                    help="also fit M landmarks by preconditioned CG (--solver cg)")
+    ap.add_argument("--direct-too", action="store_true",
+                    help="with --cg-landmarks: the direct solve at the same M as well")
     ap.add_argument("--keep", help="folder to keep the data and store in")
     args = ap.parse_args()
     work = Path(args.keep or tempfile.mkdtemp(prefix="kridge-scale-"))
@@ -154,6 +237,8 @@ def run(args, work: Path) -> int:
         res["fresh_rmse"], res["f_rmse"] = fresh_rmse(store, f"nystrom-{m}", x_test, y_test)
         others.append((f"nystrom, m = {m}", args.rows, res))
         print(f"nystrom with {m} landmarks: {res['wall_seconds']:.0f} s", flush=True)
+    if args.cg_landmarks:
+        others += cg_runs(args, data, store, x_test, y_test)
     for n in sorted(args.exact_rows):
         sub = work / f"process_sub_{n}.csv"
         write_csv(sub, n, seed=3 + n)
@@ -164,12 +249,17 @@ def run(args, work: Path) -> int:
               flush=True)
         if res["wall_seconds"] > big["wall_seconds"]:
             break
-    print(f"\n{'fit':<22}{'rows':>11}{'wall s':>8}{'CPU s':>8}{'peak RSS MB':>13}"
-          f"{'fresh RMSE':>12}{'/ noise':>9}{'RMSE vs f':>11}")
+    print(f"\n{'fit':<30}{'rows':>11}{'wall s':>8}{'CPU s':>8}{'peak RSS MB':>13}"
+          f"{'fresh RMSE':>12}{'/ noise':>9}{'RMSE vs f':>11}  load")
     for label, n, r in results + others:
-        print(f"{label:<22}{n:>11,}{r['wall_seconds']:>8.1f}{r['cpu_seconds']:>8.1f}"
+        print(f"{label:<30}{n:>11,}{r['wall_seconds']:>8.1f}{r['cpu_seconds']:>8.1f}"
               f"{r['peak_rss_mb']:>13.0f}"
-              f"{r['fresh_rmse']:>12.4f}{r['fresh_rmse'] / NOISE:>9.3f}{r['f_rmse']:>11.4f}")
+              f"{r['fresh_rmse']:>12.4f}{r['fresh_rmse'] / NOISE:>9.3f}{r['f_rmse']:>11.4f}"
+              f"  {r['load']}")
+    for label, _n, r in others:
+        if "cg" in label:
+            print(f"{label}: {r['method']}; ridge {r['ridge']:.4g}; fresh RMSE / default "
+                  f"Nyström's {r['fresh_rmse'] / ny_default(results)['fresh_rmse']:.3f}")
     ny = results[0][2]
     print(f"\nnystrom: {ny['method']}; kernel {ny['kernel']}, ridge {ny['ridge']:.4g}")
     within = [(n, r) for _lab, n, r in results[1:] if r["wall_seconds"] <= ny["wall_seconds"]]
@@ -187,7 +277,7 @@ def run(args, work: Path) -> int:
         {"machine": machine(), "rows": args.rows, "noise_sd": NOISE,
          "results": [{"fit": lab, "rows": n, **{k: r[k] for k in (
              "wall_seconds", "cpu_seconds", "peak_rss_mb", "fresh_rmse", "f_rmse", "method",
-             "kernel", "ridge")}} for lab, n, r in results + others]}, indent=2))
+             "kernel", "ridge", "load")}} for lab, n, r in results + others]}, indent=2))
     return 0
 
 

@@ -7,12 +7,11 @@ import json
 import os
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
 import pytest
-from service_helpers import free_port
+from dask_helpers import dask_cluster
 
 from service import load_model
 from service.kernels import KernelSpec, kernel_matrix
@@ -289,36 +288,12 @@ def test_streamed_fit_memory_is_bounded_by_landmarks_and_block(tmp_path):
     assert peak < whole_knm / 3
 
 
-def _start(argv: list[str], log: Path) -> subprocess.Popen:
-    return subprocess.Popen(argv, stdout=open(log, "w"), stderr=subprocess.STDOUT)
-
-
 @pytest.mark.slow
 def test_dask_cluster_fit_equals_the_local_fit(tmp_path, capsys):
     """A real scheduler and two workers on localhost (the ``dask`` command of
     dask.distributed); the cluster's sums, added in block order, equal the local ones."""
     pytest.importorskip("distributed")
-    dask = str(Path(sys.executable).with_name("dask"))
-    port = free_port()
-    address = f"tcp://127.0.0.1:{port}"
-    procs = [_start([dask, "scheduler", "--host", "127.0.0.1", "--port", str(port),
-                     "--no-dashboard"], tmp_path / "scheduler.log")]
-    try:
-        for i in range(2):
-            procs.append(_start([dask, "worker", address, "--nthreads", "1", "--no-dashboard",
-                                 "--name", f"w{i}"], tmp_path / f"worker{i}.log"))
-        from distributed import Client
-
-        deadline = time.monotonic() + 60
-        while True:
-            try:
-                with Client(address, timeout="2s") as c:
-                    if len(c.scheduler_info()["workers"]) == 2:
-                        break
-            except (OSError, TimeoutError):
-                pass
-            assert time.monotonic() < deadline, "the Dask cluster did not come up"
-            time.sleep(0.5)
+    with dask_cluster(tmp_path) as address:
         x, y = _data(20_000, seed=11)
         path = _write_csv(tmp_path / "c.csv", x, y)
         store = tmp_path / "st"
@@ -338,11 +313,3 @@ def test_dask_cluster_fit_equals_the_local_fit(tmp_path, capsys):
         np.testing.assert_allclose(b["dual"], a["dual"], rtol=1e-8,
                                    atol=1e-8 * np.abs(a["dual"]).max())
         assert st.read_manifest("remote", 1)["training"]["cluster"] is True
-    finally:
-        for p in reversed(procs):  # ended by their own pids
-            p.terminate()
-        for p in procs:
-            try:
-                p.wait(timeout=20)
-            except subprocess.TimeoutExpired:
-                p.kill()

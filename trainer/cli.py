@@ -45,7 +45,7 @@ def cmd_train(args) -> int:
         store=args.store, quiet=args.quiet, report=not args.no_report,
         precision=args.precision, time=args.time, drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
-        landmark_scheme=args.landmark_scheme, cluster=args.cluster,
+        landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
     )
 
     def log(*a, **k):
@@ -271,6 +271,10 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
                    help="Nyström landmark rows (default: from the row count and memory)")
     t.add_argument("--landmark-scheme", choices=("uniform", "kmeans++"),
                    help="how Nyström landmarks are chosen (default: uniform)")
+    t.add_argument("--solver", choices=("direct", "cg", "auto"), default="auto",
+                   help="Nyström solve: direct (m × m sums, every ridge at once), cg "
+                        "(preconditioned conjugate gradient, n·m per iteration), or auto by "
+                        "landmark count (default)")
     t.add_argument("--cluster", metavar="ADDRESS",
                    help="Dask scheduler address: run the Nyström accumulation there")
     t.add_argument("--quiet", action="store_true")

@@ -51,6 +51,7 @@ class TrainOptions:
     landmarks: int | None = None
     landmark_scheme: str | None = None
     cluster: str | None = None
+    solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
 
 
 @dataclass(frozen=True)
@@ -72,6 +73,7 @@ class Method:
     landmarks: int | None = None
     landmark_scheme: str | None = None
     cluster: str | None = None
+    solver: str = "auto"
 
 
 @dataclass(frozen=True)
@@ -151,6 +153,10 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError(f"--precision must be float64 or float32, not {opts.precision!r}")
     if opts.method == "exact" and opts.cluster:
         raise UserError("--cluster runs the Nyström accumulation; use --method nystrom")
+    if opts.solver not in ("direct", "cg", "auto"):
+        raise UserError(f"--solver must be direct, cg or auto, not {opts.solver!r}")
+    if opts.method == "exact" and opts.solver == "cg":
+        raise UserError("--solver cg solves the Nyström system; use --method nystrom")
     if opts.method not in METHODS:
         raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
     return store
@@ -164,10 +170,11 @@ def choose_method(opts: TrainOptions, src: Source) -> tuple[str, str]:
     """
     if opts.method == "exact":
         return "exact", "asked for with --method exact"
-    if opts.method == "nystrom" or opts.cluster or opts.landmarks:
+    if opts.method == "nystrom" or opts.cluster or opts.landmarks or opts.solver == "cg":
         return "nystrom", "asked for with " + ("--method nystrom" if opts.method == "nystrom"
                                                else "--cluster" if opts.cluster
-                                               else "--landmarks")
+                                               else "--landmarks" if opts.landmarks
+                                               else "--solver cg")
     rows = columns.count_target_rows(src, opts.targets)
     if rows <= AUTO_EXACT_MAX_ROWS:
         return "exact", (f"{rows} rows with a target ≤ {AUTO_EXACT_MAX_ROWS}: exact KRR "
@@ -187,7 +194,8 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
         source=src,
         columns=Columns(tuple(features), tuple(opts.targets), opts.time,
                         opts.drop_incomplete),
-        method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster),
+        method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
+                      opts.solver),
         splits=Splits(opts.holdout, opts.seed),
         parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge),
         output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet),

@@ -91,5 +91,5 @@ def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, metr
         "report": published.report,
         "seconds": round(time.perf_counter() - t0, 2),
         "store": str(store.root),
-        "warnings": cautions.poor_holdout(metrics),
+        "warnings": list(fitted.warnings) + cautions.poor_holdout(metrics),
     }

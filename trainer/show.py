@@ -106,6 +106,9 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     lm = tr.get("landmarks")
     if lm:
         lines.insert(7, ("landmarks", f"{lm['count']} ({lm['scheme']}; {lm['how_many']})"))
+    solve = tr.get("solve")
+    if solve:
+        lines.insert(7, ("solve", solve_line(solve)))
     if tr.get("method"):
         lines.insert(7, ("method", f"{tr['method']}: {tr.get('method_reason', '')}"))
     span = env.get("time_span")
@@ -142,3 +145,13 @@ def precision_line(precision: str, check: dict | None) -> str:
     diffs = ", ".join(f"{t} {fmt(v, 2)}" for t, v in check["max_abs_error"].items())
     return (f"float32: largest difference from float64 on the {check['rows']} training rows "
             f"{diffs}")
+
+
+def solve_line(solve: dict) -> str:
+    """How a Nyström model's system was solved, for ``kridge inspect``."""
+    if solve.get("solver") != "cg":
+        return f"direct ({solve.get('reason', '')})"
+    state = "converged" if solve["converged"] else "stopped at the cap"
+    return (f"cg, {solve['iterations']} iterations, relative residual "
+            f"{solve['final_residual']:.2g} ({state}, tolerance {solve['tolerance']:g}), "
+            f"{solve['seconds']:.1f} s ({solve.get('reason', '')})")

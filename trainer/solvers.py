@@ -21,7 +21,7 @@ and the sample search), and replace only the solve in its fit, reusing the pass-
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Protocol
 
 import numpy as np
@@ -118,6 +118,7 @@ class Fitted:
     training: dict  # the solver's own entries of the manifest's ``training``
     tuning: dict | None  # the tuning account as the fit leaves it
     described: str  # the solver as the train summary names it
+    warnings: list[str] = field(default_factory=list)  # the fit's own (train prints them)
 
 
 class Solver(Protocol):

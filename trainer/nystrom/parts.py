@@ -40,11 +40,12 @@ class BlockPlan:
     landmarks: np.ndarray
     seed: int
     split: PartSplit  # the job's split: the rule that gives each row its part
+    keep_train: bool = False  # CG: return the training rows themselves, no sums
 
 
 @dataclass
 class BlockResult:
-    sums: numerics.Sums
+    sums: numerics.Sums | None  # None when the plan keeps the training rows instead
     kept: dict = field(default_factory=dict)  # part → (x_s, y, t)
 
 
@@ -67,8 +68,12 @@ def block_sums(plan: BlockPlan, block: Block, first_row: int) -> BlockResult:
     y = v[:, d:]
     t = t_all[keep] if t_all is not None else None
     train = part == 0
-    sums = numerics.accumulate(plan.spec, plan.landmarks, x_s[train], y[train])
     kept = {}
+    if plan.keep_train:
+        sums = None
+        kept["train"] = (x_s[train], y[train], None)
+    else:
+        sums = numerics.accumulate(plan.spec, plan.landmarks, x_s[train], y[train])
     for i, name in enumerate(PARTS[1:], start=1):
         sel = part == i
         if sel.any():
@@ -83,6 +88,7 @@ class HeldRows:
     x: np.ndarray
     y: np.ndarray
     t: np.ndarray | None
+    block_rows: list[int] = field(default_factory=list)  # rows from each block, in order
 
     @classmethod
     def stack(cls, rows: list, d: int, t: int) -> HeldRows:
@@ -90,4 +96,4 @@ class HeldRows:
             return cls(np.empty((0, d)), np.empty((0, t)), None)
         times = None if rows[0][2] is None else np.concatenate([r[2] for r in rows])
         return cls(np.concatenate([r[0] for r in rows]), np.concatenate([r[1] for r in rows]),
-                   times)
+                   times, [r[0].shape[0] for r in rows])

@@ -40,17 +40,19 @@ def in_threads(work: Callable, items: Iterable) -> Iterator:
 
 
 def run_pass2(plan: BlockPlan, blocks: list, cluster: str | None, progress
-              ) -> tuple[numerics.Sums, dict[str, HeldRows]]:
+              ) -> tuple[numerics.Sums | None, dict[str, HeldRows]]:
     """The training sums and the held-out parts, from this process or a Dask cluster.
 
-    Block results are added in block order: the same sums whoever computed them.
+    Block results are added in block order: the same sums whoever computed them. With
+    ``plan.keep_train`` the sums are None and the held parts include "train".
     """
     m, t = plan.landmarks.shape[0], len(plan.targets)
-    sums = numerics.Sums.zeros(m, t)
-    held: dict[str, list] = {p: [] for p in PARTS[1:]}
+    sums = None if plan.keep_train else numerics.Sums.zeros(m, t)
+    held: dict[str, list] = {p: [] for p in PARTS[int(not plan.keep_train):]}
 
     def add(res: BlockResult) -> None:
-        sums.add(res.sums)
+        if res.sums is not None:
+            sums.add(res.sums)
         for part, rows in res.kept.items():
             held[part].append(rows)
 

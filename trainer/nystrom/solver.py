@@ -30,8 +30,10 @@ import numpy as np
 
 from trainer.errors import UserError
 from trainer.nystrom import numerics
+from trainer.nystrom.cg_fit import choose_solver, solve_with_cg
 from trainer.nystrom.parts import BlockPlan, HeldRows
 from trainer.nystrom.pass2 import run_pass2
+from trainer.nystrom.rank import rank_check
 from trainer.nystrom.scan import Scan, scan
 from trainer.nystrom.scores import held_predictions, predictor
 from trainer.nystrom.tune import SampleProblem, final_ridge, sample_problem, tune_on_sample
@@ -142,6 +144,12 @@ def refine_ridge(path, tuned: NystromTuned, held: dict[str, HeldRows],
                    "Var(target), averaged over the targets)"}}
 
 
+#: The manifest's ``training.solver`` for a CG fit.
+CG_TEXT = ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), preconditioned "
+           "conjugate gradient (FALKON's preconditioner, Rudi, Carratino & Rosasco 2017), K_nm "
+           "formed tile by tile in every iteration")
+
+
 class NystromSolver:
     """Nyström kernel ridge regression (module notes); see :class:`trainer.solvers.Solver`."""
 
@@ -187,12 +195,22 @@ class NystromSolver:
 
     def solve(self, plan: Plan, rows: ScannedRows, split: PartSplit, tuned: NystromTuned):
         """Pass 2 and the solve: (β, intercept, final ridge, tuning account, rank kept,
-        training rows, held-out parts)."""
+        training rows, held-out parts). ``--solver`` picks the direct solve or CG
+        (:mod:`trainer.nystrom.cg_fit`); :attr:`solve_record` and :attr:`warnings` say how
+        it went."""
         src, c = plan.source, plan.columns
         block_plan = BlockPlan(str(src.path), src.sep, src.decimal, list(c.features),
                                list(c.targets), c.time, c.drop_incomplete, rows.mean,
                                rows.scale, tuned.spec, tuned.landmarks, plan.splits.seed,
                                split)
+        solver, why = choose_solver(plan.method.solver, tuned.landmarks.shape[0])
+        self.solve_record, self.warnings = {"solver": solver, "reason": why}, []
+        if solver == "cg":
+            fit = solve_with_cg(block_plan, rows.scan.blocks, plan.method.cluster,
+                                _progress(plan.output.quiet), tuned, why)
+            self.solve_record, self.warnings = fit.record, fit.warnings
+            return (fit.beta, fit.intercept, fit.ridge, fit.account, None, fit.count,
+                    fit.held)
         sums, held = run_pass2(block_plan, rows.scan.blocks, plan.method.cluster,
                                _progress(plan.output.quiet))
         if sums.count < 2:
@@ -214,7 +232,8 @@ class NystromSolver:
         evidence = held_predictions(predictor(spec, landmarks, beta, intercept), held)
         parts = {"train": train_rows, **{p: int(h.x.shape[0]) for p, h in held.items()}}
         asked = plan.method.landmarks
-        landmark_info = dict(tuned.landmark_info, rank_kept=rank, how_many=(
+        ranks = rank_check(spec, landmarks, np.random.default_rng([plan.splits.seed, 7]))
+        landmark_info = dict(tuned.landmark_info, rank_kept=rank, rank_check=ranks, how_many=(
             f"--landmarks {asked}" if asked else
             numerics.describe_default(train_rows, tuned.memory)))
         features = plan.columns.features
@@ -230,9 +249,14 @@ class NystromSolver:
                                   f"all {sc.count} training-file rows used"),
             check_rows=(rows.sample_s()[:5000], sc.sample[:, len(features):]),
             training={"landmarks": landmark_info, "parts": parts,
-                      "solver": self.solver_text, "cluster": bool(plan.method.cluster),
+                      "solver": self.solver_text if self.solve_record["solver"] != "cg"
+                      else CG_TEXT, "solve": self.solve_record,
+                      "cluster": bool(plan.method.cluster),
                       "final_fit": "the training part only: holdout and calibration rows "
                                    "stay unseen"},
             tuning=account,
             described=f"nystrom with {landmark_info['count']} {landmark_info['scheme']} "
-                      "landmarks")
+                      f"landmarks, {self.solve_record['solver']} solve "
+                      f"({self.solve_record['reason']})",
+            warnings=self.warnings + ([ranks["warning"]] if ranks and ranks["warning"]
+                                      else []))

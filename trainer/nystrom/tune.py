@@ -30,6 +30,10 @@ COARSE_LANDMARKS = 1000
 #: Width ratio between the second stage's steps, and how often it may step outwards.
 FINE_STEP = math.sqrt(2.0)
 FINE_EXTENSIONS = 2
+#: Landmarks of the second stage at most: above, a uniform subset of this many decides the
+#: width (two m × m eigendecompositions per width step cost m³; the CG solver's m of 10,000
+#: would take minutes per step), and the final solve uses every landmark.
+FINE_MAX_LANDMARKS = 2500
 
 
 @dataclass
@@ -111,6 +115,16 @@ def _refine_width(problem: SampleProblem, coarse: Curve, runner) -> list[Curve]:
     return curves
 
 
+def _fine_problem(problem: SampleProblem, rng: np.random.Generator) -> SampleProblem:
+    """The problem the width steps decide on: all landmarks up to FINE_MAX_LANDMARKS, above
+    a uniform subset of that many."""
+    m = problem.landmarks.shape[0]
+    if m <= FINE_MAX_LANDMARKS:
+        return problem
+    pick = np.sort(rng.choice(m, FINE_MAX_LANDMARKS, replace=False))
+    return replace(problem, landmarks=problem.landmarks[pick], evaluated=0)
+
+
 def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
                    rng: np.random.Generator | None = None) -> tuple[KernelSpec, float, dict]:
     """Kernel parameters and a first ridge on the sample (same width range as exact tuning).
@@ -133,6 +147,7 @@ def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
         rng = rng or np.random.default_rng(0)
         subset = np.sort(rng.choice(m, COARSE_LANDMARKS, replace=False))
         coarse = replace(problem, landmarks=problem.landmarks[subset], evaluated=0)
+    fine = _fine_problem(problem, rng or np.random.default_rng(0))
     curves, ranges = [], {}
     for name in kernels:
         for base in search.kernel_candidates(name, given):
@@ -147,21 +162,23 @@ def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
     coarse_curves = curves
     if two_stage and math.isfinite(best.best_score):
         if "gamma" in KERNEL_PARAMS[best.spec.name]:
-            curves = _refine_width(problem, best, runner)
+            curves = _refine_width(fine, best, runner)
         else:  # a kernel without a width won on the subset: score it with all landmarks
-            curves = runner(problem, [best.spec])
+            curves = runner(fine, [best.spec])
         best = min(curves, key=lambda c: c.best_score)
     if not math.isfinite(best.best_score):
         raise UserError("tuning found no usable parameters on the sample; give --gamma and "
                         "--ridge explicitly")
     ridge = float(best.ridges[best.best])
     seconds = time.perf_counter() - t0
-    evaluated = coarse.evaluated + (problem.evaluated if two_stage else 0)
+    evaluated = coarse.evaluated + (fine.evaluated if two_stage else 0)
     what = (f"validation error on a sample ({problem.x_s.shape[0]} fit rows, "
             f"{problem.x_val.shape[0]} validation rows, the same {m} landmarks)")
     if two_stage:
         what += (f", widths searched with a uniform subset of {COARSE_LANDMARKS} landmarks "
-                 f"and refined in steps of ×{FINE_STEP:.3g} with all {m}")
+                 f"and refined in steps of ×{FINE_STEP:.3g} with "
+                 + (f"all {m}" if fine is problem else
+                    f"a uniform subset of {FINE_MAX_LANDMARKS} of the {m}"))
     rmse = ", ".join(f"{v:.4g}" for v in best.rmse[best.best])
     summary = (f"{best.spec.describe()}, ridge={ridge:.4g} chosen by {what} "
                f"({evaluated} decompositions; validation RMSE {rmse}; {seconds:.1f} s)")
