@@ -234,8 +234,8 @@ def test_dask_cluster_cg_fit_equals_the_local_cg_fit(tmp_path, capsys, monkeypat
 def test_width_steps_use_a_bounded_landmark_subset_above_the_cap(monkeypatch):
     """Above FINE_MAX_LANDMARKS the second stage of the width search decides on a uniform
     subset of that many landmarks (the CG solver's m would cost minutes per step)."""
-    from trainer.job import TrainOptions
     from trainer.nystrom import tune
+    from trainer.plan import Parameters
 
     monkeypatch.setattr(tune, "COARSE_LANDMARKS", 30)
     monkeypatch.setattr(tune, "FINE_MAX_LANDMARKS", 60)
@@ -246,8 +246,7 @@ def test_width_steps_use_a_bounded_landmark_subset_above_the_cap(monkeypatch):
     xs, y = _standardized(2400, seed=13)
     problem = tune.sample_problem(xs, y[:, :1], None, xs[:120], None,
                                   np.random.default_rng(0))
-    opts = TrainOptions(data="-", targets=["y"], name="t", store="-")
-    _spec, _ridge, info = tune.tune_on_sample(opts, problem, lambda *_: None,
+    _spec, _ridge, info = tune.tune_on_sample(Parameters("rbf"), 0, problem, lambda *_: None,
                                               np.random.default_rng(1))
     assert "a uniform subset of 60 of the 120" in info["method"]
     assert set(seen) == {30, 60}  # never all 120
