@@ -68,7 +68,7 @@ def test_both_solvers_run_the_same_stages_once_each(tmp_path, stage_calls):
     assert {"rows", "data_sha256", "data_format", "row_counts", "holdout_kind",
             "holdout_rows", "seed", "solver", "final_fit"} <= shared
     assert exact["training"]["data_sha256"] == nystrom["training"]["data_sha256"]
-    assert set(nystrom["training"]) - shared == {"landmarks", "parts", "cluster"}
+    assert set(nystrom["training"]) - shared == {"landmarks", "parts", "cluster", "solve"}
     assert set(exact["training"]) - shared == set()
     assert exact["intervals"]["residuals"] == "LOO"
     assert nystrom["intervals"]["residuals"] == "calibration"
