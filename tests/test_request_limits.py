@@ -128,9 +128,9 @@ def test_a_refused_body_is_parsed_once(store, monkeypatch):
     calls = []
     parse = predict.parse_body
 
-    def counted(raw, max_rows):
+    def counted(raw, max_rows, *args):
         calls.append(len(raw))
-        return parse(raw, max_rows)
+        return parse(raw, max_rows, *args)
 
     monkeypatch.setattr(predict, "parse_body", counted)
     client = app.test_client()

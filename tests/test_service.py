@@ -172,7 +172,7 @@ def test_discovery_routes_and_openapi(served):
     for path in ("/models/coating/predict", "/models/{name}/release", "/metrics", "/readyz"):
         assert path in doc["paths"]
     req_schema = doc["components"]["schemas"]["RowBatch"]
-    assert set(req_schema["properties"]) == {"rows", "coverage"}
+    assert set(req_schema["properties"]) == {"rows", "coverage", "ids"}
 
 
 def test_metrics_add_up_across_workers(served):

@@ -22,8 +22,8 @@ def bundle_arrays(spec, x_train: np.ndarray, dual: np.ndarray, reference: np.nda
                   calib: np.ndarray | None) -> dict[str, np.ndarray]:
     """The arrays a bundle stores, for either solver (``x_train``: training or landmark rows,
     standardized; ``calib``: absolute calibration residuals, stored sorted)."""
-    # The laplacian's per-feature passes read X one feature at a time: store it column-major
-    # so that serving processes read it from the shared memory map without a private copy.
+    # The laplacian's L1 loop reads X one feature at a time: store it column-major, the
+    # layout the engine serves from, so a loaded model needs no second, transposed copy.
     x_store = np.asfortranarray(x_train) if spec.uses == "l1" else x_train
     arrays = {"x_train": x_store, "dual": dual, "novelty_reference": reference}
     if calib is not None:

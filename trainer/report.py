@@ -263,8 +263,10 @@ def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
     if tuning and len(tuning.get("per_kernel", {})) > 1:
         out.append("<p>Best of each kernel compared:</p>")
         out.append(_table(["kernel", "parameters", "ridge", "criterion"], [
-            [_Raw(_esc(k)), _Raw(_esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items())
-                                      or "–")), v["ridge"], v["score"]]
+            [_Raw(_esc(k + (f" (raced out: {v['raced_out']}, {v.get('rows')} rows)"
+                                if v.get("raced_out") else ""))),
+             _Raw(_esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items()) or "–")),
+             v["ridge"], v["score"]]
             for k, v in tuning["per_kernel"].items()], left=2))
     return out
 

@@ -56,7 +56,7 @@ class Curve:
         }
 
 
-def _score(res: np.ndarray, inv_var: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def score_residuals(res: np.ndarray, inv_var: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(R, m, t) residuals → criterion (R,) and RMSE (R, t); inf/NaN rows become inf."""
     mse = np.mean(res**2, axis=1)  # (R, t); NaN propagates
     score = (mse * inv_var[None, :]).mean(axis=1)
@@ -104,7 +104,7 @@ def evaluate(problem: Problem, spec: KernelSpec, ridges: np.ndarray | None = Non
         t = problem.y_c.shape[1]
         return Curve(spec, ridges, np.full(ridges.size, np.inf),
                      np.full((ridges.size, t), np.nan), failure=f"{type(exc).__name__}: {exc}")
-    score, rmse = _score(res, problem.inv_var)
+    score, rmse = score_residuals(res, problem.inv_var)
     score[~ok] = np.inf
     problem.evaluated += problem.decompositions
     problem.seconds += time.perf_counter() - t0

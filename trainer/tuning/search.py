@@ -1,18 +1,24 @@
 """Automatic choice of kernel parameters and ridge by cross-validated error.
 
-Each candidate kernel setting is scored for a whole ridge grid at once
-(:mod:`trainer.exact.candidates`), by exact leave-one-out up to a size limit, by k-fold on a
-subsample above it, by forward-chaining folds in time order with ``--time``
-(:mod:`trainer.validation.folds`); the closed forms are in :mod:`trainer.exact.loo`.
+Each candidate kernel setting is scored by exact leave-one-out up to a size limit, by k-fold
+on a subsample above it, by forward-chaining folds in time order with ``--time``
+(:mod:`trainer.validation.folds`); the closed forms are in :mod:`trainer.exact.loo` (a whole
+ridge path from one eigendecomposition) and :mod:`trainer.exact.cholesky_score` (one ridge
+from one Cholesky factorization).
 
 The search
 ----------
+* a race between the kernel settings (:mod:`trainer.tuning.race`): on problems of more than
+  1,000 rows, widths and kernels are first searched on a seeded 1,000-row subsample by exact
+  leave-one-out, and the few settings left settle ridge and width on all tuning rows by
+  Cholesky line searches (:mod:`trainer.tuning.full_size`); smaller problems, and time
+  folds, are searched whole;
 * kernel widths (γ) on a log scale whose ends follow the data (:mod:`trainer.tuning.widths`): a
   coarse grid of 8 widths, extended outwards when the best lies on an edge, then refined by
-  two rounds of log-scale bisection around the best;
+  two rounds of log-scale bisection around the best (:mod:`trainer.tuning.width_search`);
 * ridge: 30 values from 1e-7 to 1e3 times the mean diagonal of K (for rbf-type kernels the
   diagonal is 1, so these are plain ridge values), then a finer grid between the best value's
-  neighbours on the best kernel's decomposition;
+  neighbours (searched whole) or a Brent line search (on all rows after a subsample);
 * polynomial degree (2, 3) and, for the sigmoid kernel, coef0 (0, 1) when omitted. The
   polynomial coef0 is fixed to 1 when omitted: for c₀ > 0, (γ aᵀb + c₀)^d = c₀^d (γ/c₀ aᵀb + 1)^d,
   so any positive c₀ is the same model as c₀ = 1 with another γ and ridge;
@@ -21,7 +27,8 @@ The search
   tuned when asked for by name.
 
 Several targets: the criterion is the mean over targets of CV MSE / Var(target), so targets
-in different units weigh the same. The manifest gets the whole account (:func:`tune`).
+in different units weigh the same. The manifest gets the whole account
+(:mod:`trainer.tuning.account`).
 """
 
 from __future__ import annotations
@@ -35,26 +42,24 @@ import numpy as np
 from service.kernels import KERNEL_PARAMS, KernelSpec
 from trainer.errors import UserError
 from trainer.exact.candidates import Curve, evaluate
-from trainer.tuning.widths import width_range
-from trainer.tuning.workers import Runner
-from trainer.validation.folds import (
-    RIDGE_GRID_SIZE,
-    RIDGE_RELATIVE,
-    Problem,
-    error_method,
-    scheme_text,
-    standardized_problem,
+from trainer.tuning import race
+from trainer.tuning.account import account
+from trainer.tuning.full_size import FullSize
+from trainer.tuning.width_search import (
+    WIDTH_BISECTIONS,
+    WIDTH_EXTENSIONS,
+    WIDTH_GRID_SIZE,
+    search_widths,
 )
+from trainer.tuning.workers import Runner
+from trainer.validation.folds import Problem, error_method, scheme_text, standardized_problem
 
-#: Coarse grid of kernel widths, edge extensions and bisection rounds.
-WIDTH_GRID_SIZE = 8
-WIDTH_EXTENSIONS = 2
-WIDTH_BISECTIONS = 2
 #: Kernels compared by ``kernel="auto"`` (sigmoid is indefinite in general: asked-for only).
 AUTO_KERNELS = ("linear", "polynomial", "rbf", "laplacian", "matern32", "matern52")
 
 # search_widths and kernel_candidates also drive the Nyström job's sample tuning.
-__all__ = ["AUTO_KERNELS", "Given", "Tuned", "kernel_candidates", "search_widths", "tune"]
+__all__ = ["AUTO_KERNELS", "WIDTH_BISECTIONS", "WIDTH_EXTENSIONS", "WIDTH_GRID_SIZE", "Given",
+           "Tuned", "kernel_candidates", "search_widths", "tune"]
 
 
 @dataclass(frozen=True)
@@ -74,32 +79,6 @@ class Tuned:
     spec: KernelSpec  # the chosen kernel and its parameters
     ridge: float
     account: dict  # JSON-ready account of the search, stored as the manifest's "tuning"
-
-
-def search_widths(problem, base: dict, name: str, runner, seed: int) -> tuple[list[Curve], list]:
-    """Coarse log grid of γ, edge extensions, then log bisection around the best."""
-    lo, hi = width_range(name, problem.x_s, seed)
-    grid = list(np.geomspace(lo, hi, WIDTH_GRID_SIZE))
-    make = lambda g: KernelSpec(name, gamma=float(g), **base)  # noqa: E731
-    curves = runner(problem, [make(g) for g in grid])
-    step = math.log(grid[1] / grid[0])
-    # extend outwards while the best lies on an edge of what has been tried
-    for _ in range(WIDTH_EXTENSIONS):
-        gammas = [c.spec.gamma for c in curves]
-        best = curves[int(np.argmin([c.best_score for c in curves]))]
-        if best.spec.gamma == min(gammas):
-            new = min(gammas) * math.exp(-step)
-        elif best.spec.gamma == max(gammas):
-            new = max(gammas) * math.exp(step)
-        else:
-            break
-        curves += runner(problem, [make(new)])
-    for _ in range(WIDTH_BISECTIONS):
-        step /= 2
-        best = curves[int(np.argmin([c.best_score for c in curves]))]
-        g = best.spec.gamma
-        curves += runner(problem, [make(g * math.exp(-step)), make(g * math.exp(step))])
-    return curves, [float(lo), float(hi)]
 
 
 def kernel_candidates(name: str, given) -> list[dict]:
@@ -157,104 +136,74 @@ def tune(x_tr: np.ndarray, y_tr: np.ndarray, *, kernel: str = "rbf",
         raise UserError(f"ridge must be positive for tuning, got {given.ridge}")
     kernels = list(AUTO_KERNELS) if kernel == "auto" else [kernel]
     problem, info = standardized_problem(x_tr, y_tr, given.ridge, seed, time_ordered)
-    widths_searched = given.gamma is None
-    per_kernel_fits = (WIDTH_GRID_SIZE + WIDTH_EXTENSIONS + 2 * WIDTH_BISECTIONS)
-    hint = sum((per_kernel_fits if "gamma" in KERNEL_PARAMS[k] and widths_searched else 1)
-               * len(kernel_candidates(k, given)) for k in kernels)
-    runner = Runner(problem.x_s.shape[0], quiet, hint)
+    entries = _entries(kernels, given)
+    coarse = race.coarse_problem(problem, seed)
+    first = coarse or problem
+    per_entry = WIDTH_GRID_SIZE + WIDTH_EXTENSIONS + 2 * WIDTH_BISECTIONS
+    hint = first.decompositions * sum(per_entry if e.widths else 1 for e in entries)
+    runner = Runner(first.x_s.shape[0], quiet, hint)
     what = scheme_text(info)
     if info["fallback"]:
         log(f"tuning: {info['fallback']['reason']}; falling back to {what}")
-    log(f"tuning {', '.join(kernels)} by {what} on {problem.x_s.shape[0]} rows; {runner.how}")
-
-    curves: list[Curve] = []
-    ranges: dict[str, list[float]] = {}
+    log(f"tuning {', '.join(kernels)} by {what} on {problem.x_s.shape[0]} rows"
+        + (f" (widths and kernels first on a {coarse.x_s.shape[0]}-row subsample)"
+           if coarse else "") + f"; {runner.how}")
+    full = None
     try:
-        for name in kernels:
-            for base in kernel_candidates(name, given):
-                if "gamma" in KERNEL_PARAMS[name] and widths_searched:
-                    got, ranges[name] = search_widths(problem, base, name, runner, seed)
-                else:
-                    gamma = {"gamma": float(given.gamma)} if "gamma" in KERNEL_PARAMS[name] else {}
-                    got = runner(problem, [KernelSpec(name, **gamma, **base)])
-                curves += got
+        race.coarse_stage(first, entries, runner, seed)
+        _check_usable([c for e in entries for c in e.curves], log)
+        if coarse is None:
+            best = _whole_choice(problem, entries, given, runner)
+        else:
+            full = FullSize(problem, runner.step)
+            runner.expect(race.MAX_FINALISTS * 3 * race.STEPS_PER_SEARCH
+                          * problem.decompositions)
+            spec, _, score = race.full_stage(full, entries, runner)
+            if not math.isfinite(score):
+                raise UserError("tuning found no ridge at which the kernel system of all "
+                                "tuning rows is well-conditioned; give --gamma and --ridge "
+                                "explicitly")
+            best = next(c for c in full.curves() if c.spec == spec)
     finally:
         runner.close()
-    best = min(curves, key=lambda c: c.best_score)
-    failures = [c for c in curves if c.failure]
-    if failures:
-        log(f"tuning: {len(failures)} of {len(curves)} candidates failed numerically "
-            f"(first: {failures[0].spec.describe()}, {failures[0].failure})")
-    if not math.isfinite(best.best_score):
-        raise UserError(f"tuning found no usable parameters ({len(failures)} of {len(curves)} "
-                        "candidates failed numerically, the rest were ill-conditioned at every "
-                        "ridge); give --gamma and --ridge explicitly")
-    if given.ridge is None:
-        best = _refine_ridge(problem, best)
     ridge = float(given.ridge) if given.ridge is not None else float(best.ridges[best.best])
-    info.update(_account(problem, curves, best, ridge, kernels, kernel, given, what, ranges,
-                         y_tr.shape[1], runner.how, time.perf_counter() - t0,
-                         error_method(info)))
+    info.update(account(problem, coarse, entries, full, best, ridge, kernels, kernel, given,
+                        what, runner.how, time.perf_counter() - t0, error_method(info)))
     log(f"tuning: {info['summary']}")
     return Tuned(best.spec, ridge, info)
 
 
-def _account(problem: Problem, curves: list[Curve], best: Curve, ridge: float,
-             kernels: list[str], kernel: str, given: Given, what: str,
-             ranges: dict, targets: int, how: str, seconds: float, error: str) -> dict:
-    """The JSON-ready account of a finished search (the manifest's ``tuning``)."""
-    spec = best.spec
-    chosen_rmse = [float(v) for v in best.rmse[best.best]]
-    failures = sum(1 for c in curves if c.failure)
-    per_kernel = {}
+def _entries(kernels: list[str], given: Given) -> list[race.Entry]:
+    """One race entry per kernel setting to try."""
+    out = []
     for name in kernels:
-        b = min((c for c in curves if c.spec.name == name), key=lambda c: c.best_score)
-        per_kernel[name] = {
-            "params": b.spec.params(), "ridge": float(b.ridges[b.best]),
-            "score": b.best_score if math.isfinite(b.best_score) else None,
-            "rmse": [float(v) for v in b.rmse[b.best]],
-        }
-    cv = problem.folds is not None
-    crit_txt = f"{error} MSE" + (
-        " / Var(target), averaged over the targets" if targets > 1 else "")
-    searched = [p for p in ("gamma", "degree", "coef0")
-                if any(p in KERNEL_PARAMS[k] for k in kernels) and getattr(given, p) is None]
-    searched += ["ridge"] if given.ridge is None else []
-    searched += ["kernel"] if kernel == "auto" else []
-    rmse_txt = ", ".join(f"{v:.4g}" for v in chosen_rmse)
-    summary = (f"{spec.describe()}, ridge={ridge:.4g} chosen by {what} "
-               f"({problem.evaluated} decompositions, {len(curves)} settings × ridge grid; "
-               f"{error} RMSE {rmse_txt}; {seconds:.1f} s)")
-    return {
-        "method": what + ("" if cv else
-                          " (closed form from one eigendecomposition per kernel setting)"),
-        "criterion": crit_txt,
-        "error_method": error,
-        "error_label": f"{error} RMSE",
-        "searched": searched,
-        "fixed": {p: float(getattr(given, p)) for p in ("gamma", "degree", "coef0", "ridge")
-                  if getattr(given, p) is not None},
-        "kernels": kernels,
-        "grid": {
-            "ridge": ("fixed" if given.ridge is not None else
-                      f"{RIDGE_GRID_SIZE} log-spaced values, {RIDGE_RELATIVE[0]:g} to "
-                      f"{RIDGE_RELATIVE[1]:g} × mean diagonal of K, refined around the best"),
-            "gamma": (None if given.gamma is not None else
-                      f"{WIDTH_GRID_SIZE} log-spaced widths between 0.05/q90 of the pairwise "
-                      f"distances and 3/median nearest-neighbour distance, up to "
-                      f"{WIDTH_EXTENSIONS} edge extensions, {WIDTH_BISECTIONS} bisections"),
-            "gamma_range": ranges,
-        },
-        "chosen": {"kernel": spec.name, "params": spec.params(), "ridge": ridge,
-                   "score": best.best_score, "rmse": chosen_rmse,
-                   "ridge_at_grid_edge": bool(given.ridge is None
-                                              and best.ridges.size == RIDGE_GRID_SIZE
-                                              and best.best in (0, best.ridges.size - 1))},
-        "per_kernel": per_kernel,
-        "curves": [c.as_json() for c in curves],
-        "decompositions": problem.evaluated,
-        "numerical_failures": failures,
-        "parallel": how,
-        "seconds": round(seconds, 3),
-        "summary": summary,
-    }
+        widths = "gamma" in KERNEL_PARAMS[name] and given.gamma is None
+        fixed = ({"gamma": float(given.gamma)}
+                 if "gamma" in KERNEL_PARAMS[name] and not widths else {})
+        out += [race.Entry(name, base, widths, fixed=fixed)
+                for base in kernel_candidates(name, given)]
+    return out
+
+
+def _whole_choice(problem: Problem, entries: list[race.Entry], given: Given,
+                  runner: Runner) -> Curve:
+    """The best curve of a problem searched whole, its ridge refined."""
+    best = min((c for e in entries for c in e.curves), key=lambda c: c.best_score)
+    if given.ridge is not None:
+        return best
+    before = problem.evaluated
+    best = _refine_ridge(problem, best)
+    runner.count_eigh(problem.evaluated - before)
+    return best
+
+
+def _check_usable(curves: list[Curve], log) -> None:
+    """Say how many candidates failed numerically; refuse when nothing usable is left."""
+    failures = [c for c in curves if c.failure]
+    if failures:
+        log(f"tuning: {len(failures)} of {len(curves)} candidates failed numerically "
+            f"(first: {failures[0].spec.describe()}, {failures[0].failure})")
+    if not any(math.isfinite(c.best_score) for c in curves):
+        raise UserError(f"tuning found no usable parameters ({len(failures)} of {len(curves)} "
+                        "candidates failed numerically, the rest were ill-conditioned at every "
+                        "ridge); give --gamma and --ridge explicitly")

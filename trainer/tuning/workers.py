@@ -31,8 +31,11 @@ class Runner:
         from tqdm.auto import tqdm
 
         self.cores = usable_cores()
-        self.bar = tqdm(total=total_hint, desc="tuning", unit="fit", leave=False,
+        # the bar counts the LAPACK work that really runs: eigendecompositions and
+        # Cholesky factorizations, with the kernel settings raced out beside them
+        self.bar = tqdm(total=total_hint, desc="tuning", unit="factorization", leave=False,
                         disable=quiet or not sys.stderr.isatty(), file=sys.stderr)
+        self.counts = {"eigh": 0, "cholesky": 0, "raced out": 0}
         self.parallel = self.cores > 1 and PARALLEL_FROM <= n <= EXACT_MAX_ROWS
         blas_threads = max((p.get("num_threads", 1) for p in threadpool_info()
                             if p.get("user_api") == "blas"), default=1)
@@ -44,6 +47,32 @@ class Runner:
             self.how = (f"candidates one after another: BLAS already uses {blas_threads} "
                         f"thread(s) for each n = {n} decomposition")
 
+    def _count(self, key: str, k: int) -> None:
+        self.counts[key] += k
+        if key != "raced out":
+            if self.bar.n + k > self.bar.total:
+                self.bar.total = self.bar.n + k
+            self.bar.update(k)
+        self.bar.set_postfix(self.counts, refresh=True)
+
+    def count_eigh(self, decompositions: int) -> None:
+        """Count eigendecompositions run outside :meth:`__call__`."""
+        self._count("eigh", decompositions)
+
+    def step(self, factorizations: int) -> None:
+        """Count Cholesky factorizations run outside :meth:`__call__`."""
+        self._count("cholesky", factorizations)
+
+    def raced(self, k: int) -> None:
+        """Count kernel settings that left the race."""
+        if k:
+            self._count("raced out", k)
+
+    def expect(self, more: int) -> None:
+        """Raise the bar's total by work now foreseen."""
+        self.bar.total = self.bar.n + more
+        self.bar.refresh()
+
     def __call__(self, problem: Problem, specs: list[KernelSpec]) -> list[Curve]:
         if self.parallel and len(specs) > 1:
             from joblib import Parallel, delayed, parallel_config
@@ -53,12 +82,13 @@ class Runner:
                     delayed(evaluate)(problem, s) for s in specs)
             # the workers counted on their own copies
             problem.evaluated += len(specs) * problem.decompositions
-            self.bar.update(len(specs))
+            self._count("eigh", len(specs) * problem.decompositions)
             return out
         out = []
         for s in specs:
+            before = problem.evaluated
             out.append(evaluate(problem, s))
-            self.bar.update(1)
+            self._count("eigh", problem.evaluated - before)
         return out
 
     def close(self) -> None:

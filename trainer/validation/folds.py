@@ -3,9 +3,10 @@
 Three schemes, chosen by the data:
 
 * exact leave-one-out (closed form, :mod:`trainer.exact.loo`) up to :data:`EXACT_MAX_ROWS` rows;
-* above that, the n³ decompositions get too slow: k-fold cross-validation on a random
-  subsample (the fold systems are solved for the whole ridge path through their own
-  decompositions);
+* above that, exact leave-one-out on all rows costs n³ per scored point and keeps growing:
+  k-fold cross-validation on a random subsample of :data:`FALLBACK_ROWS` rows, whose cost
+  per scored point (one factorization per fold) matches leave-one-out's at the limit, so
+  the time of a search rises up to the limit and stays there (no step either way);
 * rows in time order (``--time``): forward-chaining folds (:func:`time_series_folds`), since
   leave-one-out is optimistic on an autocorrelated series (a row's neighbours in time are
   near-copies of it). Each such fold standardizes its features and centres its targets on
@@ -24,14 +25,18 @@ from trainer.errors import UserError
 from trainer.exact.fit import Standardizer
 
 #: Above this many training rows, tuning uses k-fold CV on a subsample instead of exact LOO.
-#: One kernel's search needs up to 15 decompositions (8 coarse widths, up to 2 edge
-#: extensions, 4 bisection steps, 1 for the ridge refinement); the limit bounds that
+#: Past the coarse stage a search scores about 20 points on all rows, each one Cholesky
+#: factorization and one triangular inverse of the n × n system; the limit bounds that
 #: search's time (timings in DEVELOPERS.md, "Measured limits"; ``bench/tuning_bench.py``
 #: measures them).
 EXACT_MAX_ROWS = 4000
-#: Fallback: subsample size and number of folds.
-FALLBACK_ROWS = 2400
-FALLBACK_FOLDS = 4
+#: Fallback: subsample size and number of folds. A point costs FALLBACK_FOLDS factorizations
+#: of (1 − 1/FALLBACK_FOLDS)·FALLBACK_ROWS rows: 5 · (0.8 · 3,700)³ / 3 ≈ 2 · 4,000³ / 3
+#: multiply-adds, those of the factorization and inverse of leave-one-out at EXACT_MAX_ROWS.
+FALLBACK_ROWS = 3700
+FALLBACK_FOLDS = 5
+#: With ``--time``, above EXACT_MAX_ROWS the time folds run on this many rows, evenly spaced.
+TIME_FALLBACK_ROWS = 2400
 #: Blocked cross-validation in time order (``--time``): forward-chaining folds as in
 #: scikit-learn's ``TimeSeriesSplit``, with a gap of this fraction of a fold between the end
 #: of the training rows and the validation block, so that rows right before a validation
@@ -54,7 +59,8 @@ class Problem:
     folds: list[tuple[np.ndarray, np.ndarray]] | None = None  # k-fold: (train, validation)
     #: time folds: the raw rows, so that each fold standardizes on its own training rows
     raw: tuple[np.ndarray, np.ndarray] | None = None
-    evaluated: int = 0
+    evaluated: int = 0  # eigendecompositions run
+    factorizations: int = 0  # Cholesky factorizations run (trainer.exact.cholesky_score)
     seconds: float = 0.0
     extra: dict = field(default_factory=dict)
 
@@ -132,7 +138,7 @@ def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float 
     if time_ordered:
         raw = (x_tr, y_tr)
         if n > EXACT_MAX_ROWS:  # every k-th row keeps the time order and the whole span
-            keep = np.unique(np.linspace(0, n - 1, FALLBACK_ROWS).round().astype(int))
+            keep = np.unique(np.linspace(0, n - 1, TIME_FALLBACK_ROWS).round().astype(int))
             x_s, y_c = x_s[keep], y_c[keep] - y_c[keep].mean(axis=0)
             raw = (x_tr[keep], y_tr[keep])
             info["fallback"] = {
