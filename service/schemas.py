@@ -69,7 +69,7 @@ class RangeFlag(Answer):
 
 
 class Envelope(Answer):
-    inside: bool = Field(description="Inside every training range and not novel.")
+    inside: bool = Field(description="No check flagged the row (flagged_by is empty).")
     out_of_range: dict[str, RangeFlag] = Field(
         description="Features outside their training range, with the training min and max."
     )
@@ -78,16 +78,35 @@ class Envelope(Answer):
         "threshold; above 1 means farther than 99 % of training rows are from theirs."
     )
     novel: bool = Field(description="novelty > 1")
+    t2: float | None = Field(
+        None, description="Hotelling's T² of the row in the training rows' principal "
+        "components divided by its 0.99 control limit; above 1 flags an unusual combination "
+        "within the training data's main directions. Absent for versions without the check.")
+    q: float | None = Field(
+        None, description="Squared residual off the principal components (Q, SPE) divided by "
+        "its 0.99 control limit; above 1 flags a row whose shape the training rows never "
+        "had (e.g. a reversed or ramped profile). Absent for versions without the check.")
+    target_out_of_range: dict[str, RangeFlag] | None = Field(
+        None, description="Targets whose (unclipped) prediction lies outside the target's "
+        "training range, with that range. Absent for versions that store no target ranges.")
+    flagged_by: list[Literal["range", "novelty", "t2", "q", "target_range"]] = Field(
+        description="Every check that flagged the row; empty when inside.")
 
 
 class Result(Answer):
     id: str | None = Field(None, description="The row's entry of the request's ids, when "
                            "it sent them.")
     value: float | list[float] = Field(description="Prediction in raw units; a list per row "
-                                       "when the model has several targets.")
+                                       "when the model has several targets. Clipped to the "
+                                       "version's target bounds when it has them.")
     interval: list[float] | list[list[float]] | None = Field(
-        None, description="[lower, upper] (one pair per target) when coverage was asked."
+        None, description="[lower, upper] (one pair per target) when coverage was asked; "
+        "clipped to the version's target bounds when it has them."
     )
+    interval_calibrated: bool | None = Field(
+        None, description="With an interval: true when the row is inside the envelope; false "
+        "when a check flagged it, where the interval keeps its usual width but its coverage "
+        "was never measured.")
     envelope: Envelope
 
 

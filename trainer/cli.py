@@ -46,7 +46,7 @@ def cmd_train(args) -> int:
         precision=args.precision, time=args.time, drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
-    )
+        target_range=args.target_range)
 
     def log(*a, **k):
         if not args.quiet:
@@ -256,6 +256,8 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")
     t.add_argument("--no-report", action="store_true", help="skip report.html")
+    t.add_argument("--target-range", metavar="LO:HI", help="per --target, comma-separated "
+                   "(0: low only): served predictions and intervals are clipped to it")
     t.add_argument("--precision", choices=PRECISIONS, default="float64",
                    help="serving precision; float32 records its measured error (default float64)")
     t.add_argument("--time", metavar="COL",

@@ -49,15 +49,16 @@ def train(opts: TrainOptions, log=print) -> dict:
     scores = metrics.held_out_metrics(plan.columns.targets, fitted.evidence)
     calib, intervals = calibration.calibrate(fitted.evidence, split.by_time)
     span = manifest.time_span(plan.columns.time, rows.times, rows.clock)
-    envelope, reference = envelope_stats.training_envelope(
-        fitted.envelope, plan.columns.features, plan.splits.seed, span)
+    envelope, envelope_arrays = envelope_stats.training_envelope(
+        fitted.envelope, plan.columns.features, plan.splits.seed, span, plan.columns.targets)
     check_x, check_y = fitted.check_rows
     check = precision_check(plan.output.precision, fitted.spec, fitted.x_train, fitted.dual,
                             check_x, list(plan.columns.targets), check_y, log)
     bundle = manifest.build_manifest(plan, rows, split, fitted, metrics=scores,
                                      envelope=envelope, intervals=intervals, check=check,
                                      span=span)
-    arrays = publish.bundle_arrays(fitted.spec, fitted.x_train, fitted.dual, reference, calib)
+    arrays = publish.bundle_arrays(fitted.spec, fitted.x_train, fitted.dual, envelope_arrays,
+                                    calib)
     report_args = (fitted.tuning, publish.report_points(fitted.evidence.holdout,
                                                         plan.splits.seed), calib)
     published = publish.publish(store, plan.output, bundle, arrays, report_args)

@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 from service.kernels import KERNEL_NAMES, KERNEL_PARAMS, KernelSpec, default_spec
 from service.store import Store
+from service.target_bounds import parse_target_range
 from trainer.errors import UserError
 from trainer.read import columns
 from trainer.read.source import Source
@@ -52,6 +53,7 @@ class TrainOptions:
     landmark_scheme: str | None = None
     cluster: str | None = None
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
+    target_range: str | None = None  # "LO:HI[,LO:HI…]", one per target (service.target_bounds)
 
 
 @dataclass(frozen=True)
@@ -122,6 +124,7 @@ class Output:
     report: bool
     precision: str
     quiet: bool
+    bounds: dict | None = None  # per target {"low", "high"} from --target-range
 
 
 @dataclass(frozen=True)
@@ -159,6 +162,7 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError("--solver cg solves the Nyström system; use --method nystrom")
     if opts.method not in METHODS:
         raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
+    target_bounds(opts)  # refused before any reading
     return store
 
 
@@ -198,5 +202,16 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
                       opts.solver),
         splits=Splits(opts.holdout, opts.seed),
         parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge),
-        output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet),
+        output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet,
+                      target_bounds(opts)),
     ), store
+
+
+def target_bounds(opts: TrainOptions) -> dict | None:
+    """The bounds ``--target-range`` gives, per target; None without it."""
+    if opts.target_range is None:
+        return None
+    try:
+        return parse_target_range(opts.target_range, list(opts.targets))
+    except ValueError as exc:
+        raise UserError(str(exc)) from None

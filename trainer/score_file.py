@@ -1,8 +1,11 @@
 """Offline batch predictions: a CSV in, a CSV out, streamed in chunks.
 
 Output columns: the model's features as read, then ``<target>_predicted`` for each target,
-``<target>_lower``/``<target>_upper`` when a coverage is asked, then the envelope flags
-``inside``, ``novelty`` and ``out_of_range`` (feature names joined by ``;``).
+``<target>_lower``/``<target>_upper`` when a coverage is asked, then the envelope columns of
+:func:`envelope_header` / :func:`envelope_cells`: ``inside``, ``novelty``, ``out_of_range``
+(feature names joined by ``;``), ``t2`` and ``q`` (empty for versions without the PCA
+check), ``target_out_of_range`` (target names), ``flagged_by`` (check names), and with a
+coverage ``interval_calibrated``.
 
 Numbers are written as plain numbers; every text cell (header, ``inside``, ``out_of_range``)
 is quoted and goes through :func:`service.text_safety.csv_cell`, so a name such as
@@ -55,6 +58,26 @@ def envelope_note(scored: Scored) -> str:
             f"extrapolations\nCaution: {BEFORE_ACTING}")
 
 
+def envelope_header(intervals: bool) -> list[str]:
+    """The envelope's column names, after the numbers (:func:`envelope_cells` fills them)."""
+    names = ["inside", "novelty", "out_of_range", "t2", "q", "target_out_of_range",
+             "flagged_by"]
+    return names + ["interval_calibrated"] if intervals else names
+
+
+def envelope_cells(e: dict, intervals: bool) -> list:
+    """One row's envelope cells in :func:`envelope_header` order: numbers as numbers, names
+    joined by ``;`` and made spreadsheet-safe, a check the version lacks left empty."""
+    cells = ["true" if e["inside"] else "false", e["novelty"],
+             ";".join(csv_cell(f) for f in e["out_of_range"]),
+             e.get("t2", ""), e.get("q", ""),
+             ";".join(csv_cell(t) for t in e.get("target_out_of_range") or ()),
+             ";".join(e["flagged_by"])]
+    if intervals:
+        cells.append("true" if e["inside"] else "false")
+    return cells
+
+
 def score_csv(model: Model, path, out, coverage: float | None = None, quiet: bool = False,
               block_bytes: int = BLOCK_BYTES) -> Scored:
     """Write predictions for every row of ``path`` to the text stream ``out``."""
@@ -72,24 +95,24 @@ def score_csv(model: Model, path, out, coverage: float | None = None, quiet: boo
     if half is not None:
         for t in model.targets:
             header += [f"{t}_lower", f"{t}_upper"]
-    writer.writerow([csv_cell(h) for h in header] + ["inside", "novelty", "out_of_range"])
+    intervals = half is not None
+    writer.writerow([csv_cell(h) for h in header] + envelope_header(intervals))
     bar = _progress(quiet)
     total = outside = 0
     for _start, x in chunks:
         if not x.shape[0]:
             continue
-        y, env = model.score(x)
+        y, env, lower, upper = model.answer(x, half)
         cols = [x, y]
-        if half is not None:
+        if intervals:
             bounds = np.empty((y.shape[0], 2 * y.shape[1]))
-            bounds[:, 0::2] = y - half
-            bounds[:, 1::2] = y + half
+            bounds[:, 0::2] = lower
+            bounds[:, 1::2] = upper
             cols.append(bounds)
         numbers = np.hstack(cols)
         for row, e in zip(numbers, env, strict=True):
-            writer.writerow(row.tolist() + [  # floats: unquoted, written with repr
-                "true" if e["inside"] else "false", e["novelty"],
-                ";".join(csv_cell(f) for f in e["out_of_range"])])
+            # floats: unquoted, written with repr
+            writer.writerow(row.tolist() + envelope_cells(e, intervals))
         total += x.shape[0]
         outside += sum(not e["inside"] for e in env)
         if bar is not None:

@@ -1,0 +1,85 @@
+"""Shape of a row: Hotelling's T² and the residual Q (SPE) of a PCA of the training rows.
+
+Per-feature ranges and the nearest-neighbour novelty look at each row's values and at its
+distance to the data. A spectrum sent reversed, or a straight ramp across 100 correlated
+columns, can pass both: every value is plausible and the row is not far in Euclidean terms.
+What changes is the row's *shape*. A principal component model of the standardized training
+rows sees it:
+
+* T² = Σ_a t_a² / λ_a, with scores t = (s(x) − μ)·P over the k kept components
+  (loadings P, d × k, and their variances λ): how unusual the row is *within* the plane
+  the training rows span (Hotelling 1931; Jackson, "A user's guide to principal components",
+  Wiley 1991).
+* Q = ‖z − t Pᵀ‖² = ‖z‖² − ‖t‖², z = s(x) − μ (P has orthonormal columns): the squared
+  distance *off* that plane, the squared prediction error (Jackson & Mudholkar,
+  Technometrics 1979).
+
+The trainer fits the components and their control limits (:mod:`trainer.pca_limits`); both
+are reported here as ratios to their limits, like the novelty score: above 1 flags the row.
+The cost per batch is one (m, d) × (d, k) product and two row sums.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+class PcaDomain:
+    """T² and Q of raw rows against a stored principal component model.
+
+    Parameters
+    ----------
+    loadings : (d, k) orthonormal columns P, in standardized feature space.
+    center : (d,) mean μ of the standardized rows the components were fitted on.
+    variances : (k,) variance λ_a of each kept score (ddof = 1).
+    t2_limit, q_limit : control limits; a row whose statistic exceeds its limit is flagged.
+        ``q_limit`` is None when no variance was left off the plane (no Q check).
+    mean, scale : the model's standardization s(x) = (x − mean) / scale, folded in here so
+        that raw rows need one pass: z = (x − (mean + μ·scale)) / scale.
+    """
+
+    def __init__(self, loadings: np.ndarray, center: np.ndarray, variances: np.ndarray,
+                 t2_limit: float, q_limit: float | None, mean: np.ndarray,
+                 scale: np.ndarray):
+        p = np.ascontiguousarray(loadings, dtype=np.float64)
+        if p.ndim != 2 or p.shape[0] != mean.shape[0] or variances.shape != (p.shape[1],):
+            raise ValueError(f"PCA loadings {p.shape}, variances {variances.shape} and "
+                             f"{mean.shape[0]} features disagree")
+        self.k = p.shape[1]
+        # T² = ‖t / √λ‖²: the scaling is folded into a second copy of the loadings
+        self.loadings = p
+        self.whitened = np.ascontiguousarray(p / np.sqrt(variances)[None, :])
+        self.offset = mean + np.asarray(center, dtype=np.float64) * scale
+        self.inv_scale = 1.0 / scale
+        self.t2_limit = float(t2_limit)
+        self.q_limit = None if q_limit is None else float(q_limit)
+        # one product gives the whitened scores and, for Q, the plain scores too
+        self.operand = self.whitened if self.q_limit is None else np.ascontiguousarray(
+            np.hstack([self.whitened, p]))
+
+    def statistics(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+        """(T², Q) of raw rows ``x`` (m, d); Q is None without a Q limit."""
+        z = (x - self.offset) * self.inv_scale
+        both = z @ self.operand
+        w = both[:, : self.k]
+        t2 = np.einsum("ij,ij->i", w, w)
+        if self.q_limit is None:
+            return t2, None
+        t = both[:, self.k:]
+        q = np.einsum("ij,ij->i", z, z) - np.einsum("ij,ij->i", t, t)
+        return t2, np.maximum(q, 0.0, out=q)
+
+    def ratios(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+        """(T² / T²-limit, Q / Q-limit) of raw rows: above 1 flags the row."""
+        t2, q = self.statistics(x)
+        return t2 / self.t2_limit, None if q is None else q / self.q_limit
+
+
+def from_bundle(manifest_part: dict | None, arrays: dict[str, np.ndarray], mean: np.ndarray,
+                scale: np.ndarray) -> PcaDomain | None:
+    """The bundle's PCA model, or None when the version stores none (older bundles)."""
+    if not manifest_part or "pca_loadings" not in arrays:
+        return None
+    return PcaDomain(arrays["pca_loadings"], arrays["pca_center"],
+                     np.asarray(manifest_part["variances"], dtype=np.float64),
+                     manifest_part["t2_limit"], manifest_part.get("q_limit"), mean, scale)
