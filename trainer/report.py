@@ -11,7 +11,6 @@ Names from the data are shown literally: in plots through
 from __future__ import annotations
 
 import base64
-import html
 import io
 import math
 from pathlib import Path
@@ -19,10 +18,13 @@ from pathlib import Path
 import numpy as np
 
 from service.cautions import BEFORE_ACTING
+from service.intervals import measured_coverage
 from service.text_safety import html_name, plot_label
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
 from trainer.cautions import R2_POOR, poor_holdout
-from trainer.show import ERROR_KINDS, fmt
+from trainer.report_envelope import envelope_section
+from trainer.report_tables import Raw, esc, num, table
+from trainer.show import ERROR_KINDS
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
@@ -34,30 +36,7 @@ img{max-width:100%}.note{color:#555;font-size:.9rem}
 """
 
 
-def _esc(value) -> str:
-    return html.escape(str(value))
 
-
-def _num(value, digits: int = 4) -> str:
-    if value is None:
-        return "–"
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return "∞" if value > 0 else "–"
-        return fmt(value, digits)
-    return _esc(value)
-
-
-def _table(headers: list[str], rows: list[list], left: int = 1) -> str:
-    """HTML table; the first ``left`` columns are left-aligned text."""
-    def cell(tag, i, v):
-        cls = ' class="l"' if i < left else ""
-        return f"<{tag}{cls}>{v if isinstance(v, _Raw) else _num(v)}</{tag}>"
-
-    head = "".join(cell("th", i, _Raw(_esc(h))) for i, h in enumerate(headers))
-    body = "".join("<tr>" + "".join(cell("td", i, v) for i, v in enumerate(r)) + "</tr>"
-                   for r in rows)
-    return f"<table><tr>{head}</tr>{body}</table>"
 
 
 def _span_text(span: dict | None) -> str:
@@ -65,10 +44,6 @@ def _span_text(span: dict | None) -> str:
     if not span:
         return "– (no --time column: random holdout)"
     return html_name(span["column"]) + f": {span['start']} → {span['end']}"  # str part escaped
-
-
-class _Raw(str):
-    """Already-escaped HTML."""
 
 
 def _png(fig) -> str:
@@ -190,7 +165,7 @@ def _metrics_rows(metrics: dict) -> list[list]:
     rows = []
     for kind, label in ERROR_KINDS:
         for target, m in (metrics.get(kind) or {}).items():
-            rows.append([_Raw(_esc(label)), _Raw(html_name(target)), m["rmse"], m["mae"], m["r2"],
+            rows.append([Raw(esc(label)), Raw(html_name(target)), m["rmse"], m["mae"], m["r2"],
                          m["rows"]])
     return rows
 
@@ -198,7 +173,7 @@ def _metrics_rows(metrics: dict) -> list[list]:
 def _cautions(manifest: dict) -> str:
     """The caution section: poor holdout scores, extrapolation flags, what the intervals
     promise, and review before acting."""
-    items = [f"<li><b>Poor holdout score.</b> {_esc(w)}.</li>"
+    items = [f"<li><b>Poor holdout score.</b> {esc(w)}.</li>"
              for w in poor_holdout(manifest.get("metrics", {}))]
     if not (manifest.get("metrics") or {}).get("holdout"):
         items.append("<li><b>No holdout.</b> Nothing scored this model on rows it did not "
@@ -214,58 +189,58 @@ def _cautions(manifest: dict) -> str:
         items.append("<li><b>Intervals.</b> The jackknife has no finite-sample coverage "
                      "guarantee; trust the coverage measured on the holdout (Prediction "
                      "intervals below), not the nominal level.</li>")
-    items.append(f"<li><b>Before acting.</b> {_esc(BEFORE_ACTING)}</li>")
+    items.append(f"<li><b>Before acting.</b> {esc(BEFORE_ACTING)}</li>")
     return ("<h2>Cautions</h2><ul>" + "".join(items) + "</ul>"
             f"<p class=note>A holdout R² below {R2_POOR} is flagged: the model then explains "
             "less than half of the target's variance on unseen rows.</p>")
 
 
 def _head(manifest: dict) -> list[str]:
-    title = f"{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}"
+    title = f"{esc(manifest.get('model', ''))} v{esc(manifest.get('version', ''))}"
     return [f"<!doctype html><html lang=en><head><meta charset=utf-8>"
             f"<title>{title} — training report</title><style>{_STYLE}</style></head><body>",
             f"<h1>{title}: training report</h1>",
-            f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>"]
+            f"<p class=note>created {esc(manifest.get('created', '?'))}</p>"]
 
 
 def _data_section(manifest: dict) -> list[str]:
     tr = manifest.get("training", {})
-    return ["<h2>Data</h2>", _table(["", ""], [
-        [_Raw("file"), _Raw(_esc(tr.get("data_file")))],
-        [_Raw("sha256"), _Raw(f"<code>{_esc(tr.get('data_sha256'))}</code>")],
-        [_Raw("rows"), tr.get("rows")],
-        [_Raw("rows read"), _Raw(_esc((tr.get("row_counts") or {}).get("summary", "–")))],
-        [_Raw("method"), _Raw(_esc(f"{tr.get('method', 'exact')}: "
+    return ["<h2>Data</h2>", table(["", ""], [
+        [Raw("file"), Raw(esc(tr.get("data_file")))],
+        [Raw("sha256"), Raw(f"<code>{esc(tr.get('data_sha256'))}</code>")],
+        [Raw("rows"), tr.get("rows")],
+        [Raw("rows read"), Raw(esc((tr.get("row_counts") or {}).get("summary", "–")))],
+        [Raw("method"), Raw(esc(f"{tr.get('method', 'exact')}: "
                                    f"{tr.get('method_reason', '')}"))],
-        [_Raw("time span"), _Raw(_span_text(tr.get("time")))],
-        [_Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
+        [Raw("time span"), Raw(_span_text(tr.get("time")))],
+        [Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
                                f" seed {tr.get('seed')})"],
-        [_Raw("features"), _Raw(", ".join(map(html_name, manifest["features"])))],
-        [_Raw("targets"), _Raw(", ".join(map(html_name, manifest["targets"])))],
-        [_Raw("final fit"), _Raw(_esc(tr.get("final_fit", "")))],
+        [Raw("features"), Raw(", ".join(map(html_name, manifest["features"])))],
+        [Raw("targets"), Raw(", ".join(map(html_name, manifest["targets"])))],
+        [Raw("final fit"), Raw(esc(tr.get("final_fit", "")))],
     ], left=2)]
 
 
 def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
     kern = manifest["kernel"]
-    params = ", ".join(f"{k}={_num(v, 6)}" for k, v in kern.get("params", {}).items())
-    rows = [[_Raw("kernel"), _Raw(_esc(f"{kern['name']}({params})"))],
-            [_Raw("ridge λ"), _Raw(_num(manifest["ridge"], 6))]]
+    params = ", ".join(f"{k}={num(v, 6)}" for k, v in kern.get("params", {}).items())
+    rows = [[Raw("kernel"), Raw(esc(f"{kern['name']}({params})"))],
+            [Raw("ridge λ"), Raw(num(manifest["ridge"], 6))]]
     if tuning:
-        rows += [[_Raw("how"), _Raw(_esc(tuning.get("method", "")))],
-                 [_Raw("criterion"), _Raw(_esc(tuning.get("criterion", "")))],
-                 [_Raw("searched"), _Raw(_esc(", ".join(tuning.get("searched", []))))],
-                 [_Raw("fallback"), _Raw(_esc(tuning.get("fallback") or "no"))],
-                 [_Raw("summary"), _Raw(_esc(tuning.get("summary", "")))]]
+        rows += [[Raw("how"), Raw(esc(tuning.get("method", "")))],
+                 [Raw("criterion"), Raw(esc(tuning.get("criterion", "")))],
+                 [Raw("searched"), Raw(esc(", ".join(tuning.get("searched", []))))],
+                 [Raw("fallback"), Raw(esc(tuning.get("fallback") or "no"))],
+                 [Raw("summary"), Raw(esc(tuning.get("summary", "")))]]
     else:
-        rows.append([_Raw("how"), _Raw("given on the command line (no tuning)")])
-    out = ["<h2>Chosen parameters</h2>", _table(["", ""], rows, left=2)]
+        rows.append([Raw("how"), Raw("given on the command line (no tuning)")])
+    out = ["<h2>Chosen parameters</h2>", table(["", ""], rows, left=2)]
     if tuning and len(tuning.get("per_kernel", {})) > 1:
         out.append("<p>Best of each kernel compared:</p>")
-        out.append(_table(["kernel", "parameters", "ridge", "criterion"], [
-            [_Raw(_esc(k + (f" (raced out: {v['raced_out']}, {v.get('rows')} rows)"
+        out.append(table(["kernel", "parameters", "ridge", "criterion"], [
+            [Raw(esc(k + (f" (raced out: {v['raced_out']}, {v.get('rows')} rows)"
                                 if v.get("raced_out") else ""))),
-             _Raw(_esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items()) or "–")),
+             Raw(esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items()) or "–")),
              v["ridge"], v["score"]]
             for k, v in tuning["per_kernel"].items()], left=2))
     return out
@@ -273,14 +248,14 @@ def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
 
 def _metrics_section(manifest: dict, tuning: dict | None) -> list[str]:
     out = ["<h2>Metrics</h2>",
-           _table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
+           table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
                   _metrics_rows(manifest.get("metrics", {})), left=2),
            "<p class=note>LOO: exact leave-one-out of the final model (all rows); "
            "holdout: scored on held-out rows by a model that never saw them; "
            "validation: the Nyström validation part, which chose the final ridge.</p>"]
     img = _curve_plot(tuning, list(manifest["targets"])) if tuning else None
     if img:
-        out += [f"<h2>Tuning: {_esc(tuning['error_label'])} against ridge</h2>", img,
+        out += [f"<h2>Tuning: {esc(tuning['error_label'])} against ridge</h2>", img,
                 "<p class=note>One line per kernel parameter setting tried; "
                 "the star marks the choice.</p>"]
     return out
@@ -306,7 +281,7 @@ def _intervals_section(manifest: dict, points: dict | None,
         return ["<h2>Prediction intervals</h2>", "<p>No interval calibration stored.</p>"]
     targets = list(manifest["targets"])
     out = ["<h2>Prediction intervals</h2>",
-           f"<p>{_esc(intervals['method'])}; {intervals['calibration_rows']} "
+           f"<p>{esc(intervals['method'])}; {intervals['calibration_rows']} "
            "calibration residuals.</p>"]
     cov = intervals.get("holdout_coverage")
     note = intervals.get("holdout_coverage_method")
@@ -316,37 +291,25 @@ def _intervals_section(manifest: dict, points: dict | None,
         note = ("half-widths from the stored calibration residuals (these include the "
                 "holdout rows, so the check is optimistic)")
     if cov:
-        rows = [[_Raw(html_name(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
-                 c["rows"]] for c in cov for j, t in enumerate(targets)]
-        out += [_table(["target", "nominal", "holdout coverage", "half-width", "rows"], rows),
-                f"<p class=note>{_esc(note)}</p>"]
+        rows = [_coverage_cells(t, j, c) for c in cov for j, t in enumerate(targets)]
+        out += [table(["target", "nominal", "holdout coverage", "half-width", "rows"], rows),
+                f"<p class=note>{esc(note)}</p>"]
     if calib is not None:
         out.append(_calib_hist(np.asarray(calib, dtype=float), targets,
                                intervals.get("residuals", "calibration")))
     return out
 
 
-def _envelope_section(manifest: dict) -> list[str]:
-    env = manifest.get("envelope", {})
-    std = manifest.get("standardization", {})
-    rows = []
-    for j, f in enumerate(manifest["features"]):
-        r = env.get("ranges", {}).get(f, {})
-        rows.append([_Raw(html_name(f)), r.get("min"), r.get("max"),
-                     (std.get("mean") or [None] * (j + 1))[j],
-                     (std.get("scale") or [None] * (j + 1))[j]])
-    out = ["<h2>Training envelope</h2>",
-           _table(["feature", "min", "max", "mean", "scale (SD)"], rows)]
-    nov = env.get("novelty", {})
-    if nov:
-        out.append(_table(["", ""], [
-            [_Raw("novelty method"), _Raw(_esc(nov.get("method", "")))],
-            [_Raw("k"), nov.get("k")],
-            [_Raw("threshold distance"), nov.get("threshold_distance")],
-            [_Raw("calibration"), _Raw(_esc(nov.get("calibration", "")))],
-            [_Raw("training rows flagged"), nov.get("training_rows_flagged")],
-        ], left=2))
-    return out
+def _coverage_cells(target: str, j: int, level: dict) -> list:
+    """One row of the coverage table; a level the residuals cannot give (unbounded
+    half-width) says so instead of a coverage of 100 %."""
+    measured = measured_coverage(level)
+    if measured is None:
+        gap = Raw("not available: too few residuals")
+        return [Raw(html_name(target)), level["nominal"], gap, Raw("unbounded"),
+                level["rows"]]
+    return [Raw(html_name(target)), level["nominal"], measured[j], level["half_width"][j],
+            level["rows"]]
 
 
 def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
@@ -357,7 +320,7 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
     if holdout_points:
         parts += _holdout_section(manifest, holdout_points)
     parts += _intervals_section(manifest, holdout_points, calib)
-    parts += _envelope_section(manifest)
+    parts += envelope_section(manifest)
     parts.append("</body></html>")
     return "\n".join(parts)
 

@@ -9,8 +9,17 @@ from __future__ import annotations
 
 import sys
 
+from service.intervals import measured_coverage
 from service.text_safety import visible
 from service.version_facts import features_hash
+
+
+def coverage_text(level: dict) -> str:
+    """One level's measured coverage, or why there is none (too few residuals)."""
+    measured = measured_coverage(level)
+    if measured is None:
+        return "not available: too few calibration residuals for this coverage"
+    return ", ".join(f"{v:.1%}" for v in measured)
 
 
 def table(headers: list[str], rows: list[list], out=None) -> None:
@@ -122,8 +131,8 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         lines.append(("intervals", m["intervals"]["method"]))
         cov = m["intervals"].get("holdout_coverage")
         lines.append(("holdout coverage", "; ".join(
-            f"{c['nominal']:.0%} → " + ", ".join(f"{v:.1%}" for v in c["empirical"])
-            for c in cov) if cov else "not measured"))
+            f"{c['nominal']:.0%} → " + coverage_text(c) for c in cov) if cov
+            else "not measured"))
     lines.append(("novelty", f"k={nov.get('k')}, threshold distance "
                              f"{fmt(nov.get('threshold_distance', float('nan')))} "
                              f"({nov.get('calibration', '')})"))
