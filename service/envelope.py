@@ -141,6 +141,8 @@ def _target_flags(y: np.ndarray, targets: list[str], lo: np.ndarray, hi: np.ndar
                   ) -> list[dict]:
     """Per row, the targets whose prediction lies outside their training range."""
     outside = (y < lo) | (y > hi)
+    if not outside.any():  # the common case: one call, no per-row work
+        return [{} for _ in range(y.shape[0])]
     rows = outside.any(axis=1).tolist()
     return [{targets[j]: {"value": float(y[i, j]), "min": float(lo[j]), "max": float(hi[j])}
              for j in np.flatnonzero(outside[i])} if rows[i] else {}

@@ -53,26 +53,38 @@ class PcaDomain:
         self.inv_scale = 1.0 / scale
         self.t2_limit = float(t2_limit)
         self.q_limit = None if q_limit is None else float(q_limit)
-        # one product gives the whitened scores and, for Q, the plain scores too
-        self.operand = self.whitened if self.q_limit is None else np.ascontiguousarray(
-            np.hstack([self.whitened, p]))
+        # one product gives the whitened scores and, for Q, the plain scores too; a second,
+        # small one sums their squares, already divided by the limits: [T²/limit, ‖t‖²/limit]
+        k = self.k
+        if self.q_limit is None:
+            self.operand = self.whitened
+            self.summer = np.full((k, 1), 1.0 / self.t2_limit)
+        else:
+            self.operand = np.ascontiguousarray(np.hstack([self.whitened, p]))
+            self.summer = np.zeros((2 * k, 2))
+            self.summer[:k, 0] = 1.0 / self.t2_limit
+            self.summer[k:, 1] = 1.0 / self.q_limit
 
     def statistics(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
         """(T², Q) of raw rows ``x`` (m, d); Q is None without a Q limit."""
-        z = (x - self.offset) * self.inv_scale
-        both = z @ self.operand
-        w = both[:, : self.k]
-        t2 = np.einsum("ij,ij->i", w, w)
-        if self.q_limit is None:
-            return t2, None
-        t = both[:, self.k:]
-        q = np.einsum("ij,ij->i", z, z) - np.einsum("ij,ij->i", t, t)
-        return t2, np.maximum(q, 0.0, out=q)
+        t2, q = self.ratios(x)
+        return t2 * self.t2_limit, None if q is None else q * self.q_limit
 
     def ratios(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
-        """(T² / T²-limit, Q / Q-limit) of raw rows: above 1 flags the row."""
-        t2, q = self.statistics(x)
-        return t2 / self.t2_limit, None if q is None else q / self.q_limit
+        """(T² / T²-limit, Q / Q-limit) of raw rows ``x`` (m, d): above 1 flags the row.
+        Q is None without a Q limit."""
+        z = x - self.offset
+        z *= self.inv_scale
+        both = z @ self.operand
+        both *= both
+        sums = both @ self.summer
+        if self.q_limit is None:
+            return sums[:, 0], None
+        z *= z
+        q = z.sum(axis=1)
+        q *= 1.0 / self.q_limit
+        q -= sums[:, 1]  # Q = ‖z‖² − ‖t‖², each over the limit
+        return sums[:, 0], np.maximum(q, 0.0, out=q)
 
 
 def from_bundle(manifest_part: dict | None, arrays: dict[str, np.ndarray], mean: np.ndarray,

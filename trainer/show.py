@@ -22,6 +22,28 @@ def coverage_text(level: dict) -> str:
     return ", ".join(f"{v:.1%}" for v in measured)
 
 
+def envelope_lines(m: dict) -> list[tuple[str, str]]:
+    """``kridge inspect``'s lines for the PCA shape check and the targets' ranges/bounds."""
+    env, lines = m.get("envelope") or {}, []
+    pca = env.get("pca")
+    if pca:
+        q = (f"Q limit {fmt(pca['q_limit'])}" if pca.get("q_limit") is not None
+             else "no Q (nothing left off the components)")
+        lines.append(("shape check", f"T² and Q on {pca['components']} components "
+                      f"({pca['explained_variance']:.1%} of the variance); at {pca['level']}: "
+                      f"T² limit {fmt(pca['t2_limit'])}, {q}"))
+    ranges = env.get("target_ranges")
+    if ranges:
+        lines.append(("target ranges", ", ".join(
+            f"{t} {fmt(r['min'])} … {fmt(r['max'])}" for t, r in ranges.items())))
+    bounds = (m.get("target_bounds") or {}).get("bounds")
+    if bounds:
+        lines.append(("clipped to", ", ".join(
+            f"{t} {'−∞' if b['low'] is None else fmt(b['low'])} … "
+            f"{'+∞' if b['high'] is None else fmt(b['high'])}" for t, b in bounds.items())))
+    return lines
+
+
 def table(headers: list[str], rows: list[list], out=None) -> None:
     """Print an aligned text table."""
     out = out or sys.stdout
@@ -136,6 +158,7 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     lines.append(("novelty", f"k={nov.get('k')}, threshold distance "
                              f"{fmt(nov.get('threshold_distance', float('nan')))} "
                              f"({nov.get('calibration', '')})"))
+    lines += envelope_lines(m)
     lines.append(("precision", precision_line(m.get("precision", "float64"),
                                               m.get("precision_check"))))
     return lines
