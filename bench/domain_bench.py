@@ -39,6 +39,28 @@ def best_of(call, repeats: int = 2000) -> float:
     return best
 
 
+def flag_rates(model, x: np.ndarray, fresh_rows: int = 20_000) -> dict:
+    """Share of fresh rows drawn like the training rows that each check flags (stated rate
+    0.01 for T² and Q), with a normal-approximation 95 % binomial interval, and the checks
+    that flag a reversed and a ramped row held inside every feature's range."""
+    from bench.spectra_data import ramp_row, reversed_row
+
+    fresh, _ = spectra(fresh_rows, seed=11)
+    _, env = model.score(fresh)
+    out = {}
+    for check in ("range", "novelty", "t2", "q", "target_range"):
+        p = float(np.mean([check in e["flagged_by"] for e in env]))
+        half = 1.96 * (p * (1 - p) / fresh_rows) ** 0.5
+        out[check] = p
+        print(f"fresh rows flagged by {check:<12} {p:.4f} ± {half:.4f} (of {fresh_rows})")
+    for label, row in (("reversed row", reversed_row(x, 0)), ("ramp row", ramp_row(x))):
+        _, e = model.score(np.clip(row, model.lo, model.hi)[None, :])
+        out[label] = e[0]["flagged_by"]
+        print(f"{label}, held inside every range: flagged by {e[0]['flagged_by']} "
+              f"(t2 {e[0]['t2']}, q {e[0]['q']})")
+    return out
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=2000, help="training rows (default 2000)")
@@ -86,6 +108,7 @@ def main() -> int:
     figures["score_1_row_us"], figures["score_1_row_without_us"] = score * 1e6, bare * 1e6
     print(f"Model.score of 1 row: {score * 1e6:.1f} µs with T², Q and the target range, "
           f"{bare * 1e6:.1f} µs without; ratio {score / bare:.2f}")
+    figures["rates"] = flag_rates(model, x)
     save(args.json, "domain", figures)
     return 0
 

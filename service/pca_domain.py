@@ -21,6 +21,8 @@ The cost per batch is one (m, d) × (d, k) product and two row sums.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 
@@ -78,13 +80,27 @@ class PcaDomain:
         both = z @ self.operand
         both *= both
         sums = both @ self.summer
+        t2 = sums[:, 0]
         if self.q_limit is None:
-            return sums[:, 0], None
+            return _finite(t2), None
         z *= z
         q = z.sum(axis=1)
         q *= 1.0 / self.q_limit
         q -= sums[:, 1]  # Q = ‖z‖² − ‖t‖², each over the limit
-        return sums[:, 0], np.maximum(q, 0.0, out=q)
+        np.maximum(q, 0.0, out=q)
+        if not math.isfinite(t2.sum() + q.sum()):
+            return _finite(t2), _finite(q)
+        return t2, q
+
+
+def _finite(v: np.ndarray) -> np.ndarray:
+    """A row so far out that its statistic overflowed (inputs near ±1e12 on a feature of
+    tiny spread) is as flagged as a row can be: the largest float, never NaN or ∞, which
+    JSON cannot carry."""
+    return np.nan_to_num(v, nan=_LARGEST, posinf=_LARGEST)
+
+
+_LARGEST = float(np.finfo(np.float64).max)
 
 
 def from_bundle(manifest_part: dict | None, arrays: dict[str, np.ndarray], mean: np.ndarray,
