@@ -215,6 +215,15 @@ class ModelSummary(Answer):
     metrics: dict[str, Any] | None
     ranges: dict[str, Range] = Field(description="Each feature's training range.")
     novelty: dict[str, Any] = Field(description="How the novelty score is calibrated.")
+    shape_check: dict[str, Any] | None = Field(
+        None, description="The PCA check behind t2 and q: components kept and the rule, "
+        "their variances, both control limits and their formulas. Absent for versions "
+        "trained without it.")
+    target_ranges: dict[str, Range] | None = Field(
+        None, description="Each target's training range, behind target_out_of_range.")
+    target_bounds: dict[str, dict[str, float | None]] | None = Field(
+        None, description="Bounds from kridge train --target-range that predictions and "
+        "interval ends are clipped to, per target: low and high (null: no bound).")
     intervals: bool = Field(description="Whether the version can answer a coverage.")
 
 

@@ -166,3 +166,20 @@ def test_manifest_states_the_rule_and_features_match(spectra_model):
     assert 1 <= pca["components"] <= 10 and pca["explained_variance"] >= 0.95
     assert model.features == FEATURES
     assert model.manifest["arrays"]["pca_loadings"]["sha256"]
+
+
+def test_nystrom_fits_the_check_on_its_sample_and_serves_it(tmp_path):
+    from trainer.cli import main
+
+    x, y = spectra(1500, seed=6)
+    write_csv(tmp_path / "t.csv", x, y)
+    assert main(["train", str(tmp_path / "t.csv"), "--target", ",".join(TARGETS), "--name",
+                 "nys", "--method", "nystrom", "--landmarks", "100", "--gamma", "1e-5",
+                 "--ridge", "1e-3", "--release", "--no-report", "--quiet",
+                 "--store", str(tmp_path / "s")]) == 0
+    model = load_model(str(tmp_path / "s"), "nys")
+    env = model.manifest["envelope"]
+    assert "uniform sample" in env["pca"]["rows_from"] and env["pca"]["rows"] < 1500
+    assert "uniform sample" in env["target_ranges_from"]
+    _, scored = model.score(np.clip(reversed_row(x, 0), model.lo, model.hi)[None, :])
+    assert "q" in scored[0]["flagged_by"]
