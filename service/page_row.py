@@ -153,16 +153,16 @@ def shape_lines(envelope: dict) -> list[str]:
     lines = []
     if "t2" in envelope:
         t2 = envelope["t2"]
-        lines.append(f"Unusual combination (T² {number(t2, 3)} of its limit): the row is "
-                     "far along the training data's main directions of variation."
-                     if t2 > 1 else f"T² {number(t2, 3)} of its limit: an ordinary "
-                     "combination along the training data's main directions.")
+        lines.append(f"Unusual combination: T² is {number(t2, 3)} times its limit; the row "
+                     "is far along the training data's main directions of variation."
+                     if t2 > 1 else f"T² is {number(t2, 3)} times its limit (1 or less: an "
+                     "ordinary combination along the training data's main directions).")
     if "q" in envelope:
         q = envelope["q"]
-        lines.append(f"Unfamiliar shape (Q {number(q, 3)} of its limit): the row does not "
-                     "follow the pattern the training rows share across features."
-                     if q > 1 else f"Q {number(q, 3)} of its limit: the row follows the "
-                     "pattern the training rows share across features.")
+        lines.append(f"Unfamiliar shape: Q is {number(q, 3)} times its limit; the row does "
+                     "not follow the pattern the training rows share across features."
+                     if q > 1 else f"Q is {number(q, 3)} times its limit (1 or less: the row "
+                     "follows the pattern the training rows share across features).")
     return lines
 
 

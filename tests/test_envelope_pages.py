@@ -75,11 +75,12 @@ def _try(client, row) -> str:
 
 def test_try_page_explains_the_shape_check_and_uncalibrated_interval(client):
     flipped = _try(client, reversed_row(client.x, 3))
-    assert "Unfamiliar shape (Q" in flipped
+    assert "Unfamiliar shape: Q is" in flipped
     assert "not calibrated here" in flipped
     plain = _try(client, client.x[3])
     assert "Inside the training envelope: no check flagged the row." in plain
-    assert "not calibrated here" not in plain and "follows the pattern" in plain
+    assert "not calibrated here" not in plain and "Unfamiliar" not in plain
+    assert "follows the pattern" in plain
 
 
 def test_model_page_shows_the_shape_check_and_bounds(client):

@@ -180,9 +180,13 @@ def _cautions(manifest: dict) -> str:
                      "see; its errors on new rows are unknown.</li>")
     items.append("<li><b>Extrapolation.</b> Each prediction carries envelope flags: "
                  "<code>out_of_range</code> names the features outside their training "
-                 "[min, max], <code>novel</code> marks inputs far from every training row "
-                 "(see Training envelope below). A flagged prediction is an extrapolation "
-                 "and may be far off.</li>")
+                 "[min, max], <code>novel</code> marks inputs far from every training row, "
+                 "<code>t2</code> and <code>q</code> above 1 mark a row whose combination or "
+                 "shape the training rows never had, <code>target_out_of_range</code> a "
+                 "prediction outside its target's training range; <code>flagged_by</code> "
+                 "names them (see Training envelope below). A flagged prediction is an "
+                 "extrapolation and may be far off, and its interval is not calibrated "
+                 "there.</li>")
     intervals = manifest.get("intervals") or {}
     if intervals.get("name") == "jackknife" or str(intervals.get("method", "")).startswith(
             "jackknife"):
