@@ -105,9 +105,14 @@ _LARGEST = float(np.finfo(np.float64).max)
 
 def from_bundle(manifest_part: dict | None, arrays: dict[str, np.ndarray], mean: np.ndarray,
                 scale: np.ndarray) -> PcaDomain | None:
-    """The bundle's PCA model, or None when the version stores none (older bundles)."""
-    if not manifest_part or "pca_loadings" not in arrays:
+    """The bundle's PCA model, or None when the version stores none (older bundles). A
+    manifest that names the check without its arrays is incomplete (KeyError, which the
+    loader reports as such)."""
+    if not manifest_part:
         return None
+    for key in ("pca_loadings", "pca_center"):
+        if key not in arrays:
+            raise KeyError(key)
     return PcaDomain(arrays["pca_loadings"], arrays["pca_center"],
                      np.asarray(manifest_part["variances"], dtype=np.float64),
                      manifest_part["t2_limit"], manifest_part.get("q_limit"), mean, scale)

@@ -133,3 +133,16 @@ def test_old_bundle_serves_without_the_new_checks(tmp_path):
     assert "t2" not in env and "q" not in env and "target_out_of_range" not in env
     assert env["flagged_by"] == [c for c, hit in (("range", env["out_of_range"]),
                                                   ("novelty", env["novel"])) if hit]
+
+
+def test_a_manifest_naming_the_check_without_its_arrays_is_refused(trained, tmp_path):
+    from service.model import Model
+    from service.store import Store
+
+    store, _, _ = trained
+    st = Store(str(store))
+    manifest = st.read_manifest("nir", 1)
+    arrays = dict(st.load_arrays("nir", 1, manifest))
+    del arrays["pca_loadings"]
+    with pytest.raises(KeyError, match="pca_loadings"):
+        Model(manifest, arrays)
