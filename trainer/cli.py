@@ -183,25 +183,9 @@ def cmd_verify(args) -> int:
 
 
 def cmd_predict(args) -> int:
-    from service.model import load_model
-    from trainer.score_file import envelope_note, score_csv
+    from trainer.predict_command import run
 
-    model = load_model(_store(args), args.model, args.version and check_version(args.version))
-    if args.out:
-        tmp = f"{args.out}.partial"
-        try:
-            with open(tmp, "w", newline="") as fh:
-                scored = score_csv(model, args.data, fh, args.coverage, args.quiet)
-            os.replace(tmp, args.out)
-        finally:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-        print(f"{scored.rows} rows scored with {model.name} v{model.version} -> {args.out}",
-              file=sys.stderr)
-    else:
-        scored = score_csv(model, args.data, sys.stdout, args.coverage, quiet=True)
-    print(envelope_note(scored), file=sys.stderr)
-    return 0
+    return run(args, _store(args))
 
 
 def cmd_drift(args) -> int:
@@ -320,13 +304,10 @@ def build_parser() -> argparse.ArgumentParser:
     ve.add_argument("model")
     ve.add_argument("version", nargs="?")
 
-    pr = add("predict", cmd_predict, "offline batch predictions of a CSV to a CSV")
-    pr.add_argument("model")
-    pr.add_argument("data")
-    pr.add_argument("--version")
-    pr.add_argument("--out", help="output CSV (default: standard output)")
-    pr.add_argument("--coverage", type=float, help="add interval bounds at this coverage")
-    pr.add_argument("--quiet", action="store_true")
+    from trainer.predict_command import FORMATS, add_arguments
+
+    pr = add("predict", cmd_predict, f"offline batch predictions of {FORMATS} to a CSV")
+    add_arguments(pr)
 
     dr = add("drift", cmd_drift, "kernel two-sample test: do new inputs differ from the "
              "training inputs? (no target needed)")

@@ -44,6 +44,9 @@ class Chunk:
     block: Block
     values: np.ndarray  # (m, k) float64
     time: np.ndarray | None  # (m,) float64: seconds since 1970 (UTC) or plain numbers
+    #: cells of the columns asked for as they are (CSV: the text written, missing spellings
+    #: included; Parquet/Excel: the typed values, None when empty): ``cells[k][i]``
+    cells: list[list] | None = None
 
 
 def check_header(header: list, where: str) -> list[str]:

@@ -86,8 +86,10 @@ class CsvFile:
     def where(self, block: Block, row: int) -> str:
         return f"{self.path}: line {self.line_of(block, row)}"
 
-    def chunk(self, block: Block, columns: list[str], time: str | None) -> Chunk:
-        """Numbers of ``columns`` (and the ``time`` column) in one block."""
+    def chunk(self, block: Block, columns: list[str], time: str | None,
+              cells: list[str] | None = None) -> Chunk:
+        """Numbers of ``columns`` (and the ``time`` column) in one block, and the text of the
+        ``cells`` columns as written."""
         import pyarrow as pa
         import pyarrow.csv as pcsv
 
@@ -124,7 +126,23 @@ class CsvFile:
         if time:
             times = times_of(table.column(time).to_pylist(),
                              lambda i: self.where(block, i), time)
-        return Chunk(block, values, times)
+        return Chunk(block, values, times, self._texts(raw, cells) if cells else None)
+
+    def _texts(self, raw: bytes, columns: list[str]) -> list[list[str]]:
+        """The cells of ``columns`` as written (quotes removed, nothing read as missing)."""
+        import pyarrow as pa
+        import pyarrow.csv as pcsv
+
+        table = pcsv.read_csv(
+            io.BytesIO(raw),
+            read_options=pcsv.ReadOptions(column_names=self.header, use_threads=False),
+            parse_options=pcsv.ParseOptions(delimiter=self.sep,
+                                            newlines_in_values=b'"' in raw),
+            convert_options=pcsv.ConvertOptions(
+                include_columns=columns, column_types=dict.fromkeys(columns, pa.string()),
+                null_values=[], strings_can_be_null=False, quoted_strings_can_be_null=False),
+        )
+        return [table.column(c).to_pylist() for c in columns]
 
     def _explain(self, block: Block, raw: bytes, columns: list[str], exc) -> None:
         """Find the first bad record or cell of a block that pyarrow refused, and say so."""

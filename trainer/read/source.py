@@ -93,26 +93,31 @@ class Source:
                             f"columns are {', '.join(self.header)}")
 
     def read_block(self, block: Block, columns: list[str], time: str | None = None,
-                   first_row: int = 0) -> Chunk:
-        """Numbers of ``columns`` (and the ``time`` column) in one block."""
+                   first_row: int = 0, cells: list[str] | None = None) -> Chunk:
+        """Numbers of ``columns`` (and the ``time`` column) in one block; the ``cells``
+        columns as the file holds them (:attr:`Chunk.cells`)."""
         if isinstance(self._file, CsvFile):
-            return self._file.chunk(block, columns, time)
+            return self._file.chunk(block, columns, time, cells)
         if isinstance(self._file, ParquetTable):
-            return self._file.chunk(block, columns, time, first_row)
+            return self._file.chunk(block, columns, time, first_row, cells)
         raise UserError(f"{self.path}: Excel files are read whole, not in blocks")
 
     def chunks(self, columns: list[str], time: str | None = None,
-               block_bytes: int = BLOCK_BYTES) -> Iterator[Chunk]:
-        """Read ``columns`` block by block, in file order. Columns are checked first."""
-        self.check_columns(columns + ([time] if time else []))
+               block_bytes: int = BLOCK_BYTES, cells: list[str] | None = None
+               ) -> Iterator[Chunk]:
+        """Read ``columns`` block by block, in file order. Columns are checked first.
+
+        ``cells`` names columns wanted as the file holds them, unparsed (:attr:`Chunk.cells`).
+        """
+        self.check_columns(columns + ([time] if time else []) + list(cells or []))
         if isinstance(self._file, ExcelSheet):
-            yield from self._file.chunks(columns, time)
+            yield from self._file.chunks(columns, time, cells)
             return
         first_row = 0
         blocks = (self._file.blocks(block_bytes) if isinstance(self._file, CsvFile)
                   else self._file.blocks())
         for block in blocks:
-            chunk = self.read_block(block, columns, time, first_row)
+            chunk = self.read_block(block, columns, time, first_row, cells)
             first_row += chunk.values.shape[0]
             yield chunk
 

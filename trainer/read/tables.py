@@ -44,12 +44,13 @@ class ParquetTable:
         return [Block(i, i, i + 1, 0) for i in range(self.pq.num_row_groups)]
 
     def chunk(self, block: Block, columns: list[str], time: str | None,
-              first_row: int) -> Chunk:
-        """Numbers of ``columns`` (and ``time``) in one row group; ``first_row`` is the
-        group's first data row index (for messages)."""
+              first_row: int, cells: list[str] | None = None) -> Chunk:
+        """Numbers of ``columns`` (and ``time``) in one row group, and the typed values of
+        the ``cells`` columns; ``first_row`` is the group's first data row index (messages)."""
         import pyarrow as pa
 
-        table = self.pq.read_row_group(block.start, columns=columns + ([time] if time else []))
+        wanted = list(dict.fromkeys(columns + ([time] if time else []) + (cells or [])))
+        table = self.pq.read_row_group(block.start, columns=wanted)
         cols = []
         for name in columns:
             col = table.column(name)
@@ -75,7 +76,8 @@ class ParquetTable:
             else:
                 times = times_of(col.to_pylist(),
                                  lambda i: f"{self.path}: row {first_row + i + 1}", time)
-        return Chunk(block, values, times)
+        kept = [table.column(c).to_pylist() for c in cells] if cells else None
+        return Chunk(block, values, times, kept)
 
     def numeric_probe(self, columns: list[str]) -> list[str]:
         """Names among ``columns`` whose type is not a number."""
@@ -126,8 +128,10 @@ class ExcelSheet:
         finally:
             book.close()
 
-    def chunks(self, columns: list[str], time: str | None) -> Iterator[Chunk]:
+    def chunks(self, columns: list[str], time: str | None,
+               cells: list[str] | None = None) -> Iterator[Chunk]:
         index = [self.header.index(c) for c in columns]
+        kept = [self.header.index(c) for c in cells or []]
         t_index = self.header.index(time) if time else None
         batch: list[tuple[int, tuple]] = []
         count = 0
@@ -144,7 +148,9 @@ class ExcelSheet:
                     cell = row[t_index] if t_index < len(row) else None
                     times[i] = one_time(cell, f"{self.path}: sheet {self.sheet!r}, "
                                               f"row {sheet_row}", time)
-            return Chunk(block, values, times)
+            texts = ([[row[j] if j < len(row) else None for _, row in batch] for j in kept]
+                     if cells else None)
+            return Chunk(block, values, times, texts)
 
         for item in self.rows():
             batch.append(item)
