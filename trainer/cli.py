@@ -43,7 +43,8 @@ def cmd_train(args) -> int:
         kernel=args.kernel, gamma=args.gamma, degree=args.degree, coef0=args.coef0,
         ridge=args.ridge, holdout=args.holdout, seed=args.seed, release=args.release,
         store=args.store, quiet=args.quiet, report=not args.no_report,
-        precision=args.precision, time=args.time, drop_incomplete=args.drop_incomplete,
+        precision=args.precision, time=args.time, time_format=args.time_format,
+        drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
     )
@@ -245,6 +246,10 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--time", metavar="COL",
                    help="timestamp column (ISO 8601 or a number): hold out the most recent "
                         "rows and tune by blocked cross-validation in time order")
+    t.add_argument("--time-format", metavar="FMT",
+                   help="how the --time column is written, in strftime codes (e.g. "
+                        "'%%d.%%m.%%Y %%H:%%M'; default: ISO 8601, a number, or day-first/"
+                        "month-first dates when the column shows which)")
     t.add_argument("--drop-incomplete", action="store_true",
                    help="leave out (and count) rows with a missing feature value")
     t.add_argument("--sep", help="CSV separator (default: detected)")

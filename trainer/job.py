@@ -48,7 +48,8 @@ def train(opts: TrainOptions, log=print) -> dict:
     fitted = solver.fit(plan, rows, split, tuned, want_loo, log)
     scores = metrics.held_out_metrics(plan.columns.targets, fitted.evidence)
     calib, intervals = calibration.calibrate(fitted.evidence, split.by_time)
-    span = manifest.time_span(plan.columns.time, rows.times, rows.clock)
+    span = manifest.time_span(plan.columns.time, rows.times, rows.clock,
+                              plan.source.time_rule)
     envelope, reference = envelope_stats.training_envelope(
         fitted.envelope, plan.columns.features, plan.splits.seed, span)
     check_x, check_y = fitted.check_rows

@@ -44,6 +44,7 @@ class TrainOptions:
     report: bool = True
     precision: str = "float64"
     time: str | None = None
+    time_format: str | None = None  # strptime codes for the time column (trainer.read.dates)
     drop_incomplete: bool = False
     sep: str | None = None
     decimal: str | None = None
@@ -159,6 +160,8 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError("--solver cg solves the Nyström system; use --method nystrom")
     if opts.method not in METHODS:
         raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
+    if opts.time_format is not None and opts.time is None:
+        raise UserError("--time-format says how the --time column is written; give --time COL")
     return store
 
 
@@ -189,6 +192,8 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
     store = check_options(opts)
     src = Source(opts.data, opts.sep, opts.decimal)
     features = columns.feature_names(src, opts.targets, opts.features, opts.time)
+    if opts.time:
+        src.settle_time(opts.time, opts.time_format)
     method, reason = choose_method(opts, src)
     return Plan(
         source=src,

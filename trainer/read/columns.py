@@ -160,8 +160,8 @@ def feature_names(src: Source, targets: list[str], features: list[str] | None,
         if odd:
             raise UserError(
                 f"{src.path}: column(s) {', '.join(map(repr, odd))} are not numeric; name the "
-                "inputs with --features (other columns are then ignored), or give a "
-                "timestamp column with --time")
+                "inputs with --features (other columns are then ignored)"
+                + ("" if time else ", or give a timestamp column with --time"))
     overlap = set(features) & set(targets)
     if overlap:
         raise UserError(f"column(s) {', '.join(sorted(overlap))} cannot be feature and target")
@@ -175,9 +175,12 @@ def feature_names(src: Source, targets: list[str], features: list[str] | None,
 
 def load_training(path, targets: list[str], features: list[str] | None = None,
                   time: str | None = None, drop_incomplete: bool = False,
-                  sep: str | None = None, decimal: str | None = None) -> TrainingData:
+                  sep: str | None = None, decimal: str | None = None,
+                  time_format: str | None = None) -> TrainingData:
     """Open ``path``, resolve the feature names and :func:`read_rows` (tests, tools)."""
     src = Source(path, sep, decimal)
+    if time:
+        src.settle_time(time, time_format)
     return read_rows(src, targets, feature_names(src, targets, features, time), time,
                      drop_incomplete)
 

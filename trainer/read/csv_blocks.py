@@ -19,6 +19,7 @@ import numpy as np
 from trainer.errors import UserError
 from trainer.read.cells import (
     DECIMAL_COMMA,
+    ISO,
     MISSING,
     Block,
     Chunk,
@@ -39,6 +40,7 @@ class CsvFile:
         self.path = path
         self.layout = layout
         self.sep, self.decimal, self.header = layout.sep, layout.decimal, layout.header
+        self.time_rule = ISO  # how the time column's cells read (Source.settle_time)
 
     def blocks(self, block_bytes: int = BLOCK_BYTES) -> Iterator[Block]:
         """Byte ranges of whole records: cut at a newline outside quotes."""
@@ -95,6 +97,9 @@ class CsvFile:
 
         raw = self.read_bytes(block)
         wanted = columns + ([time] if time else [])
+        if not wanted:  # only cells as written (pyarrow would read every column)
+            texts = self._texts(raw, cells or [])
+            return Chunk(block, np.empty((len(texts[0]) if texts else 0, 0)), None, texts)
         types = {c: pa.float64() for c in columns}
         if time:
             types[time] = pa.string()
@@ -125,7 +130,7 @@ class CsvFile:
         times = None
         if time:
             times = times_of(table.column(time).to_pylist(),
-                             lambda i: self.where(block, i), time)
+                             lambda i: self.where(block, i), time, self.time_rule)
         return Chunk(block, values, times, self._texts(raw, cells) if cells else None)
 
     def _texts(self, raw: bytes, columns: list[str]) -> list[list[str]]:

@@ -16,6 +16,7 @@ import numpy as np
 from trainer.errors import UserError
 from trainer.read.cells import (
     BLOCK_ROWS,
+    ISO,
     Block,
     Chunk,
     cell_number,
@@ -39,6 +40,7 @@ class ParquetTable:
         except Exception as exc:  # pyarrow raises several types for a damaged file
             raise UserError(f"{path}: not readable as Parquet ({exc})") from None
         self.header = check_header(list(self.pq.schema_arrow.names), f"{path}: header")
+        self.time_rule = ISO
 
     def blocks(self) -> list[Block]:
         return [Block(i, i, i + 1, 0) for i in range(self.pq.num_row_groups)]
@@ -75,7 +77,8 @@ class ParquetTable:
                     times[np.asarray(col.is_null())] = np.nan
             else:
                 times = times_of(col.to_pylist(),
-                                 lambda i: f"{self.path}: row {first_row + i + 1}", time)
+                                 lambda i: f"{self.path}: row {first_row + i + 1}", time,
+                                 self.time_rule)
         kept = [table.column(c).to_pylist() for c in cells] if cells else None
         return Chunk(block, values, times, kept)
 
@@ -112,6 +115,7 @@ class ExcelSheet:
         while first and first[-1] is None:  # trailing empty header cells
             first = first[:-1]
         self.header = check_header(list(first), f"{path}: sheet {self.sheet!r}, row 1")
+        self.time_rule = ISO
 
     def where(self, block: Block, row: int) -> str:
         return f"{self.path}: sheet {self.sheet!r}, row {block.first_line + row}"
@@ -147,7 +151,7 @@ class ExcelSheet:
                 if time:
                     cell = row[t_index] if t_index < len(row) else None
                     times[i] = one_time(cell, f"{self.path}: sheet {self.sheet!r}, "
-                                              f"row {sheet_row}", time)
+                                              f"row {sheet_row}", time, self.time_rule)
             texts = ([[row[j] if j < len(row) else None for _, row in batch] for j in kept]
                      if cells else None)
             return Chunk(block, values, times, texts)
