@@ -101,12 +101,14 @@ def _formats(first: str, mark: str) -> tuple[str, ...]:
                    for clock in ("%H:%M", "%H:%M:%S", "%H:%M:%S.%f")))
 
 
-def decide(cells: Iterable[tuple[str, Callable[[], str]]], column: str) -> TimeRule:
+def decide(cells: Iterable[tuple[str, Callable[[], str]]], column: str,
+           path: str = "") -> TimeRule:
     """The rule for a column from all its text cells: (text, where-it-is) pairs.
 
     ISO 8601 and numbers need no rule; written dates get day-first or month-first when the
-    column shows which, else UserError naming the column and asking for ``--time-format``.
+    column shows which, else UserError naming the file, the column and ``--time-format``.
     """
+    at = f"{path}: column {column!r}" if path else f"column {column!r}"
     marks: set[str] = set()
     day_first = month_first = None  # (text, where) of the first cell that decides
     dates = 0
@@ -129,15 +131,15 @@ def decide(cells: Iterable[tuple[str, Callable[[], str]]], column: str) -> TimeR
     if not dates:
         return TimeRule()
     if len(marks) > 1:
-        raise UserError(f"column {column!r}: dates are written with {' and '.join(sorted(marks))} "
+        raise UserError(f"{at}: dates are written with {' and '.join(sorted(marks))} "
                         f"between their fields; give --time-format, e.g. {_EXAMPLE}")
     mark = marks.pop()
     if day_first and month_first:
-        raise UserError(f"column {column!r}: {day_first[0]!r} ({day_first[1]}) is day-first but "
+        raise UserError(f"{at}: {day_first[0]!r} ({day_first[1]}) is day-first but "
                         f"{month_first[0]!r} ({month_first[1]}) is month-first; give "
                         f"--time-format")
     if not (day_first or month_first):
-        raise UserError(f"column {column!r}: no date has a day above 12, so day-first and "
+        raise UserError(f"{at}: no date has a day above 12, so day-first and "
                         f"month-first read its {dates} dates alike; give --time-format "
                         f"'%d{mark}%m{mark}%Y' (day first) or '%m{mark}%d{mark}%Y', with "
                         "' %H:%M' when they carry a time")

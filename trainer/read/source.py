@@ -81,7 +81,7 @@ class Source:
         if time_format is not None:
             rule = given_format(time_format)
         else:
-            rule = decide(self._time_texts(time), time)
+            rule = decide(self._time_texts(time), time, str(self.path))
         self._file.time_rule = rule
         return rule
 
