@@ -51,7 +51,8 @@ def train(opts: TrainOptions, log=print) -> dict:
     span = manifest.time_span(plan.columns.time, rows.times, rows.clock,
                               plan.source.time_rule)
     envelope, reference = envelope_stats.training_envelope(
-        fitted.envelope, plan.columns.features, plan.splits.seed, span)
+        fitted.envelope, rows.encoding.columns if rows.encoding else plan.columns.features,
+        plan.splits.seed, span)
     check_x, check_y = fitted.check_rows
     check = precision_check(plan.output.precision, fitted.spec, fitted.x_train, fitted.dual,
                             check_x, list(plan.columns.targets), check_y, log)

@@ -77,6 +77,8 @@ def build_manifest(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,
         "precision": plan.output.precision,
         "precision_check": check,
         "libraries": library_versions(),
+        # text features' categories in one-hot column order (service.categories)
+        **({"categories": rows.encoding.categories} if rows.encoding else {}),
     }
 
 

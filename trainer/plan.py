@@ -63,6 +63,7 @@ class Columns:
     targets: tuple[str, ...]
     time: str | None
     drop_incomplete: bool
+    text: tuple[str, ...] = ()  # features whose cells are text: encoded one-hot (exact only)
 
 
 @dataclass(frozen=True)
@@ -194,11 +195,16 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
     features = columns.feature_names(src, opts.targets, opts.features, opts.time)
     if opts.time:
         src.settle_time(opts.time, opts.time_format)
+    text = tuple(columns.text_features(src, features)) if opts.features else ()
     method, reason = choose_method(opts, src)
+    if text and method == "nystrom":
+        raise UserError(f"text feature(s) {', '.join(map(repr, text))} are encoded one-hot for "
+                        f"exact fits only, and this fit would be Nyström ({reason}); train "
+                        "with --method exact (at most 15,000 rows) or leave them out")
     return Plan(
         source=src,
         columns=Columns(tuple(features), tuple(opts.targets), opts.time,
-                        opts.drop_incomplete),
+                        opts.drop_incomplete, text),
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
                       opts.solver),
         splits=Splits(opts.holdout, opts.seed),

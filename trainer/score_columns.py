@@ -77,9 +77,11 @@ def quoted(text: str) -> str:
 
 
 def envelope_cells(dialect: Dialect, env: dict) -> list[str]:
-    """The :data:`ENVELOPE_COLUMNS` cells of one row's envelope report."""
+    """The :data:`ENVELOPE_COLUMNS` cells of one row's envelope report; a text feature
+    whose category training never saw is named in ``out_of_range`` as ``feature=value``."""
+    named = [*env["out_of_range"], *(f"{f}={v}" for f, v in env.get("new_category", {}).items())]
     return [dialect.text("true" if env["inside"] else "false"), dialect.number(env["novelty"]),
-            quoted(";".join(csv_cell(f) for f in env["out_of_range"]))]
+            quoted(";".join(csv_cell(f) for f in named))]
 
 
 def skipped_envelope_cells() -> list[str]:

@@ -28,6 +28,7 @@ from service.intervals import CoverageUnavailable
 from service.model import Model
 from service.text_safety import csv_cell
 from trainer.errors import UserError
+from trainer.read.cells import is_missing
 from trainer.read.source import BLOCK_BYTES, Source
 from trainer.score_columns import ENVELOPE_COLUMNS, Dialect, envelope_cells, quoted
 
@@ -136,11 +137,14 @@ def score_file(model: Model, path, out: TextIO, opts: ScoreOptions | None = None
     header, inputs = _columns(src, model, opts, half)
     out.write(dialect.line([quoted(csv_cell(h)) for h in header]))
     where = [model.features.index(f) for f in inputs]
+    text = [f for f in model.features if model.encoding.is_text(f)]
+    numbers = [f for f in model.features if f not in text]
+    asked = list(dict.fromkeys(opts.keep + text))
     bar = _progress(quiet)
     total = outside = skipped = 0
-    for chunk in src.chunks(model.features, block_bytes=block_bytes, cells=opts.keep or None):
-        x = chunk.values
-        gap = np.isnan(x)
+    for chunk in src.chunks(numbers, block_bytes=block_bytes, cells=asked or None):
+        cells_of = dict(zip(asked, chunk.cells or [], strict=True))
+        x, gap = _inputs(model, chunk.values, numbers, cells_of)
         incomplete = gap.any(axis=1)
         if incomplete.any() and not opts.drop_incomplete:
             i, j = np.argwhere(gap)[0]
@@ -150,12 +154,13 @@ def score_file(model: Model, path, out: TextIO, opts: ScoreOptions | None = None
         results, out_count = _result_cells(model, dialect, x[~incomplete], half)
         reasons = iter(_reason(model.features, row) for row in gap[incomplete])
         answers = iter(results)
-        kept = chunk.cells or []
+        kept = [cells_of[k] for k in opts.keep]
         tail = [""] if opts.drop_incomplete else []
         blank = [""] * (len(header) - len(kept) - len(inputs) - 1)
         for i in range(x.shape[0]):
             cells = [dialect.kept(col[i]) for col in kept]
-            cells += [dialect.number(v) for v in x[i, where].tolist()]
+            cells += [dialect.kept(v) if isinstance(v, str) else dialect.number(v)
+                      for v in x[i, where].tolist()]
             cells += blank + [next(reasons)] if incomplete[i] else next(answers) + tail
             out.write(dialect.line(cells))
         total += x.shape[0]
@@ -168,12 +173,35 @@ def score_file(model: Model, path, out: TextIO, opts: ScoreOptions | None = None
     return Scored(total, outside, skipped)
 
 
+def _inputs(model: Model, values: np.ndarray, numbers: list[str], cells: dict
+            ) -> tuple[np.ndarray, np.ndarray]:
+    """(raw inputs (m, d) in the model's feature order, (m, d) missing mask). Without text
+    features the reader's float array itself; with them an object array holding each
+    text feature's cell as text (None: missing)."""
+    if not model.encoding.any:
+        return values, np.isnan(values)
+    m = values.shape[0]
+    raw = np.empty((m, len(model.features)), dtype=object)
+    gap = np.zeros(raw.shape, dtype=bool)
+    k = 0
+    for j, f in enumerate(model.features):
+        if f in numbers:
+            raw[:, j] = values[:, k]
+            gap[:, j] = np.isnan(values[:, k])
+            k += 1
+        else:
+            for i, cell in enumerate(cells[f]):
+                gap[i, j] = is_missing(cell)
+                raw[i, j] = None if gap[i, j] else str(cell)
+    return raw, gap
+
+
 def _result_cells(model: Model, dialect: Dialect, x: np.ndarray, half
                   ) -> tuple[list[list[str]], int]:
     """Prediction, bound and envelope cells of complete rows, and how many are outside."""
     if not x.shape[0]:
         return [], 0
-    y, env = model.score(x)
+    y, env = model.score_rows(x.tolist()) if model.encoding.any else model.score(x)
     numbers = y
     if half is not None:
         bounds = np.empty((y.shape[0], 2 * y.shape[1]))
