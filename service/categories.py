@@ -25,6 +25,14 @@ import numpy as np
 MAX_CATEGORIES = 50
 
 
+class ValueKindError(ValueError):
+    """A row's value of the wrong kind: text for a number feature or the reverse."""
+
+    def __init__(self, row: int, feature: str, message: str):
+        super().__init__(f"row {row}, feature {feature!r}: {message}")
+        self.row, self.feature = row, feature
+
+
 def encoded_name(feature: str, category: str) -> str:
     return f"{feature}={category}"
 
@@ -69,8 +77,8 @@ class Categories:
         """Rows of raw values in :attr:`features` order (text features as strings, numbers
         as numbers) → ((m, D) float array, per row the text values never seen in training).
 
-        ValueError naming row and feature when a text feature's value is not a string or
-        a number feature's is not a number.
+        :class:`ValueKindError` (a ValueError) naming row and feature when a text feature's
+        value is not a string or a number feature's is not a number.
         """
         out = np.zeros((len(rows), len(self.columns)))
         unseen: list[dict[str, str]] = []
@@ -80,11 +88,11 @@ class Categories:
                 index = self.index.get(f)
                 if index is None:
                     if isinstance(v, str | bool) or v is None:
-                        raise ValueError(f"row {i}, feature {f!r}: {v!r} is not a number")
+                        raise ValueKindError(i, f, f"{v!r} is not a number")
                     out[i, start] = v
                 elif not isinstance(v, str):
-                    raise ValueError(f"row {i}, feature {f!r}: a text feature takes its "
-                                     f"category as a string, not {v!r}")
+                    raise ValueKindError(i, f, "a text feature takes its category as a "
+                                               f"string, not {v!r}")
                 elif v.strip() in index:
                     out[i, start + index[v.strip()]] = 1.0
                 else:

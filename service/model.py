@@ -143,6 +143,10 @@ class Model:
         outside = envelope.check_ranges(x, self.lo, self.hi)
         return envelope.describe(x, outside, self.novelty(xs), self.columns, self.lo, self.hi)
 
+    def low_row(self) -> np.ndarray:
+        """(1, D): every feature at its training minimum, one-hot columns at 0 (a probe)."""
+        return np.where(np.isfinite(self.lo), self.lo, 0.0)[None, :]
+
     @property
     def has_intervals(self) -> bool:
         return self.residuals is not None
@@ -205,8 +209,7 @@ def load_model(store=None, name: str | None = None, version: int | None = None) 
 def verify(store, name: str, version: int) -> Model:
     """Raise :class:`StoreError` naming the fault unless the version loads and predicts."""
     model = load_model(store, name, version)
-    # the training minima (a one-hot column, which has no range, at 0)
-    probe = model.standardize(np.where(np.isfinite(model.lo), model.lo, 0.0)[None, :])
+    probe = model.standardize(model.low_row())
     if not np.isfinite(model.predict_standardized(probe)).all():
         raise StoreError(f"{name} v{version}: predictions are not finite")
     return model
