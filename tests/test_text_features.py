@@ -107,6 +107,13 @@ def test_served_with_the_category_as_a_string(trained, shifts):
             err = r.json()["error"]
             assert err["details"] == {"row": 0, "feature": feature}
             assert err["message"].startswith(f"row 0, feature {feature!r}")
+        # the try-a-row page: the category as a text field, a new one named in the verdict
+        page = g.get("/page/sh/try")
+        assert page.status_code == 200 and "training categories: early, late, night" in page.text
+        page = g.get("/page/sh/try", params={"f0": "185", "f1": "weekend", "f2": "60",
+                                             "f3": "B-200"})
+        assert page.status_code == 200
+        assert "New category: <bdi>shift</bdi> = weekend" in page.text
         doc = g.get("/openapi.json").json()
         body = doc["paths"]["/models/sh/predict"]["post"]["requestBody"]
         props = body["content"]["application/json"]["schema"]["properties"]["rows"]["items"]
@@ -129,6 +136,9 @@ def test_kridge_predict_reads_text_features(trained, shifts, tmp_path, capsys):
     np.testing.assert_allclose(back["hardness_s_predicted"], want, rtol=1e-9)
     inside = back["inside"].astype(str).str.lower()  # pandas reads true/false as booleans
     assert inside[5] == "false" and "grade=C-300" in back.loc[5, "out_of_range"]
+    # not (yet) for the drift test: one line, exit 2
+    code, _, err = run_cli(capsys, "drift", "sh", data)
+    assert code == 2 and "has text features (shift, grade)" in err
 
 
 def test_too_many_categories_are_refused(store_dir, shifts, tmp_path, capsys):
