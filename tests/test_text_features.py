@@ -84,6 +84,14 @@ def test_one_hot_model_equals_the_scikit_learn_pipeline(trained, shifts):
     assert all(e["inside"] is False and e["new_category"] == {"shift": "weekend"} for e in env)
 
 
+def test_inspect_names_the_categories(trained, capsys):
+    code, out, _ = run_cli(capsys, "inspect", "sh")
+    assert code == 0
+    lines = dict(line.split("  ", 1) for line in out.splitlines() if "  " in line)
+    assert lines["shift (text)"].strip() == "one-hot over 3: early, late, night"
+    assert lines["grade (text)"].strip() == "one-hot over 2: A-100, B-200"
+
+
 def test_served_with_the_category_as_a_string(trained, shifts):
     model = load_model(trained, "sh")
     row = {"oven_temp_c": 185.0, "shift": "late", "wet_film_um": 60.0, "grade": "B-200"}
