@@ -20,8 +20,9 @@ from service.kernels import KernelBlocks
 
 #: Names of the checks a row can be flagged by, in the order ``flagged_by`` lists them:
 #: a feature outside its training range, the novelty score, Hotelling's T², the residual Q,
-#: a prediction outside its target's training range.
-CHECKS = ("range", "novelty", "t2", "q", "target_range")
+#: a prediction outside its target's training range, a text feature's category never seen
+#: (added by :func:`service.categories.flag_new`).
+CHECKS = ("range", "novelty", "t2", "q", "target_range", "category")
 #: Neighbours counted (common practice: small k, here 5).
 NOVELTY_K = 5
 #: Calibration quantile of the training rows' own k-th-neighbour distances.

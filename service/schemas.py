@@ -37,6 +37,12 @@ ObjectRow = Annotated[dict[str, Number], Field(min_length=1)]
 ArrayRow = Annotated[list[Number], Field(min_length=1)]
 
 
+#: A text feature's category, as a row carries it (:mod:`service.categories`).
+Category = Annotated[str, Field(max_length=200)]
+TextObjectRow = Annotated[dict[str, Number | Category], Field(min_length=1)]
+TextArrayRow = Annotated[list[Number | Category], Field(min_length=1)]
+
+
 #: Longest row identifier: room for a UUID, a sample code or a path-like key.
 MAX_ID_CHARS = 200
 RowId = Annotated[str, Field(max_length=MAX_ID_CHARS)]
@@ -54,6 +60,14 @@ class RowBatch(Strict):
         None, description="One identifier per row, in row order; each comes back as its "
         "result's id. As many as there are rows.",
     )
+
+
+class TextRowBatch(RowBatch):
+    """A request to a model with text features: a row's text feature holds its category."""
+
+    rows: list[TextObjectRow | TextArrayRow] = Field(
+        ..., min_length=1, description="Rows to predict. " + ROW_DOC
+        + " A text feature's value is its category as a string.")
 
 
 class Answer(BaseModel):
@@ -78,6 +92,9 @@ class Envelope(Answer):
         "threshold; above 1 means farther than 99 % of training rows are from theirs."
     )
     novel: bool = Field(description="novelty > 1")
+    new_category: dict[str, str] | None = Field(
+        None, description="Text features whose category the training rows never had "
+        "(feature: value); such a row is not inside.")
     t2: float | None = Field(
         None, description="Hotelling's T² of the row in the training rows' principal "
         "components divided by its 0.99 control limit; above 1 flags an unusual combination "
@@ -89,8 +106,9 @@ class Envelope(Answer):
     target_out_of_range: dict[str, RangeFlag] | None = Field(
         None, description="Targets whose (unclipped) prediction lies outside the target's "
         "training range, with that range. Absent for versions that store no target ranges.")
-    flagged_by: list[Literal["range", "novelty", "t2", "q", "target_range"]] = Field(
-        description="Every check that flagged the row; empty when inside.")
+    flagged_by: list[Literal["range", "novelty", "t2", "q", "target_range", "category"]] = Field(
+        description="Every check that flagged the row (category: a text feature's category "
+        "never seen in training); empty when inside.")
 
 
 class Result(Answer):
