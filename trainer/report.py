@@ -293,13 +293,16 @@ def _metrics_section(manifest: dict, tuning: dict | None) -> list[str]:
            "holdout: scored on held-out rows by a model that never saw them; "
            "validation: the Nyström validation part, which chose the final ridge.</p>"]
     searches = [(own, [own["target"]]) for own in (tuning or {}).get("per_target") or []]
-    for own, targets in searches or ([(tuning, list(manifest["targets"]))] if tuning else []):
-        img = _curve_plot(own, targets)
-        if img:
-            out += [f"<h2>Tuning: {_esc(own['error_label'])} against ridge"
-                    + (f" ({html_name(targets[0])}, tuned alone)" if searches else "")
-                    + "</h2>", img, "<p class=note>One line per kernel parameter setting "
-                    "tried; the star marks the choice.</p>"]
+    plots = [(targets, _curve_plot(own, targets)) for own, targets in
+             searches or ([(tuning, list(manifest["targets"]))] if tuning else [])]
+    plots = [(targets, img) for targets, img in plots if img]
+    if plots:
+        out.append(f"<h2>Tuning: {_esc(tuning['error_label'])} against ridge</h2>")
+        for targets, img in plots:
+            out += ([f"<h3>{html_name(targets[0])}, tuned for itself</h3>"] if searches
+                    else []) + [img]
+        out.append("<p class=note>One line per kernel parameter setting tried; the star "
+                   "marks the choice.</p>")
     return out
 
 
