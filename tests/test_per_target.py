@@ -16,18 +16,17 @@ import json
 
 import numpy as np
 import pytest
+from service_helpers import Gunicorn
 from sklearn.datasets import load_linnerud
 from sklearn.kernel_ridge import KernelRidge
 from sklearn.preprocessing import StandardScaler
+from test_fit_reference import query_rows, write_csv
 
 from service import load_model
 from service.kernels import KernelSpec
 from trainer.exact.fit import fit_exact, fit_exact_each
 from trainer.job import TrainOptions, train
 from trainer.validation.splits import split_rows
-
-from service_helpers import Gunicorn
-from test_fit_reference import query_rows, write_csv
 
 RTOL = 1e-9
 
@@ -245,3 +244,50 @@ def test_grouped_engine_matches_one_engine_per_target(precision):
             Engine(specs[0], x, dual[:, :1], neighbours=(rows, 5), shift=np.zeros(4),
                    scale=np.ones(4)).predict(q, near=ref, raw=True)
             np.testing.assert_allclose(near, ref, rtol=1e-12)
+
+
+def test_nystrom_keeps_one_kernel_and_gives_each_target_its_ridge(tmp_path, store_dir):
+    """Nyström: one kernel tuned for all targets on the sample; each target then takes the
+    ridge of least validation MSE among the final ridge's values. Reference: scikit-learn
+    1.9 ``Nystroem`` on the bundle's landmarks + ``Ridge(alpha=ridge_j)`` on the training
+    part, target by target (the penalty mapping is in ``tests/test_nystrom.py``)."""
+    from sklearn.kernel_approximation import Nystroem
+    from sklearn.linear_model import Ridge
+
+    from trainer.validation.splits import part_keys
+
+    x, y, features, targets = smooth_and_wiggly(1500, 3)
+    s = _train(tmp_path, store_dir, x, y, features, targets, "ny", method="nystrom",
+               landmarks=30, solver="direct")
+    model = load_model(store_dir, "ny", s["version"])
+    man = model.manifest
+    # full rank (no eigenvalue of K_mm dropped), as scikit-learn's map keeps every one
+    assert man["training"]["landmarks"]["rank_kept"] == 30
+    assert man["kernel"] is not None and man["ridge"] is None
+    ridges = [tk.ridge for tk in model.target_kernels]
+    assert ridges == [man["tuning"]["target_ridges"]["ridges"][t] for t in targets]
+    assert ridges[2] < ridges[0]  # the nearly noise-free sine wants the smaller penalty
+    assert "each target its own ridge" in man["training"]["target_kernels"]
+    # the parts as the job drew them (one block: block index 0), standardized as served
+    parts = split_rows(len(x), None, 0.2, 0, False).parts(part_keys(0, 0, len(x)), None)
+    xs = model.standardize(x)
+    train_rows, val = xs[parts == 0], parts == 1
+    landmarks = np.asarray(model.engine.x)
+    ny = Nystroem(kernel="rbf", gamma=model.spec.gamma,
+                  n_components=landmarks.shape[0]).fit(landmarks)
+    yt = y[parts == 0]
+    q = query_rows(x)
+    got = model.predict(q)
+    for j, ridge in enumerate(ridges):
+        reg = Ridge(alpha=ridge, fit_intercept=False).fit(ny.transform(train_rows),
+                                                          yt[:, j] - yt[:, j].mean())
+        want = reg.predict(ny.transform(model.standardize(q))) + yt[:, j].mean()
+        np.testing.assert_allclose(got[:, j], want, rtol=1e-7, atol=1e-7)
+        # its own ridge is no worse on its validation rows than any other target's ridge
+        mse = []
+        for r in ridges:
+            fit = Ridge(alpha=r, fit_intercept=False).fit(ny.transform(train_rows),
+                                                          yt[:, j] - yt[:, j].mean())
+            pred = fit.predict(ny.transform(xs[val])) + yt[:, j].mean()
+            mse.append(float(np.mean((pred - y[val, j]) ** 2)))
+        assert mse[j] <= min(mse) * (1 + 1e-9)

@@ -108,12 +108,16 @@ def target_kernels_text(plan: Plan, fitted: Fitted) -> str:
     t = len(plan.columns.targets)
     if t == 1:
         return "one target"
+    if fitted.per_target is not None and plan.method.name == "nystrom":
+        return ("one kernel for all targets, tuned together on the sample (mean over targets "
+                "of MSE / Var(target)); each target its own ridge, on the validation part")
     if fitted.per_target is not None:
         return "each target tuned for itself: its own kernel and ridge"
     if not plan.parameters.to_tune:
         return "kernel and ridge given: the same for every target"
-    if plan.method.name == "nystrom":
-        return ("one kernel and ridge for all targets (Nyström tunes them together on the "
-                "mean over targets of MSE / Var(target))")
+    if plan.method.name == "nystrom" and not plan.parameters.shared:
+        return ("one kernel and ridge for all targets (the CG solve, or too few validation "
+                "rows, gives no ridge per target), tuned on the mean over targets of MSE / "
+                "Var(target)")
     return "one kernel and ridge for all targets (--shared-kernel), tuned on the mean over " \
         "targets of MSE / Var(target)"
