@@ -291,3 +291,33 @@ def test_nystrom_keeps_one_kernel_and_gives_each_target_its_ridge(tmp_path, stor
             pred = fit.predict(ny.transform(xs[val])) + yt[:, j].mean()
             mse.append(float(np.mean((pred - y[val, j]) ** 2)))
         assert mse[j] <= min(mse) * (1 + 1e-9)
+
+
+def test_inspect_versions_and_page_name_each_targets_kernel(tmp_path, store_dir, capsys):
+    from service.app import create_app
+    from service.settings import Settings
+    from trainer.cli import main
+
+    x, y, features, targets = smooth_and_wiggly(80)
+    _train(tmp_path, store_dir, x, y, features, targets, "show", gamma=0.3, ridge=0.1,
+           release=True)
+    _train(tmp_path, store_dir, x, y, features, targets, "show", release=True)
+    capsys.readouterr()
+    assert main(["inspect", "show", "--store", str(store_dir)]) == 0
+    out = capsys.readouterr().out
+    man = load_model(store_dir, "show").manifest
+    for e in man["per_target"]:
+        spec = KernelSpec.from_params(e["kernel"]["name"], e["kernel"]["params"])
+        assert f"{e['target']}: {spec.describe()}" in out
+        assert f"{e['target']}: {e['ridge']:.6g}" in out
+    assert main(["inspect", "show", "1", "2", "--store", str(store_dir)]) == 0
+    out = capsys.readouterr().out
+    assert all(f"kernel and ridge {t}" in out for t in targets)
+    assert "rbf(gamma=0.3) → " in out
+    assert main(["versions", "show", "--json", "--store", str(store_dir)]) == 0
+    details = json.loads(capsys.readouterr().out)["details"]
+    assert details[0]["kernel"] == "rbf(gamma=0.3)" and details[0]["ridge"] == "0.1"
+    assert details[1]["kernel"].startswith("smooth_a: rbf(")
+    app = create_app(Settings(store=str(store_dir)), watch=False)
+    page = app.test_client().get("/page/show").get_data(as_text=True)
+    assert "wiggly: rbf(gamma=" in page

@@ -46,8 +46,7 @@ def cmd_train(args) -> int:
         precision=args.precision, time=args.time, drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
-        shared_kernel=args.shared_kernel,
-    )
+        shared_kernel=args.shared_kernel)
 
     def log(*a, **k):
         if not args.quiet:
@@ -254,8 +253,7 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--coef0", type=float)
     t.add_argument("--ridge", type=float, help="ridge penalty λ (omit to tune)")
     t.add_argument("--shared-kernel", action="store_true",
-                   help="several targets: tune one kernel and ridge for all of them (default: "
-                        "each target its own)")
+                   help="several targets: one kernel and ridge for all (default: each its own)")
     t.add_argument("--holdout", type=float, default=0.2, help="held-out fraction (default 0.2)")
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")
