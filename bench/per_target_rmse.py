@@ -9,9 +9,9 @@ Data sets:
   physiological targets; tiny: a 4-row holdout);
 * ``coating``: the demo scenario's invented coating-line data (``demo_data/coating_line.csv``,
   2,000 rows, targets hardness_s and gloss_gu);
-* ``synthetic``: our own scenario of ``tests/test_per_target.py``: two noisy targets linear in
-  the inputs and one nearly noise-free fast sine, at 150 and 2,000 rows (the latter runs the
-  tuning race on a 1,000-row subsample).
+* ``synthetic``: our own scenario (:func:`bench.tuning_data.smooth_and_wiggly`): two noisy
+  targets linear in the inputs and one nearly noise-free fast sine, at 150 and 2,000 rows
+  (the latter runs the tuning race on a 1,000-row subsample).
 
 Both runs use the exact solver and the job's 20 % seeded holdout; each prints every target's
 holdout RMSE, the ratio per-target / shared (below 1: tuning each target for itself did
@@ -32,6 +32,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from bench.machine import add_json_option, header, save  # noqa: E402
+from bench.tuning_data import smooth_and_wiggly  # noqa: E402
 from trainer.job import TrainOptions, train  # noqa: E402
 
 
@@ -53,9 +54,6 @@ def linnerud(tmp: Path) -> tuple[Path, list[str]]:
 
 
 def synthetic(tmp: Path, n: int) -> tuple[Path, list[str]]:
-    sys.path.insert(0, str(ROOT / "tests"))
-    from test_per_target import smooth_and_wiggly
-
     x, y, features, targets = smooth_and_wiggly(n)
     return _write(tmp / f"synthetic{n}.csv", x, y, features, targets), targets
 

@@ -22,6 +22,7 @@ from sklearn.kernel_ridge import KernelRidge
 from sklearn.preprocessing import StandardScaler
 from test_fit_reference import query_rows, write_csv
 
+from bench.tuning_data import smooth_and_wiggly
 from service import load_model
 from service.kernels import KernelSpec
 from trainer.exact.fit import fit_exact, fit_exact_each
@@ -46,19 +47,6 @@ def sklearn_target(spec: KernelSpec, ridge: float, x, y, q) -> np.ndarray:
 def linnerud():
     d = load_linnerud()
     return d.data, d.target, list(d.feature_names), [t.lower() for t in d.target_names]
-
-
-def smooth_and_wiggly(n: int = 150, seed: int = 1):
-    """Our own scenario: two noisy targets that are linear in the inputs (u, v) and one
-    nearly noise-free fast sine of u. The smooth ones want a wide kernel, the wiggly one a
-    narrow kernel; one shared kernel, chosen on the mean of their normalized errors, is a
-    compromise that the wiggly target pays for."""
-    rng = np.random.default_rng(seed)
-    x = rng.uniform(-3, 3, (n, 2))
-    smooth = [0.5 * x[:, 0] + 0.3 * x[:, 1] + 0.5 * rng.normal(size=n) for _ in range(2)]
-    wiggly = np.sin(2.5 * x[:, 0]) + 0.05 * rng.normal(size=n)
-    return (x, np.column_stack([*smooth, wiggly]), ["u", "v"],
-            ["smooth_a", "smooth_b", "wiggly"])
 
 
 def test_fit_each_equals_sklearn_per_target_on_linnerud():
