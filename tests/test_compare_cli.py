@@ -216,3 +216,5 @@ def test_user_errors_are_one_line(capsys, setup, tmp_path):
     assert code == 2 and "no lab value column" in err
     code, _, err = _compare(capsys, setup, "--since", "5")
     assert code == 2 and "--since needs --time" in err
+    code, _, err = _compare(capsys, setup, "--time", "t", "--since", "1000")
+    assert code == 2 and "no row has a lab value for 'y', 'z' at or after 1000" in err

@@ -104,6 +104,9 @@ def read_lab_rows(path, features: list[str], targets: list[str], time: str | Non
     elif since is not None:
         raise UserError("--since needs --time (the column the time is read from)")
     rows.counts = _counts(read, dropped, rows, since)
+    if rows.x.shape[0] == 0:
+        raise UserError(f"{src.path}: no row has a lab value for {', '.join(map(repr, present))}"
+                        + (f" at or after {since}" if since else "") + f" ({read} rows read)")
     return rows
 
 

@@ -67,7 +67,8 @@ def _window_lines(result: dict, target: str) -> list[str]:
     head = f"  {'window':<42} {'rows':>5}" + "".join(
         f" {_version_label(s['version'], result) + ' RMSE':>10} "
         f"{_version_label(s['version'], result) + ' bias':>10}" for s in versions)
-    lines = [f"  {visible(target)} per window ({result['windows']['rule']}):", head]
+    lines = [f"  {visible(target)} per window ({result['windows']['rule']}; a window of fewer "
+             f"than {MIN_LAB_VALUES} lab values is weak):", head]
     for w, span in enumerate(spans):
         figs = [s["targets"][target]["windows"][w] for s in versions]
         lines.append(f"  {span['start'] + ' → ' + span['end']:<42} {figs[0]['rows']:>5}"
