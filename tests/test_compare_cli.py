@@ -145,7 +145,8 @@ def test_report_escapes_names_and_plots_residuals(capsys, setup, tmp_path):
     code, _, err = _compare(capsys, setup, "--time", "t", "--report", report)
     assert code == 0, err
     page = report.read_text()
-    assert "<i>b</i>" not in page and "&lt;i&gt;b&lt;/i&gt;" in page
+    assert "<i>b</i>" not in page and "<bdi>&lt;i&gt;b&lt;/i&gt;</bdi>" in page
+    assert "lab values of <bdi>y</bdi>: RMSE" in page  # verdicts isolate the target's name
     assert page.count("data:image/png;base64,") == 1 and "Cautions" in page
     assert not list(tmp_path.glob(".*partial"))
 

@@ -117,26 +117,30 @@ def score_version(model: Model, rows: LabRows, windows: np.ndarray | None) -> di
 
 def _verdict(base: int, other: int, target: str, fa: dict, fb: dict, test: dict,
              level: float, live: int | None) -> dict:
-    """Who wins on one target, at ``level``, in one sentence."""
+    """Who wins on one target, at ``level``, in one sentence: ``text`` is ``before`` +
+    the target's name + ``after`` (so a page can isolate the name)."""
     base_name = f"live v{base}" if base == live else f"v{base}"
     n, p = test["rows"], test["p_value"]
     if p is None:
-        outcome, words = "none", (f"v{other} and {base_name}: no test on {n} lab values of "
-                                  f"{target} (too few, or identical errors)")
+        outcome = "none"
+        before = f"v{other} and {base_name}: no test on {n} lab values of "
+        after = " (too few, or identical errors)"
     else:
         better = test["mean_difference"] > 0
         outcome = ("better" if better else "worse") if p < level else "no difference"
         head = (f"v{other} beats {base_name}" if outcome == "better" else
                 f"{base_name} beats v{other}" if outcome == "worse" else
                 f"v{other} and {base_name} do not differ at level {level:g}")
-        words = (f"{head} on {n} lab values of {target}: RMSE {fb['rmse']:.4g} (v{other}) "
-                 f"vs {fa['rmse']:.4g} ({base_name}), p = {p:.2g}")
+        before = f"{head} on {n} lab values of "
+        after = (f": RMSE {fb['rmse']:.4g} (v{other}) vs {fa['rmse']:.4g} ({base_name}), "
+                 f"p = {p:.2g}")
     weak = n < MIN_LAB_VALUES
     if weak:
-        words += (f" — weak: fewer than {MIN_LAB_VALUES} lab values, read the figures as a "
+        after += (f" — weak: fewer than {MIN_LAB_VALUES} lab values, read the figures as a "
                   "hint only")
     return {"baseline": base, "version": other, "target": target, "outcome": outcome,
-            "weak": weak, "text": words, "test": test}
+            "weak": weak, "text": before + target + after, "words": [before, after],
+            "test": test}
 
 
 def verdicts(scored: list[dict], rows: LabRows, base: int, level: float,

@@ -107,7 +107,8 @@ def render(result: dict, doc: dict, rows: LabRows) -> str:
              f"<p class=note>made {_esc(doc['time'])} from {_esc(doc['data'])}</p>",
              "<h2>Cautions</h2>", f"<p>{_esc(COMPARE_CAUTION)}</p>",
              "<h2>Verdicts</h2>",
-             "<ul>" + "".join(f"<li>{_esc(v['text'])}</li>" for v in doc["verdicts"])
+             "<ul>" + "".join(f"<li>{_esc(v['words'][0])}{html_name(v['target'])}"
+                              f"{_esc(v['words'][1])}</li>" for v in doc["verdicts"])
              + "</ul>" if doc["verdicts"] else "<p>One version only: nothing to compare.</p>",
              f"<p class=note>{_esc(doc['test_method'])}</p>"]
     if doc.get("gate"):
