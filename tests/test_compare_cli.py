@@ -219,3 +219,19 @@ def test_user_errors_are_one_line(capsys, setup, tmp_path):
     assert code == 2 and "--since needs --time" in err
     code, _, err = _compare(capsys, setup, "--time", "t", "--since", "1000")
     assert code == 2 and "no row has a lab value for 'y', 'z' at or after 1000" in err
+
+
+def test_a_model_with_text_features_is_refused_in_one_line(capsys, tmp_path):
+    data = tmp_path / "shift.csv"
+    rng = np.random.default_rng(2)
+    x = rng.normal(size=(40, 2))
+    lines = ["a,shift,y"] + [f"{x[i, 0]:.6g},{'early' if i % 2 else 'late'},{x[i, 1]:.6g}"
+                             for i in range(40)]
+    data.write_text("\n".join(lines) + "\n")
+    store = str(tmp_path / "s")
+    assert main(["train", str(data), "--target", "y", "--features", "a,shift", "--name", "t",
+                 "--gamma", "0.3", "--ridge", "0.1", "--no-report", "--quiet", "--release",
+                 "--store", store]) == 0
+    capsys.readouterr()
+    code, _, err = run_cli(capsys, "compare", "t", data, "--store", store)
+    assert code == 2 and "has text features (shift)" in err and len(err.splitlines()) == 1

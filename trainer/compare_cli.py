@@ -85,6 +85,11 @@ def cmd_compare(args) -> int:
     live = st.live_version(args.model)
     chosen = cmp.choose_versions(st.versions(args.model), live, args.versions)
     models = [load_model(st, args.model, v) for v in chosen]
+    for m in models:
+        if m.encoding.any:  # the lab rows are read as numbers, as by kridge drift
+            raise UserError(f"{m.name} v{m.version} has text features "
+                            f"({', '.join(m.encoding.categories)}); kridge compare takes "
+                            "models of number features only")
     features = list(dict.fromkeys(f for m in models for f in m.features))
     targets = list(dict.fromkeys(t for m in models for t in m.targets))
     rows = read_lab_rows(args.data, features, targets, args.time, args.sep, args.decimal,
