@@ -6,6 +6,7 @@ import json
 import math
 import os
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -235,3 +236,19 @@ def test_a_model_with_text_features_is_refused_in_one_line(capsys, tmp_path):
     capsys.readouterr()
     code, _, err = run_cli(capsys, "compare", "t", data, "--store", store)
     assert code == 2 and "has text features (shift)" in err and len(err.splitlines()) == 1
+
+
+def test_written_dates_with_a_time_format(capsys, setup, tmp_path):
+    # the lab file's times as a lab system may write them: day first, dots, no zone
+    src = Path(setup["lab"]).read_text().splitlines()
+    out = [src[0]]
+    for i, line in enumerate(src[1:]):
+        day, hour = divmod(i, 24)
+        out.append(f"{day + 1:02d}.11.2026 {hour:02d}:00," + line.split(",", 1)[1])
+    dated = tmp_path / "dated.csv"
+    dated.write_text("\n".join(out) + "\n")
+    doc = _json(capsys, setup, "--time", "t", "--time-format", "%d.%m.%Y %H:%M",
+                "--window", "2d", "--since", "2026-11-02T00:00:00", data=dated)
+    spans = doc["windows"]["spans"]
+    assert spans[0]["start"] == "2026-11-02T00:00:00Z" and len(spans) == 3  # days 2–7
+    assert doc["counts"]["rows_read"] == 150

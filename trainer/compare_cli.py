@@ -33,6 +33,9 @@ def add_arguments(sp: argparse.ArgumentParser) -> None:
                     "version and the newest)")
     sp.add_argument("--time", metavar="COL", help="time column: rows in time order, figures "
                     "per window, Newey–West variance in the test")
+    sp.add_argument("--time-format", metavar="FMT", help="how the --time column is written, "
+                    "in strftime codes (default: ISO 8601, a number, or dates whose order the "
+                    "column shows), as for kridge train")
     sp.add_argument("--window", help="window length with --time: 7d (default), 12h, 2w, 90m; "
                     "plain-number times: a number (default: 5 windows of equal counts)")
     sp.add_argument("--since", metavar="TIME", help="score only rows at or after TIME (with "
@@ -79,8 +82,8 @@ def cmd_compare(args) -> int:
     level = _level(args.require_better)
     if args.permutations is not None and args.permutations < 1:
         raise UserError(f"--permutations must be at least 1, not {args.permutations}")
-    if args.window is not None and args.time is None:
-        raise UserError("--window needs --time (the column the windows are cut from)")
+    if (args.window is not None or args.time_format is not None) and args.time is None:
+        raise UserError("--window and --time-format need --time (the time column)")
     st = Store(args.store)
     live = st.live_version(args.model)
     chosen = cmp.choose_versions(st.versions(args.model), live, args.versions)
@@ -93,7 +96,7 @@ def cmd_compare(args) -> int:
     features = list(dict.fromkeys(f for m in models for f in m.features))
     targets = list(dict.fromkeys(t for m in models for t in m.targets))
     rows = read_lab_rows(args.data, features, targets, args.time, args.sep, args.decimal,
-                         args.drop_incomplete, args.since)
+                         args.drop_incomplete, args.since, args.time_format)
     window = parse_window(args.window, rows.clock) if args.time else None
     result = cmp.compare(models, rows, live, cmp.DEFAULT_LEVEL if level is None else level,
                          window, args.permutations, args.seed)

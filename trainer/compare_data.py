@@ -53,7 +53,8 @@ def _refuse(src: Source, chunk, row: int, first: int, column: str, hint: str = "
 
 def read_lab_rows(path, features: list[str], targets: list[str], time: str | None = None,
                   sep: str | None = None, decimal: str | None = None,
-                  drop_incomplete: bool = False, since: str | None = None) -> LabRows:
+                  drop_incomplete: bool = False, since: str | None = None,
+                  time_format: str | None = None) -> LabRows:
     """Read the file at ``path`` (module docstring). ``targets``: the versions' targets;
     those absent from the file are dropped (at least one must be there). ``since``: keep
     rows at or after this time (needs ``time``)."""
@@ -64,7 +65,7 @@ def read_lab_rows(path, features: list[str], targets: list[str], time: str | Non
         raise UserError(f"{src.path}: no lab value column; the versions' targets are "
                         f"{', '.join(map(repr, targets))}")
     if time is not None:
-        src.check_columns([time], "time column")
+        src.settle_time(time, time_format)  # ISO 8601, numbers, or written dates
     refusal = name_refusal([*features, *present, *([time] if time else [])], src.header)
     if refusal:
         raise UserError(f"{src.path}: {refusal}")
