@@ -48,7 +48,7 @@ def cmd_train(args) -> int:
         drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
-    )
+        shared_kernel=args.shared_kernel)
 
     def log(*a, **k):
         if not args.quiet:
@@ -71,7 +71,7 @@ def cmd_train(args) -> int:
         ("features", f"{len(summary['features'])}: {', '.join(summary['features'])}"),
         ("targets", ", ".join(summary["targets"])),
         ("kernel", summary["kernel"]),
-        ("ridge", f"{summary['ridge']:.6g}"),
+        ("ridge", summary["ridge_text"]),
         *error_lines(summary["metrics"]),
         *([("tuning", summary["tuning"])] if summary.get("tuning") else []),
         *([("report", summary["report"])] if summary.get("report") else []),
@@ -84,7 +84,7 @@ def cmd_train(args) -> int:
 
 def cmd_versions(args) -> int:
     from service.version_facts import facts
-    from trainer.show import fmt, table
+    from trainer.show import table
 
     st = _store(args)
     live = st.live_version(args.model)
@@ -102,7 +102,7 @@ def cmd_versions(args) -> int:
         rows.append([
             "*" if v == live else "", v, m.get("created", "?"), f["method"], f["features"],
             f["training_rows"], f["data_sha256"],
-            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}", f["error"], f["compared"],
+            f"{f['kernel']} ridge={f['ridge']}", f["error"], f["compared"],
         ])
     if args.json:
         print(json.dumps({"model": args.model, "live": live, "versions": [r[1] for r in rows],
@@ -238,6 +238,8 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--degree", type=float)
     t.add_argument("--coef0", type=float)
     t.add_argument("--ridge", type=float, help="ridge penalty λ (omit to tune)")
+    t.add_argument("--shared-kernel", action="store_true",
+                   help="several targets: one kernel and ridge for all (default: each its own)")
     t.add_argument("--holdout", type=float, default=0.2, help="held-out fraction (default 0.2)")
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")

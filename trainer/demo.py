@@ -81,7 +81,7 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         summary = train(TrainOptions(data=str(csv_path), targets=TARGETS, name=MODEL,
                                      release=True, store=store, quiet=True))
     print(f"    {MODEL} v{summary['version']} is live: {summary['kernel']}, "
-          f"ridge {summary['ridge']:.3g}, {summary['seconds']} s")
+          f"ridge {summary['ridge_text']}, {summary['seconds']} s")
     for t, m in summary["metrics"].get("holdout", {}).items():
         print(f"    holdout {t}: RMSE {m['rmse']:.3g}, R² {m['r2']:.3f}")
 
