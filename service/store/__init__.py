@@ -7,6 +7,7 @@ Layout (fixed; other tools and scripts depend on it)::
     <store>/<model>/versions/<N>/report.html
     <store>/<model>/live.json
     <store>/<model>/history.jsonl
+    <store>/<model>/shadow.json        (only while a shadow version is named)
 
 Writers take an exclusive ``flock`` on ``<model>/.lock`` only for the short steps that must
 not interleave (choosing a version number and renaming into place; rewriting live.json and
@@ -30,10 +31,19 @@ from service.store.names import (
 )
 from service.store.publish import Publisher
 from service.store.releases import Releases
+from service.store.shadowing import Shadowing
 
 
-class Store(Publisher, Releases):
-    """One store root holding any number of models: read, publish, release, roll back."""
+class Store(Publisher, Releases, Shadowing):
+    """One store root holding any number of models: read, publish, release, roll back,
+    shadow."""
+
+    def release(self, name: str, version: int, check=None) -> dict:
+        """Make ``version`` live (:meth:`Releases.release`); a shadow naming that version
+        has become live, so it is ended (history reason ``released``)."""
+        record = super().release(name, version, check)
+        self.end_shadow(name, only=record["version"], reason="released")
+        return record
 
 
 __all__ = ["ARRAY_NAME_RE", "NAME_RE", "SCHEMA", "STAGING", "Conflict", "NotFound", "Store",
