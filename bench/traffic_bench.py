@@ -60,6 +60,7 @@ def shadow_version(store) -> int:
 
 def run_traffic(args) -> None:
     print(header("traffic bench: drift sampling and a shadow version, on and off"))
+    WORK.mkdir(parents=True, exist_ok=True)
     store = WORK / "store-exact"
     make_model(store)
     version = shadow_version(store)

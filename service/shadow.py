@@ -46,6 +46,7 @@ class ShadowSlot:
     wanted: int | None = None  # version shadow.json names
     model: Model | None = None  # the shadow in use
     problem: str | None = None  # why ``wanted`` is not in use
+    fits: int | None = None  # live version the shadow was last found compatible with
 
 
 @dataclass
@@ -106,6 +107,7 @@ class ShadowRunner:
         self.queue: queue.Queue[Pending | None] = queue.Queue(queue_size)
         self.pairs = pairs
         self._pairs_fd: int | None = None
+        self._pairs_failed = False
         self.done = 0  # requests shadowed by this worker
 
     # -- keeping in step with shadow.json ----------------------------------------------
@@ -115,7 +117,6 @@ class ShadowRunner:
             slot = self.slots.get(name)
             if slot is None:
                 slot = self.slots[name] = ShadowSlot()
-                traffic_metrics.touch(name)
             path = self.store.model_dir(name) / "shadow.json"
             try:
                 st = os.stat(path)
@@ -154,6 +155,8 @@ class ShadowRunner:
                       fault_kind(exc), exc)
             traffic_metrics.SHADOW_FAILURES.labels(name, str(version)).inc()
             return
+        traffic_metrics.touch(name)
+        slot.fits = live.version if live is not None else None
         slot.model = model
         log.info("model %s: shadowing version %s in process %s", name, version, os.getpid())
 
@@ -165,6 +168,14 @@ class ShadowRunner:
         shadow = slot.model if slot is not None else None
         if shadow is None or shadow.version == live.version:
             return
+        if slot.fits != live.version:  # the live version changed: once per change
+            why = compatible(live, shadow)
+            if why is not None:
+                slot.model = None
+                slot.problem = f"shadow version {shadow.version} is not used: {why}"
+                log.error("model %s: %s", name, slot.problem)
+                return
+            slot.fits = live.version
         try:
             self.queue.put_nowait(Pending(name, live.version, live.features, shadow, rows,
                                           ids, results, request_id, when))
@@ -209,10 +220,17 @@ class ShadowRunner:
     def _write(self, data: bytes) -> None:
         """Append to the pairs file: one write per request on an O_APPEND descriptor, so
         lines of several workers never interleave within a request's lines."""
-        if self._pairs_fd is None:
-            self._pairs_fd = os.open(self.pairs, os.O_WRONLY | os.O_APPEND | os.O_CREAT
-                                     | os.O_CLOEXEC, 0o644)
-        os.write(self._pairs_fd, data)
+        try:
+            if self._pairs_fd is None:
+                self._pairs_fd = os.open(self.pairs, os.O_WRONLY | os.O_APPEND | os.O_CREAT
+                                         | os.O_CLOEXEC, 0o644)
+            os.write(self._pairs_fd, data)
+        except OSError as exc:  # said once; the comparison itself goes on
+            if not self._pairs_failed:
+                log.error("shadow pairs file %s cannot be written: %s", self.pairs, exc)
+            self._pairs_failed = True
+        else:
+            self._pairs_failed = False
 
     def problems(self) -> dict[str, str]:
         """Model → why its named shadow is not in use here."""
