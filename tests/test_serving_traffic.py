@@ -174,6 +174,12 @@ def test_shadow_stops_after_off_and_release_makes_it_live(served):
         assert (last["action"], last["version"], last["reason"]) == ("shadow_off", 3, "released")
         wait_for(lambda: ask(g, x[:1].tolist(), "c").headers.get("X-Model-Version") == "3",
                  what="version 3 live")
+        page = g.get("/page/c").text
+    # the timeline words each record; "live now" marks the release, not the shadow's end
+    assert "named <strong>v3</strong> the shadow" in page and "ended the shadow v3" in page
+    assert page.count('class="live">live now') == 1
+    assert page.index("ended the shadow v3") < page.index(
+        "released <strong>v3</strong>") < page.index("live now")
 
 
 def test_shadow_that_fails_verification_is_ignored_and_reported(served):
