@@ -14,6 +14,8 @@ not interleave (choosing a version number and renaming into place; rewriting liv
 appending to the history). Everything a reader can see appears by one ``rename``.
 """
 
+import contextlib
+
 from service.store.files import sha256_file
 from service.store.names import (
     ARRAY_NAME_RE,
@@ -42,7 +44,10 @@ class Store(Publisher, Releases, Shadowing):
         """Make ``version`` live (:meth:`Releases.release`); a shadow naming that version
         has become live, so it is ended (history reason ``released``)."""
         record = super().release(name, version, check)
-        self.end_shadow(name, only=record["version"], reason="released")
+        # the release stands even if this fails: a shadow equal to the live version is
+        # never scored, and `kridge shadow MODEL --off` ends it later
+        with contextlib.suppress(StoreError):
+            self.end_shadow(name, only=record["version"], reason="released")
         return record
 
 
