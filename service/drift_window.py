@@ -12,16 +12,21 @@ A worker's background thread (:class:`DriftMonitor`) takes each window every
 a uniform sample of the live version's training rows of the same size with the MMD
 permutation test of :mod:`service.drift`; taking a window empties it, so each test covers
 the rows that arrived since the previous one. Results go to the gauges of
-:mod:`service.traffic_metrics`. The test runs under the worker's compute slot, like a
-request, so that one computation per worker runs at a time (workers × engine threads ≤
-cores); its size is bounded by the window (2·size rows in the joint kernel matrix).
+:mod:`service.traffic_metrics`. The test runs in pieces (the kernel matrix, then
+:data:`PIECE_PERMUTATIONS` permutations at a time), each under the worker's compute slot
+like a request, so that one computation per worker runs at a time (workers × engine threads
+≤ cores) and a request waits for one piece at most; its size is bounded by the window
+(2·size rows in the joint kernel matrix).
 """
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import random
 import threading
+import time
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -34,6 +39,19 @@ log = logging.getLogger("kridge.drift_window")
 
 #: Fewest sampled rows a served drift test runs on (fewer: keep collecting).
 MIN_ROWS = 30
+#: Permutations per hold of the compute slot (one product of the (2·size)² kernel matrix
+#: with this many membership columns).
+PIECE_PERMUTATIONS = 20
+
+
+@contextlib.contextmanager
+def compute_piece() -> Iterator[None]:
+    """One piece of background work under the worker's compute slot; afterwards the thread
+    lets go of the interpreter for a moment, so that a request waiting for the slot takes it
+    before the next piece does."""
+    with COMPUTE_SLOT:
+        yield
+    time.sleep(0)
 
 
 class Reservoir:
@@ -126,9 +144,8 @@ class DriftMonitor:
         ref = np.asarray(model.reference, dtype=np.float64)
         if ref.shape[0] > self.size:
             ref = ref[np.sort(rng.choice(ref.shape[0], self.size, replace=False))]
-        with COMPUTE_SLOT:  # one computation per worker at a time (module doc)
-            spec, statistic, p = mmd_test(model.spec, ref, model.standardize(rows),
-                                          self.permutations, rng)
+        spec, statistic, p = mmd_test(model.spec, ref, model.standardize(rows),
+                                      self.permutations, rng, PIECE_PERMUTATIONS, compute_piece)
         reading = Reading(model.version, statistic, p, rows.shape[0], offered,
                           spec.describe())
         self.readings[name] = reading

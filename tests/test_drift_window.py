@@ -92,3 +92,24 @@ def test_monitor_tests_the_window_against_the_training_sample(tmp_path, demo_csv
     assert monitor.check("c", model) is None  # the window was emptied
     monitor.offer("c", model, raw.tolist())
     assert monitor.check("c", model).p_value > 0.05  # the training rows themselves
+
+
+def test_the_served_test_in_pieces_gives_the_offline_result():
+    from service.drift import mmd_test
+    from service.kernels import KernelSpec
+
+    rng = np.random.default_rng(4)
+    a, b = rng.normal(size=(80, 3)), rng.normal(0.3, 1, size=(70, 3))
+    pieces = []
+
+    class Piece:
+        def __enter__(self):
+            pieces.append(1)
+
+        def __exit__(self, *exc):
+            return False
+
+    whole = mmd_test(KernelSpec("rbf", gamma=0.3), a, b, 99, np.random.default_rng(1))
+    split = mmd_test(KernelSpec("rbf", gamma=0.3), a, b, 99, np.random.default_rng(1), 20, Piece)
+    assert split[1:] == whole[1:]
+    assert len(pieces) == 1 + 2 + 5  # kernel matrix, diagonal and observed, 5 sets of ≤ 20
