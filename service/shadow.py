@@ -197,9 +197,10 @@ class ShadowRunner:
     def score(self, item: Pending) -> None:
         """Predict one request's rows with the shadow and record the differences."""
         feats = item.live_features
-        x = np.array([r if type(r) is list else [r[f] for f in feats] for r in item.rows],
-                     dtype=np.float64)
         shadow = item.shadow
+        text = shadow.encoding.any  # rows hold categories as strings: predict encodes them
+        x = np.array([r if type(r) is list else [r[f] for f in feats] for r in item.rows],
+                     dtype=object if text else np.float64)
         cols = [feats.index(f) for f in shadow.features]
         xs = x[:, cols] if cols != list(range(len(feats))) else x
         parts = []
@@ -208,7 +209,9 @@ class ShadowRunner:
             # the drift test makes (time.sleep(0) costs ~0.6 ms of wall time on a busy
             # machine): most requests are one piece, and the queue wait lets go anyway
             with COMPUTE_SLOT:
-                parts.append(shadow.engine.predict(xs[start:start + PIECE_ROWS], raw=True))
+                piece = xs[start:start + PIECE_ROWS]
+                parts.append(shadow.predict(piece).reshape(piece.shape[0], -1) if text
+                             else shadow.engine.predict(piece, raw=True))
         predicted = np.vstack(parts)
         live = np.array([r["value"] for r in item.results], dtype=np.float64)
         live = live.reshape(x.shape[0], -1)

@@ -41,7 +41,8 @@ class Traffic:
         """The request path's one call (module doc); only for the live version."""
         if self.models.loaded(name) is not model:
             return
-        if self.drift_on:
+        # text features: the served drift test compares numeric rows only
+        if self.drift_on and not model.encoding.any:
             self.drift.offer(name, model, req.rows)
         self.shadow.offer(name, model, req.rows, req.ids, results, rid, time.time())
 
@@ -81,4 +82,7 @@ def after_answer(name: str, model, req, results: list[dict], environ: dict) -> N
     (nothing when none runs, as in unit tests that build the app without its threads)."""
     traffic = CURRENT
     if traffic is not None:
-        traffic.after_answer(name, model, req, results, environ.get(REQUEST_ID, ""))
+        try:
+            traffic.after_answer(name, model, req, results, environ.get(REQUEST_ID, ""))
+        except Exception:  # the answer is made: whatever happens here must not change it
+            log.exception("model %s: sampling or shadowing a request failed", name)

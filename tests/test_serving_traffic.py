@@ -199,3 +199,22 @@ def test_shadow_that_fails_verification_is_ignored_and_reported(served):
     assert without_timing(again.content) == without_timing(first.content)
     assert metric_count(m, "kridge_shadow_rows_total", model="c") == 0
     assert "shadow version 3 is not used" in page and "checksum" in page
+
+
+def test_a_failing_hook_never_changes_the_answer(served, monkeypatch):
+    """The drift window and the shadow queue run after the answer is made: a fault there is
+    logged, and the caller still gets the answer (in process, through the Flask app)."""
+    from service import traffic
+    from service.app import create_app
+    from service.settings import Settings
+
+    _root, store = served
+    app = create_app(Settings.from_env(store=str(store)), watch=False)
+
+    class Broken:
+        def after_answer(self, *a):
+            raise RuntimeError("a fault after the answer")
+
+    monkeypatch.setattr(traffic, "CURRENT", Broken())
+    r = app.test_client().post("/models/c/predict", json={"rows": [list(TYPICAL_ROW.values())]})
+    assert r.status_code == 200
