@@ -5,6 +5,7 @@ Layout (fixed; other tools and scripts depend on it)::
     <store>/<model>/versions/<N>/manifest.json
     <store>/<model>/versions/<N>/arrays/<name>.npy
     <store>/<model>/versions/<N>/report.html
+    <store>/<model>/versions/<N>/comparisons/<stamp>.json   (kept comparisons, unchecksummed)
     <store>/<model>/live.json
     <store>/<model>/history.jsonl
     <store>/<model>/shadow.json        (only while a shadow version is named)
@@ -16,6 +17,7 @@ appending to the history). Everything a reader can see appears by one ``rename``
 
 import contextlib
 
+from service.store.comparisons import Comparisons
 from service.store.files import sha256_file
 from service.store.names import (
     ARRAY_NAME_RE,
@@ -36,9 +38,9 @@ from service.store.releases import Releases
 from service.store.shadowing import Shadowing
 
 
-class Store(Publisher, Releases, Shadowing):
+class Store(Publisher, Releases, Comparisons, Shadowing):
     """One store root holding any number of models: read, publish, release, roll back,
-    shadow."""
+    keep comparisons on record beside a version, and shadow."""
 
     def release(self, name: str, version: int, check=None) -> dict:
         """Make ``version`` live (:meth:`Releases.release`); a shadow naming that version
