@@ -54,13 +54,14 @@ def train(opts: TrainOptions, log=print) -> dict:
         fitted.envelope, rows.encoding.columns if rows.encoding else plan.columns.features,
         plan.splits.seed, span, plan.columns.targets)
     check_x, check_y = fitted.check_rows
-    check = precision_check(plan.output.precision, fitted.spec, fitted.x_train, fitted.dual,
+    specs = [s.spec for s in fitted.settings(list(plan.columns.targets))]
+    check = precision_check(plan.output.precision, specs, fitted.x_train, fitted.dual,
                             check_x, list(plan.columns.targets), check_y, log)
     bundle = manifest.build_manifest(plan, rows, split, fitted, metrics=scores,
                                      envelope=envelope, intervals=intervals, check=check,
                                      span=span)
-    arrays = publish.bundle_arrays(fitted.spec, fitted.x_train, fitted.dual, envelope_arrays,
-                                    calib)
+    arrays = publish.bundle_arrays(specs, fitted.x_train, fitted.dual, envelope_arrays,
+                                   calib)
     report_args = (fitted.tuning, publish.report_points(fitted.evidence.holdout,
                                                         plan.splits.seed), calib)
     published = publish.publish(store, plan.output, bundle, arrays, report_args)

@@ -55,6 +55,7 @@ class TrainOptions:
     cluster: str | None = None
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
     target_range: str | None = None  # "LO:HI[,LO:HI…]", one per target (service.target_bounds)
+    shared_kernel: bool = False  # several targets: one kernel and ridge for all, not each its own
 
 
 @dataclass(frozen=True)
@@ -98,6 +99,7 @@ class Parameters:
     degree: float | None = None
     coef0: float | None = None
     ridge: float | None = None
+    shared: bool = False  # several targets tuned together: one kernel and ridge for all
 
     @property
     def to_tune(self) -> tuple[str, ...]:
@@ -212,7 +214,8 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
                       opts.solver),
         splits=Splits(opts.holdout, opts.seed),
-        parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge),
+        parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge,
+                              opts.shared_kernel),
         output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet,
                       target_bounds(opts)),
     ), store

@@ -19,11 +19,15 @@ import numpy as np
 
 from service.cautions import BEFORE_ACTING
 from service.intervals import measured_coverage
+from service.target_kernels import shared_entries, target_kernels
 from service.text_safety import html_name, plot_label
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
 from trainer.cautions import R2_POOR, poor_holdout
 from trainer.report_envelope import envelope_section
-from trainer.report_tables import Raw, esc, num, table
+from trainer.report_tables import Raw as _Raw
+from trainer.report_tables import esc as _esc
+from trainer.report_tables import num as _num
+from trainer.report_tables import table as _table
 from trainer.show import ERROR_KINDS
 
 _STYLE = """
@@ -34,9 +38,6 @@ table{border-collapse:collapse;margin:.5rem 0}td,th{border:1px solid #ccc;paddin
 text-align:right}th{background:#f3f3f3}td.l,th.l{text-align:left}
 img{max-width:100%}.note{color:#555;font-size:.9rem}
 """
-
-
-
 
 
 def _span_text(span: dict | None) -> str:
@@ -165,7 +166,7 @@ def _metrics_rows(metrics: dict) -> list[list]:
     rows = []
     for kind, label in ERROR_KINDS:
         for target, m in (metrics.get(kind) or {}).items():
-            rows.append([Raw(esc(label)), Raw(html_name(target)), m["rmse"], m["mae"], m["r2"],
+            rows.append([_Raw(_esc(label)), _Raw(html_name(target)), m["rmse"], m["mae"], m["r2"],
                          m["rows"]])
     return rows
 
@@ -173,7 +174,7 @@ def _metrics_rows(metrics: dict) -> list[list]:
 def _cautions(manifest: dict) -> str:
     """The caution section: poor holdout scores, extrapolation flags, what the intervals
     promise, and review before acting."""
-    items = [f"<li><b>Poor holdout score.</b> {esc(w)}.</li>"
+    items = [f"<li><b>Poor holdout score.</b> {_esc(w)}.</li>"
              for w in poor_holdout(manifest.get("metrics", {}))]
     if not (manifest.get("metrics") or {}).get("holdout"):
         items.append("<li><b>No holdout.</b> Nothing scored this model on rows it did not "
@@ -193,58 +194,71 @@ def _cautions(manifest: dict) -> str:
         items.append("<li><b>Intervals.</b> The jackknife has no finite-sample coverage "
                      "guarantee; trust the coverage measured on the holdout (Prediction "
                      "intervals below), not the nominal level.</li>")
-    items.append(f"<li><b>Before acting.</b> {esc(BEFORE_ACTING)}</li>")
+    items.append(f"<li><b>Before acting.</b> {_esc(BEFORE_ACTING)}</li>")
     return ("<h2>Cautions</h2><ul>" + "".join(items) + "</ul>"
             f"<p class=note>A holdout R² below {R2_POOR} is flagged: the model then explains "
             "less than half of the target's variance on unseen rows.</p>")
 
 
 def _head(manifest: dict) -> list[str]:
-    title = f"{esc(manifest.get('model', ''))} v{esc(manifest.get('version', ''))}"
+    title = f"{_esc(manifest.get('model', ''))} v{_esc(manifest.get('version', ''))}"
     return [f"<!doctype html><html lang=en><head><meta charset=utf-8>"
             f"<title>{title} — training report</title><style>{_STYLE}</style></head><body>",
             f"<h1>{title}: training report</h1>",
-            f"<p class=note>created {esc(manifest.get('created', '?'))}</p>"]
+            f"<p class=note>created {_esc(manifest.get('created', '?'))}</p>"]
 
 
 def _data_section(manifest: dict) -> list[str]:
     tr = manifest.get("training", {})
-    return ["<h2>Data</h2>", table(["", ""], [
-        [Raw("file"), Raw(esc(tr.get("data_file")))],
-        [Raw("sha256"), Raw(f"<code>{esc(tr.get('data_sha256'))}</code>")],
-        [Raw("rows"), tr.get("rows")],
-        [Raw("rows read"), Raw(esc((tr.get("row_counts") or {}).get("summary", "–")))],
-        [Raw("method"), Raw(esc(f"{tr.get('method', 'exact')}: "
+    return ["<h2>Data</h2>", _table(["", ""], [
+        [_Raw("file"), _Raw(_esc(tr.get("data_file")))],
+        [_Raw("sha256"), _Raw(f"<code>{_esc(tr.get('data_sha256'))}</code>")],
+        [_Raw("rows"), tr.get("rows")],
+        [_Raw("rows read"), _Raw(_esc((tr.get("row_counts") or {}).get("summary", "–")))],
+        [_Raw("method"), _Raw(_esc(f"{tr.get('method', 'exact')}: "
                                    f"{tr.get('method_reason', '')}"))],
-        [Raw("time span"), Raw(_span_text(tr.get("time")))],
-        [Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
+        [_Raw("time span"), _Raw(_span_text(tr.get("time")))],
+        [_Raw("holdout rows"), f"{tr.get('holdout_rows')} (fraction {tr.get('holdout_fraction')},"
                                f" seed {tr.get('seed')})"],
-        [Raw("features"), Raw(", ".join(map(html_name, manifest["features"])))],
-        [Raw("targets"), Raw(", ".join(map(html_name, manifest["targets"])))],
-        [Raw("final fit"), Raw(esc(tr.get("final_fit", "")))],
+        [_Raw("features"), _Raw(", ".join(map(html_name, manifest["features"])))],
+        [_Raw("targets"), _Raw(", ".join(map(html_name, manifest["targets"])))],
+        [_Raw("final fit"), _Raw(_esc(tr.get("final_fit", "")))],
     ], left=2)]
 
 
 def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
-    kern = manifest["kernel"]
-    params = ", ".join(f"{k}={num(v, 6)}" for k, v in kern.get("params", {}).items())
-    rows = [[Raw("kernel"), Raw(esc(f"{kern['name']}({params})"))],
-            [Raw("ridge λ"), Raw(num(manifest["ridge"], 6))]]
+    settings = target_kernels(manifest)
+    rows = [[_Raw(f"kernel ({html_name(s.target)})" if len(settings) > 1 else "kernel"),
+             _Raw(_esc(s.spec.describe()) + f", ridge λ = {_num(s.ridge, 6)}")]
+            for s in settings]
+    shared = shared_entries(settings)
+    if shared["kernel"] is not None and shared["ridge"] is not None:
+        rows = [[_Raw("kernel"), _Raw(_esc(settings[0].spec.describe()))],
+                [_Raw("ridge λ"), _Raw(_num(settings[0].ridge, 6))]]
     if tuning:
-        rows += [[Raw("how"), Raw(esc(tuning.get("method", "")))],
-                 [Raw("criterion"), Raw(esc(tuning.get("criterion", "")))],
-                 [Raw("searched"), Raw(esc(", ".join(tuning.get("searched", []))))],
-                 [Raw("fallback"), Raw(esc(tuning.get("fallback") or "no"))],
-                 [Raw("summary"), Raw(esc(tuning.get("summary", "")))]]
+        rows += [[_Raw("how"), _Raw(_esc(tuning.get("method", "")))],
+                 [_Raw("criterion"), _Raw(_esc(tuning.get("criterion", "")))],
+                 [_Raw("searched"), _Raw(_esc(", ".join(tuning.get("searched", []))))],
+                 [_Raw("fallback"), _Raw(_esc(tuning.get("fallback") or "no"))],
+                 [_Raw("summary"), _Raw(_esc(tuning.get("summary", "")))]]
     else:
-        rows.append([Raw("how"), Raw("given on the command line (no tuning)")])
-    out = ["<h2>Chosen parameters</h2>", table(["", ""], rows, left=2)]
+        rows.append([_Raw("how"), _Raw("given on the command line (no tuning)")])
+    out = ["<h2>Chosen parameters</h2>", _table(["", ""], rows, left=2)]
+    for own in (tuning or {}).get("per_target") or [tuning]:
+        out += _kernels_compared(own, (tuning or {}).get("per_target") is not None)
+    return out
+
+
+def _kernels_compared(tuning: dict | None, each: bool) -> list[str]:
+    """The best of each kernel a search compared (one table per target tuned alone)."""
+    out = []
     if tuning and len(tuning.get("per_kernel", {})) > 1:
-        out.append("<p>Best of each kernel compared:</p>")
-        out.append(table(["kernel", "parameters", "ridge", "criterion"], [
-            [Raw(esc(k + (f" (raced out: {v['raced_out']}, {v.get('rows')} rows)"
+        out.append("<p>Best of each kernel compared"
+                   + (f" for {html_name(tuning['target'])}" if each else "") + ":</p>")
+        out.append(_table(["kernel", "parameters", "ridge", "criterion"], [
+            [_Raw(_esc(k + (f" (raced out: {v['raced_out']}, {v.get('rows')} rows)"
                                 if v.get("raced_out") else ""))),
-             Raw(esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items()) or "–")),
+             _Raw(_esc(", ".join(f"{a}={b:.4g}" for a, b in v["params"].items()) or "–")),
              v["ridge"], v["score"]]
             for k, v in tuning["per_kernel"].items()], left=2))
     return out
@@ -252,16 +266,22 @@ def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
 
 def _metrics_section(manifest: dict, tuning: dict | None) -> list[str]:
     out = ["<h2>Metrics</h2>",
-           table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
+           _table(["kind", "target", "RMSE", "MAE", "R²", "rows"],
                   _metrics_rows(manifest.get("metrics", {})), left=2),
            "<p class=note>LOO: exact leave-one-out of the final model (all rows); "
            "holdout: scored on held-out rows by a model that never saw them; "
            "validation: the Nyström validation part, which chose the final ridge.</p>"]
-    img = _curve_plot(tuning, list(manifest["targets"])) if tuning else None
-    if img:
-        out += [f"<h2>Tuning: {esc(tuning['error_label'])} against ridge</h2>", img,
-                "<p class=note>One line per kernel parameter setting tried; "
-                "the star marks the choice.</p>"]
+    searches = [(own, [own["target"]]) for own in (tuning or {}).get("per_target") or []]
+    plots = [(targets, _curve_plot(own, targets)) for own, targets in
+             searches or ([(tuning, list(manifest["targets"]))] if tuning else [])]
+    plots = [(targets, img) for targets, img in plots if img]
+    if plots:
+        out.append(f"<h2>Tuning: {_esc(tuning['error_label'])} against ridge</h2>")
+        for targets, img in plots:
+            out += ([f"<h3>{html_name(targets[0])}, tuned for itself</h3>"] if searches
+                    else []) + [img]
+        out.append("<p class=note>One line per kernel parameter setting tried; the star "
+                   "marks the choice.</p>")
     return out
 
 
@@ -285,7 +305,7 @@ def _intervals_section(manifest: dict, points: dict | None,
         return ["<h2>Prediction intervals</h2>", "<p>No interval calibration stored.</p>"]
     targets = list(manifest["targets"])
     out = ["<h2>Prediction intervals</h2>",
-           f"<p>{esc(intervals['method'])}; {intervals['calibration_rows']} "
+           f"<p>{_esc(intervals['method'])}; {intervals['calibration_rows']} "
            "calibration residuals.</p>"]
     cov = intervals.get("holdout_coverage")
     note = intervals.get("holdout_coverage_method")
@@ -296,8 +316,8 @@ def _intervals_section(manifest: dict, points: dict | None,
                 "holdout rows, so the check is optimistic)")
     if cov:
         rows = [_coverage_cells(t, j, c) for c in cov for j, t in enumerate(targets)]
-        out += [table(["target", "nominal", "holdout coverage", "half-width", "rows"], rows),
-                f"<p class=note>{esc(note)}</p>"]
+        out += [_table(["target", "nominal", "holdout coverage", "half-width", "rows"], rows),
+                f"<p class=note>{_esc(note)}</p>"]
     if calib is not None:
         out.append(_calib_hist(np.asarray(calib, dtype=float), targets,
                                intervals.get("residuals", "calibration")))
@@ -309,10 +329,10 @@ def _coverage_cells(target: str, j: int, level: dict) -> list:
     half-width) says so instead of a coverage of 100 %."""
     measured = measured_coverage(level)
     if measured is None:
-        gap = Raw("not available: too few residuals")
-        return [Raw(html_name(target)), level["nominal"], gap, Raw("unbounded"),
+        gap = _Raw("not available: too few residuals")
+        return [_Raw(html_name(target)), level["nominal"], gap, _Raw("unbounded"),
                 level["rows"]]
-    return [Raw(html_name(target)), level["nominal"], measured[j], level["half_width"][j],
+    return [_Raw(html_name(target)), level["nominal"], measured[j], level["half_width"][j],
             level["rows"]]
 
 
