@@ -207,7 +207,7 @@ class NystromSolver:
         self.solve_record, self.warnings = {"solver": solver, "reason": why}, []
         if solver == "cg":
             fit = solve_with_cg(block_plan, rows.scan.blocks, plan.method.cluster,
-                                _progress(plan.output.quiet), tuned, why)
+                                _progress(plan.output.quiet), tuned, why, plan.method.cg_stop)
             self.solve_record, self.warnings = fit.record, fit.warnings
             return (fit.beta, fit.intercept, fit.ridge, fit.account, None, fit.count,
                     fit.held)
