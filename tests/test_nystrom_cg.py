@@ -257,7 +257,7 @@ def test_width_steps_use_a_bounded_landmark_subset_above_the_cap(monkeypatch):
 
 
 def test_float32_kernel_values_stay_close_to_the_float64_iteration():
-    """kridge's default tiles (float32 values, float64 products) against float64 tiles.
+    """The float32 tile option (float32 values, float64 products) against float64 tiles.
 
     Run to the residual rule at ridge 1: β within 3e-2 of its largest entry and predictions
     within 5e-4 of their largest (measured 9e-3 and 1.1e-4: float32 values perturb the
@@ -293,8 +293,8 @@ def test_float32_kernel_values_stay_close_to_the_float64_iteration():
     assert np.abs(p32 - p64).max() <= 5e-3 * np.ptp(p64)
     r64, r32 = (np.sqrt(np.mean((p - f_q) ** 2)) for p in (p64, p32))
     assert abs(r32 - r64) <= 1e-3 * r64
-    rows = LocalRows(spec, lm, xs, y)
-    assert rows.kern.dtype == np.float32 and "float32 kernel values" in rows.tiles
+    assert "float32 kernel values" in LocalRows(spec, lm, xs, y, dtype=np.float32).tiles
+    assert LocalRows(spec, lm, xs, y).kern.dtype == cg.TILE_DTYPE == np.float64
 
 
 def test_validation_rule_stops_early_keeps_the_best_iterate_and_says_why():
@@ -336,7 +336,7 @@ def test_cli_cg_fit_stops_by_the_validation_rule_and_records_it(tmp_path, capsys
     assert solve["stopped_by"] == ["validation"] and solve["iterations"] < 100
     check = solve["validation_check"]
     assert check["rows"] > 0 and len(check["rmse_by_iteration"]) == solve["iterations"]
-    assert "float32 kernel values" in solve["kernel_tiles"]
+    assert solve["kernel_tiles"] == "float64 kernel tiles and products"
     assert "validation MSE on" in solve["stopping_rule"]
     assert "warning" not in capsys.readouterr().err  # not the cap: no warning
     with pytest.raises(SystemExit) as bad:

@@ -22,11 +22,10 @@ preconditioned system ‖Bᵀ(b − Hβ_k)‖ / ‖Bᵀb‖ falls to ``tol``, th
 :mod:`trainer.nystrom.cg_stop` stops it, or ``max_iter`` iterations ran (the record says
 which, per column).
 
-Precision: the kernel values may be float32 (:data:`TILE_DTYPE`); the products with v stay
-float64. With kridge's tiny tuned ridges v = Bp has huge components along K_mm's
-near-null directions that cancel in K_nm v: float32 sums lose that cancellation and CG
-diverges within ten iterations (measured: bench/cg_bench.py), while float32 values
-with float64 sums follow the float64 iterates (README, "The CG solver", for the figures).
+Precision: the kernel values may be float32 (:data:`TILE_DTYPE`, float64 by default); the
+products with v stay float64. With kridge's tiny tuned ridges v = Bp has large components
+along K_mm's near-null directions that cancel in K_nm v, so float32 rounding of the values
+(or of the sums) moves the iterates (README, "The CG solver", for the figures).
 
 Several right-hand sides (targets, and several ridge values, each with its own A) run side
 by side: one pass over the rows serves them all.
@@ -57,10 +56,11 @@ from trainer.nystrom.cg_stop import ValidationStop, rule_text
 #: passes (product, kernel function, the two products with v), which memory-sized blocks
 #: do not.
 TILE_VALUES = 1 << 18
-#: Precision of the kernel values of an iteration's tiles: float32 (the product Q̃X̃ and exp
-#: in single precision, about twice as fast), or float64. The products K_t v and K_tᵀ(K_t v)
-#: are float64 either way (module notes: why).
-TILE_DTYPE = np.float32
+#: Precision of the kernel values of an iteration's tiles: float64 (default), or float32
+#: (Q̃X̃ and exp in single precision; the products K_t v and K_tᵀ(K_t v) stay float64). Kept
+#: float64 because float32 values bought no time once widened for the products, and moved
+#: the iterates (README, "The CG solver": measured with bench/cg_bench.py).
+TILE_DTYPE = np.float64
 #: Default stopping rule: relative residual in the preconditioned norm, and an iteration cap.
 CG_TOL, CG_MAX_ITER = 1e-6, 100
 #: First jitter on K_mm's diagonal (times m·max diag), grown ×100 until the factor exists.
