@@ -43,12 +43,14 @@ class ExactSolver:
 
     def read(self, plan: Plan, log: Log) -> RowsInMemory:
         c = plan.columns
-        d = columns.read_rows(plan.source, c.targets, c.features, c.time, c.drop_incomplete)
+        d = columns.read_rows(plan.source, c.targets, c.features, c.time, c.drop_incomplete,
+                              c.text)
         x, y, t = d.x, d.y, d.time
         if t is not None:  # time order: the holdout is the latest stretch, folds run forward
             order = np.argsort(t, kind="stable")
             x, y, t = x[order], y[order], t[order]
-        return RowsInMemory(x.shape[0], d.counts, t, d.time_is_clock, x, y)
+        return RowsInMemory(x.shape[0], d.counts, t, d.time_is_clock, x, y,
+                            encoding=d.encoding)
 
     def tune(self, plan: Plan, rows: RowsInMemory, split: HoldoutSplit, log: Log) -> Tuned:
         p = plan.parameters
