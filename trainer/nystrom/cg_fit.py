@@ -23,7 +23,7 @@ from trainer.nystrom.scores import predictor
 
 #: ``--solver auto``: CG from this many landmarks on, the direct solve below (README,
 #: "Large data: Nyström", for the measured crossover).
-CG_FROM_LANDMARKS = 4000
+CG_FROM_LANDMARKS = 3000
 
 
 def choose_solver(asked: str, m: int) -> tuple[str, str]:
