@@ -338,7 +338,10 @@ def test_cli_cg_fit_stops_by_the_validation_rule_and_records_it(tmp_path, capsys
     assert check["rows"] > 0 and len(check["rmse_by_iteration"]) == solve["iterations"]
     assert solve["kernel_tiles"] == "float64 kernel tiles and products"
     assert "validation MSE on" in solve["stopping_rule"]
-    assert "warning" not in capsys.readouterr().err  # not the cap: no warning
+    out = capsys.readouterr()
+    assert "warning" not in out.err  # not the cap: no warning
+    assert (f"stopped by the validation rule after {solve['iterations']} iterations"
+            in json.loads(out.out)["method"])
     with pytest.raises(SystemExit) as bad:
         _train(store, path, "--method", "nystrom", "--cg-stop", "sideways", name="bad")
     assert bad.value.code == 2 and "--cg-stop" in capsys.readouterr().err

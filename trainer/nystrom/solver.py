@@ -144,6 +144,15 @@ def refine_ridge(path, tuned: NystromTuned, held: dict[str, HeldRows],
                    "Var(target), averaged over the targets)"}}
 
 
+def _stopped(record: dict) -> str:
+    """', stopped by the validation rule after 60 iterations' for a CG solve ('' else)."""
+    rules = sorted(set(record.get("stopped_by") or []))
+    if not rules:
+        return ""
+    return (f", stopped by the {' and '.join(rules)} rule{'s' if len(rules) > 1 else ''} "
+            f"after {record['iterations']} iterations")
+
+
 #: The manifest's ``training.solver`` for a CG fit.
 CG_TEXT = ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), preconditioned "
            "conjugate gradient (FALKON's preconditioner, Rudi, Carratino & Rosasco 2017), K_nm "
@@ -257,6 +266,6 @@ class NystromSolver:
             tuning=account,
             described=f"nystrom with {landmark_info['count']} {landmark_info['scheme']} "
                       f"landmarks, {self.solve_record['solver']} solve "
-                      f"({self.solve_record['reason']})",
+                      f"({self.solve_record['reason']}){_stopped(self.solve_record)}",
             warnings=self.warnings + ([ranks["warning"]] if ranks and ranks["warning"]
                                       else []))
