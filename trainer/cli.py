@@ -48,7 +48,7 @@ def cmd_train(args) -> int:
         drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
-        shared_kernel=args.shared_kernel,
+        target_range=args.target_range, shared_kernel=args.shared_kernel,
         cg_stop=args.cg_stop)
 
     def log(*a, **k):
@@ -245,6 +245,8 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")
     t.add_argument("--no-report", action="store_true", help="skip report.html")
+    t.add_argument("--target-range", metavar="LO:HI", help="per --target, comma-separated "
+                   "(0: low only): served predictions and intervals are clipped to it")
     t.add_argument("--precision", choices=PRECISIONS, default="float64",
                    help="serving precision; float32 records its measured error (default float64)")
     t.add_argument("--time", metavar="COL",

@@ -50,9 +50,9 @@ def train(opts: TrainOptions, log=print) -> dict:
     calib, intervals = calibration.calibrate(fitted.evidence, split.by_time)
     span = manifest.time_span(plan.columns.time, rows.times, rows.clock,
                               plan.source.time_rule)
-    envelope, reference = envelope_stats.training_envelope(
+    envelope, envelope_arrays = envelope_stats.training_envelope(
         fitted.envelope, rows.encoding.columns if rows.encoding else plan.columns.features,
-        plan.splits.seed, span)
+        plan.splits.seed, span, plan.columns.targets)
     check_x, check_y = fitted.check_rows
     specs = [s.spec for s in fitted.settings(list(plan.columns.targets))]
     check = precision_check(plan.output.precision, specs, fitted.x_train, fitted.dual,
@@ -60,7 +60,8 @@ def train(opts: TrainOptions, log=print) -> dict:
     bundle = manifest.build_manifest(plan, rows, split, fitted, metrics=scores,
                                      envelope=envelope, intervals=intervals, check=check,
                                      span=span)
-    arrays = publish.bundle_arrays(specs, fitted.x_train, fitted.dual, reference, calib)
+    arrays = publish.bundle_arrays(specs, fitted.x_train, fitted.dual, envelope_arrays,
+                                   calib)
     report_args = (fitted.tuning, publish.report_points(fitted.evidence.holdout,
                                                         plan.splits.seed), calib)
     published = publish.publish(store, plan.output, bundle, arrays, report_args)

@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 from service.kernels import KERNEL_NAMES, KERNEL_PARAMS, KernelSpec, default_spec
 from service.store import Store
+from service.target_bounds import parse_target_range
 from trainer.errors import UserError
 from trainer.read import columns
 from trainer.read.source import Source
@@ -53,6 +54,7 @@ class TrainOptions:
     landmark_scheme: str | None = None
     cluster: str | None = None
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
+    target_range: str | None = None  # "LO:HI[,LO:HI…]", one per target (service.target_bounds)
     shared_kernel: bool = False  # several targets: one kernel and ridge for all, not each its own
     cg_stop: str = "validation"  # CG: validation (and residual) rule, or residual alone
 
@@ -128,6 +130,7 @@ class Output:
     report: bool
     precision: str
     quiet: bool
+    bounds: dict | None = None  # per target {"low", "high"} from --target-range
 
 
 @dataclass(frozen=True)
@@ -169,6 +172,7 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
     if opts.time_format is not None and opts.time is None:
         raise UserError("--time-format says how the --time column is written; give --time COL")
+    target_bounds(opts)  # refused before any reading
     return store
 
 
@@ -216,5 +220,16 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
         splits=Splits(opts.holdout, opts.seed),
         parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge,
                               opts.shared_kernel),
-        output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet),
+        output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet,
+                      target_bounds(opts)),
     ), store
+
+
+def target_bounds(opts: TrainOptions) -> dict | None:
+    """The bounds ``--target-range`` gives, per target; None without it."""
+    if opts.target_range is None:
+        return None
+    try:
+        return parse_target_range(opts.target_range, list(opts.targets))
+    except ValueError as exc:
+        raise UserError(str(exc)) from None

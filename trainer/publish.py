@@ -19,16 +19,18 @@ from trainer.solvers import Fitted, Predicted
 PLOT_ROWS = 5000
 
 
-def bundle_arrays(specs, x_train: np.ndarray, dual: np.ndarray, reference: np.ndarray,
+def bundle_arrays(specs, x_train: np.ndarray, dual: np.ndarray,
+                  envelope: dict[str, np.ndarray],
                   calib: np.ndarray | None) -> dict[str, np.ndarray]:
     """The arrays a bundle stores, for either solver (``x_train``: training or landmark rows,
-    standardized; ``calib``: absolute calibration residuals, stored sorted)."""
+    standardized; ``envelope``: the envelope's arrays, the novelty reference and the PCA
+    model when fitted; ``calib``: absolute calibration residuals, stored sorted)."""
     # The laplacian's L1 loop reads X one feature at a time: store it column-major, the
     # layout the engine serves from, so a loaded model needs no second, transposed copy.
     # ``specs``: every target's kernel (the others read either layout).
     x_store = (np.asfortranarray(x_train) if any(s.uses == "l1" for s in specs)
                else x_train)
-    arrays = {"x_train": x_store, "dual": dual, "novelty_reference": reference}
+    arrays = {"x_train": x_store, "dual": dual, **envelope}
     if calib is not None:
         arrays["abs_residuals"] = np.sort(calib, axis=0)
     return arrays

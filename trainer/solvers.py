@@ -98,13 +98,15 @@ class Evidence:
 
 @dataclass(frozen=True)
 class EnvelopeRows:
-    """Training rows the novelty reference is drawn from; ``ranges`` (from every row) when
-    they are a sample."""
+    """Training rows the novelty reference and the PCA check are drawn from; ``ranges``
+    (from every row) when they are a sample; ``y``: those rows' targets, (rows, t), whose
+    ranges the envelope keeps."""
 
     x_raw: np.ndarray
     x_s: np.ndarray
     ranges: dict | None = None
     ranges_from: str | None = None
+    y: np.ndarray | None = None
 
 
 @dataclass

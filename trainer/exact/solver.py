@@ -95,7 +95,7 @@ class ExactSolver:
                              "scale": final.scaler.scale.tolist(), "ddof": 0},
             rows=rows.count, fit_seconds=fit_seconds,
             evidence=Evidence(holdout=holdout, loo=loo, scorer_loo=scorer_loo),
-            envelope=EnvelopeRows(x, final.x_s), check_rows=(final.x_s, y),
+            envelope=EnvelopeRows(x, final.x_s, y=y), check_rows=(final.x_s, y),
             training={"solver": "cholesky (scipy.linalg.cho_factor)",
                       "final_fit": "refitted on all rows with the chosen parameters"},
             tuning=tuned.account, described="exact", per_target=pairs)
