@@ -53,8 +53,8 @@ def cmd_train(args) -> int:
             print(*map(visible, map(str, a)), file=sys.stderr, **k)
 
     summary = train(opts, log=log)
-    for warning in summary["warnings"]:  # even with --quiet: they concern the model itself
-        print(f"warning: {visible(warning)}", file=sys.stderr)
+    for w in summary["warnings"]:  # even with --quiet: they concern the model itself
+        print(f"warning: {visible(w['message'])} [{w['code']}]", file=sys.stderr)
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0

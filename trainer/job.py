@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import time
 
-from trainer import calibration, envelope_stats, manifest, metrics, publish
+from trainer import baselines, calibration, cautions, envelope_stats, manifest, metrics, publish
 from trainer.plan import TrainOptions, resolve
 from trainer.precision import precision_check
 from trainer.solvers import Solver
@@ -57,8 +57,13 @@ def train(opts: TrainOptions, log=print) -> dict:
     bundle = manifest.build_manifest(plan, rows, split, fitted, metrics=scores,
                                      envelope=envelope, intervals=intervals, check=check,
                                      span=span)
+    train_mean = (fitted.evidence.train_mean if fitted.evidence.train_mean is not None
+                  else fitted.intercept)
+    bundle["baselines"] = baselines.holdout_baselines(list(plan.columns.targets),
+                                                      fitted.evidence, train_mean, split.by_time)
+    bundle["warnings"] = cautions.collect(bundle, fitted.warnings)
     arrays = publish.bundle_arrays(fitted.spec, fitted.x_train, fitted.dual, reference, calib)
     report_args = (fitted.tuning, publish.report_points(fitted.evidence.holdout,
                                                         plan.splits.seed), calib)
     published = publish.publish(store, plan.output, bundle, arrays, report_args)
-    return publish.summary(plan, store, published, fitted, scores, rows.counts, check, t0)
+    return publish.summary(plan, store, published, fitted, bundle, rows.counts, t0)

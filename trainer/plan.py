@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from service.kernels import KERNEL_NAMES, KERNEL_PARAMS, KernelSpec, default_spec
 from service.store import Store
 from trainer.errors import UserError
+from trainer.memory import exact_shortfall
 from trainer.read import columns
 from trainer.read.source import Source
 
@@ -166,9 +167,14 @@ def choose_method(opts: TrainOptions, src: Source) -> tuple[str, str]:
     """(method, reason): exact KRR up to :data:`AUTO_EXACT_MAX_ROWS` usable rows, else Nyström.
 
     ``auto`` counts the rows that have every target (one streamed pass over the target
-    columns only), since sparse lab values can make a large export a small training set.
+    columns only), since sparse lab values can make a large export a small training set,
+    and fits exactly only where the kernel matrix fits in memory (:mod:`trainer.memory`);
+    ``exact`` is refused, right after that count, where it does not.
     """
-    if opts.method == "exact":
+    if opts.method == "exact":  # refused at once when the kernel matrix cannot fit
+        short = exact_shortfall(columns.count_target_rows(src, opts.targets))
+        if short:
+            raise UserError(f"--method exact: {short}; use --method nystrom")
         return "exact", "asked for with --method exact"
     if opts.method == "nystrom" or opts.cluster or opts.landmarks or opts.solver == "cg":
         return "nystrom", "asked for with " + ("--method nystrom" if opts.method == "nystrom"
@@ -176,6 +182,9 @@ def choose_method(opts: TrainOptions, src: Source) -> tuple[str, str]:
                                                else "--landmarks" if opts.landmarks
                                                else "--solver cg")
     rows = columns.count_target_rows(src, opts.targets)
+    short = exact_shortfall(rows) if rows <= AUTO_EXACT_MAX_ROWS else None
+    if short:
+        return "nystrom", f"{short} (--method auto)"
     if rows <= AUTO_EXACT_MAX_ROWS:
         return "exact", (f"{rows} rows with a target ≤ {AUTO_EXACT_MAX_ROWS}: exact KRR "
                          "(--method auto)")

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from trainer.data_checks import duplicate_rows
 from trainer.exact.fit import fit_exact
 from trainer.plan import Plan
 from trainer.read import columns
@@ -67,12 +68,13 @@ class ExactSolver:
             want_loo: bool, log: Log) -> Fitted:
         x, y, spec, ridge = rows.x, rows.y, tuned.spec, tuned.ridge
         tr, ho = split.train, split.holdout
-        holdout = scorer_loo = None
+        holdout = scorer_loo = last = None
         if ho.size:
             part = fit_exact(x[tr], y[tr], spec, ridge, want_loo=want_loo)
             holdout = Predicted(y[ho], part.predict(x[ho]),
                                 rows.times[ho] if rows.times is not None else None)
             scorer_loo = part.loo_residuals
+            last = y[tr[-1]] if split.by_time else None  # rows are in time order
         t_fit = time.perf_counter()
         final = fit_exact(x, y, spec, ridge, want_loo=want_loo)
         fit_seconds = time.perf_counter() - t_fit
@@ -84,8 +86,10 @@ class ExactSolver:
             standardization={"mean": final.scaler.mean.tolist(),
                              "scale": final.scaler.scale.tolist(), "ddof": 0},
             rows=rows.count, fit_seconds=fit_seconds,
-            evidence=Evidence(holdout=holdout, loo=loo, scorer_loo=scorer_loo),
+            evidence=Evidence(holdout=holdout, loo=loo, scorer_loo=scorer_loo,
+                              train_mean=y[tr].mean(axis=0), last_known=last),
             envelope=EnvelopeRows(x, final.x_s), check_rows=(final.x_s, y),
             training={"solver": "cholesky (scipy.linalg.cho_factor)",
-                      "final_fit": "refitted on all rows with the chosen parameters"},
+                      "final_fit": "refitted on all rows with the chosen parameters",
+                      "duplicates": duplicate_rows(x, tr, ho)},
             tuning=tuned.account, described="exact")
