@@ -89,9 +89,10 @@ def grid_edge_warnings(tuning: dict | None) -> list[dict]:
     width = chosen.get("width_edge")
     if width:
         lo, hi = width["range"]
-        kind = "narrowest" if width["side"] == "upper" else "widest"
+        upper = width["side"] == "upper"
+        kind = "narrowest" if upper else "widest"
         out.append(warning("width_at_edge", (
-            f"gamma {width['value']:.4g} is the {'largest' if width['side'] == 'upper' else 'smallest'} "
+            f"gamma {width['value']:.4g} is the {'largest' if upper else 'smallest'} "
             f"width scored ({kind} kernel; {width['scored']} widths from {lo:.3g} to "
             f"{hi:.3g}): the best width may lie beyond it; give --gamma to try one"),
             parameter="gamma", value=width["value"], edge=width["side"]))
@@ -111,10 +112,15 @@ def data_warnings(features: list[str], envelope: dict, duplicates: dict | None
                 "outside the envelope"), feature=f))
     if duplicates and duplicates["distinct"] < duplicates["rows"]:
         d = duplicates
-        copies = (f"; {d['holdout_with_copy']} of {d['holdout_rows']} holdout rows have an "
-                  "exact copy among the training rows, so the holdout score is optimistic "
-                  "(--group COL keeps every row of a group on one side)"
-                  if d.get("holdout_rows") else "")
+        if d.get("holdout_with_copy"):
+            copies = (f"; {d['holdout_with_copy']} of {d['holdout_rows']} holdout rows have "
+                      "an exact copy among the training rows, so the holdout score is "
+                      "optimistic (--group COL keeps every row of a group on one side)")
+        elif d.get("holdout_rows"):
+            copies = (f"; none of the {d['holdout_rows']} holdout rows has a copy among the "
+                      "training rows")
+        else:
+            copies = ""
         out.append(warning("duplicate_rows", (
             f"{d['distinct']} distinct input rows among {d['rows']} rows"
             f"{copies}"), **d))

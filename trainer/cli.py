@@ -46,6 +46,7 @@ def cmd_train(args) -> int:
         precision=args.precision, time=args.time, drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
+        group=args.group,
     )
 
     def log(*a, **k):
@@ -261,6 +262,9 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--time", metavar="COL",
                    help="timestamp column (ISO 8601 or a number): hold out the most recent "
                         "rows and tune by blocked cross-validation in time order")
+    t.add_argument("--group", metavar="COL",
+                   help="group column (a mix, batch or sample id; not a feature): every row "
+                        "of a group stays on one side of the holdout and of each tuning fold")
     t.add_argument("--drop-incomplete", action="store_true",
                    help="leave out (and count) rows with a missing feature value")
     t.add_argument("--sep", help="CSV separator (default: detected)")

@@ -41,10 +41,12 @@ def train(opts: TrainOptions, log=print) -> dict:
     plan, store = resolve(opts)
     solver = solver_for(plan.method.name)
     rows = solver.read(plan, log)
+    # only rows held in memory carry groups (the plan refuses --group for Nyström)
     split = split_rows(rows.count, rows.times, plan.splits.holdout, plan.splits.seed,
-                       solver.rows_in_memory)
+                       solver.rows_in_memory, getattr(rows, "groups", None))
     tuned = solver.tune(plan, rows, split, log)
-    want_loo = solver.offers_loo and calibration.uses_jackknife(rows.count, split.by_time)
+    want_loo = solver.offers_loo and calibration.uses_jackknife(
+        rows.count, split.by_time or getattr(split, "groups", None) is not None)
     fitted = solver.fit(plan, rows, split, tuned, want_loo, log)
     scores = metrics.held_out_metrics(plan.columns.targets, fitted.evidence)
     calib, intervals = calibration.calibrate(fitted.evidence, split.by_time)

@@ -53,6 +53,7 @@ class TrainOptions:
     landmark_scheme: str | None = None
     cluster: str | None = None
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
+    group: str | None = None  # rows sharing this column's value stay on one side of a split
 
 
 @dataclass(frozen=True)
@@ -63,6 +64,7 @@ class Columns:
     targets: tuple[str, ...]
     time: str | None
     drop_incomplete: bool
+    group: str | None = None  # --group: holdout and tuning folds keep each group whole
 
 
 @dataclass(frozen=True)
@@ -160,6 +162,13 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError("--solver cg solves the Nyström system; use --method nystrom")
     if opts.method not in METHODS:
         raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
+    if opts.group and opts.time:
+        raise UserError("--group and --time together: the time holdout already keeps the "
+                        "latest stretch apart; give one of them")
+    if opts.group and (opts.method == "nystrom" or opts.cluster or opts.landmarks
+                       or opts.solver == "cg"):
+        raise UserError("--group needs every row in memory: it works with the exact method "
+                        "only (--method exact or auto)")
     return store
 
 
@@ -184,7 +193,13 @@ def choose_method(opts: TrainOptions, src: Source) -> tuple[str, str]:
     rows = columns.count_target_rows(src, opts.targets)
     short = exact_shortfall(rows) if rows <= AUTO_EXACT_MAX_ROWS else None
     if short:
+        if opts.group:
+            raise UserError(f"--group needs the exact method, but {short}")
         return "nystrom", f"{short} (--method auto)"
+    if opts.group and rows > AUTO_EXACT_MAX_ROWS:
+        raise UserError(f"--group needs the exact method, and {rows} rows with a target > "
+                        f"{AUTO_EXACT_MAX_ROWS} would go to Nyström; give --method exact "
+                        "if they fit in memory")
     if rows <= AUTO_EXACT_MAX_ROWS:
         return "exact", (f"{rows} rows with a target ≤ {AUTO_EXACT_MAX_ROWS}: exact KRR "
                          "(--method auto)")
@@ -197,12 +212,12 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
     or, for the data's cells, by the reading stage."""
     store = check_options(opts)
     src = Source(opts.data, opts.sep, opts.decimal)
-    features = columns.feature_names(src, opts.targets, opts.features, opts.time)
+    features = columns.feature_names(src, opts.targets, opts.features, opts.time, opts.group)
     method, reason = choose_method(opts, src)
     return Plan(
         source=src,
         columns=Columns(tuple(features), tuple(opts.targets), opts.time,
-                        opts.drop_incomplete),
+                        opts.drop_incomplete, opts.group),
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
                       opts.solver),
         splits=Splits(opts.holdout, opts.seed),

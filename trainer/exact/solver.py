@@ -33,6 +33,15 @@ class RowsInMemory(Rows):
 
     x: np.ndarray
     y: np.ndarray
+    groups: np.ndarray | None = None  # (n,) group codes with --group
+    group_names: list[str] | None = None
+
+
+def group_record(column: str, groups: np.ndarray, holdout: np.ndarray) -> dict:
+    """The manifest's ``training.group``: the column, how many groups, how many held out."""
+    return {"column": column, "groups": int(np.unique(groups).size),
+            "holdout_groups": int(np.unique(groups[holdout]).size),
+            "how": "every row of a group on one side of the holdout and of each tuning fold"}
 
 
 class ExactSolver:
@@ -44,12 +53,14 @@ class ExactSolver:
 
     def read(self, plan: Plan, log: Log) -> RowsInMemory:
         c = plan.columns
-        d = columns.read_rows(plan.source, c.targets, c.features, c.time, c.drop_incomplete)
+        d = columns.read_rows(plan.source, c.targets, c.features, c.time, c.drop_incomplete,
+                              c.group)
         x, y, t = d.x, d.y, d.time
         if t is not None:  # time order: the holdout is the latest stretch, folds run forward
             order = np.argsort(t, kind="stable")
             x, y, t = x[order], y[order], t[order]
-        return RowsInMemory(x.shape[0], d.counts, t, d.time_is_clock, x, y)
+        return RowsInMemory(x.shape[0], d.counts, t, d.time_is_clock, x, y, d.groups,
+                            d.group_names)
 
     def tune(self, plan: Plan, rows: RowsInMemory, split: HoldoutSplit, log: Log) -> Tuned:
         p = plan.parameters
@@ -61,7 +72,8 @@ class ExactSolver:
         tuned = search.tune(rows.x[split.train], rows.y[split.train], kernel=p.kernel,
                             given=search.Given(p.gamma, p.degree, p.coef0, p.ridge),
                             seed=plan.splits.seed, quiet=plan.output.quiet, log=log,
-                            time_ordered=split.by_time)
+                            time_ordered=split.by_time,
+                            groups=None if rows.groups is None else rows.groups[split.train])
         return Tuned(tuned.spec, tuned.ridge, tuned.account)
 
     def fit(self, plan: Plan, rows: RowsInMemory, split: HoldoutSplit, tuned: Tuned,
@@ -91,5 +103,7 @@ class ExactSolver:
             envelope=EnvelopeRows(x, final.x_s), check_rows=(final.x_s, y),
             training={"solver": "cholesky (scipy.linalg.cho_factor)",
                       "final_fit": "refitted on all rows with the chosen parameters",
-                      "duplicates": duplicate_rows(x, tr, ho)},
+                      "duplicates": duplicate_rows(x, tr, ho),
+                      **({"group": group_record(plan.columns.group, rows.groups, ho)}
+                         if rows.groups is not None else {})},
             tuning=tuned.account, described="exact")
