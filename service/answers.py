@@ -11,12 +11,13 @@ import numpy as np
 import orjson
 from pydantic import ValidationError
 
+from service.categories import ValueKindError
 from service.cautions import OUTSIDE_ENVELOPE
 from service.errors import ApiError
 from service.intervals import CoverageUnavailable
 from service.model import Model
 from service.request_body import refuse_before_parsing, too_many_rows
-from service.schemas import MAX_ID_CHARS, MAX_INPUT, RowBatch
+from service.schemas import MAX_ID_CHARS, MAX_INPUT, RowBatch, TextRowBatch
 
 #: One predict request of this process is parsed, computed and serialized at a time
 #: (:func:`service.routes.predict.answer`): the worker's threads overlap waiting on slow
@@ -25,11 +26,13 @@ from service.schemas import MAX_ID_CHARS, MAX_INPUT, RowBatch
 COMPUTE_SLOT = threading.Lock()
 
 
-def parse_body(raw: bytes, max_rows: int, features: list[str] | None = None) -> RowBatch:
+def parse_body(raw: bytes, max_rows: int, features: list[str] | None = None,
+               text: bool = False) -> RowBatch:
     """JSON bytes → validated request (structure, strict finite numbers, no extra keys);
     a body with more arrays and objects than ``max_rows`` rows need is refused unparsed.
     With the model's ``features`` a refused row is explained by its cause (see
-    :func:`row_fault`)."""
+    :func:`row_fault`). ``text``: the model has text features, whose values are strings
+    (:func:`rows_to_array` checks which feature takes which)."""
     refuse_before_parsing(raw, max_rows)
     try:
         data = orjson.loads(raw)
@@ -46,9 +49,9 @@ def parse_body(raw: bytes, max_rows: int, features: list[str] | None = None) -> 
     batch = _plain_batch(data, rows)
     if batch is None:
         try:
-            batch = RowBatch.model_validate(data)
+            batch = (TextRowBatch if text else RowBatch).model_validate(data)
         except ValidationError as exc:
-            raise _explain(exc, rows, features) from None
+            raise _explain(exc, rows, None if text else features) from None
     ids = batch.ids
     if ids is not None and len(ids) != len(batch.rows):
         raise ApiError(422, "invalid_ids",
@@ -201,10 +204,11 @@ def _explain(exc: ValidationError, rows, features: list[str] | None) -> ApiError
 
 
 def rows_to_array(req: RowBatch, model: Model) -> np.ndarray:
-    """Rows (objects or arrays) → (m, d) float array in the model's feature order."""
+    """Rows (objects or arrays) → (m, d) array in the model's feature order: floats, or
+    with text features an object array (their categories as strings)."""
     feats = model.features
     d = len(feats)
-    out = np.empty((len(req.rows), d))
+    out = np.empty((len(req.rows), d), dtype=object if model.encoding.any else np.float64)
     for i, row in enumerate(req.rows):
         if isinstance(row, dict):
             if len(row) != d or any(f not in row for f in feats):
@@ -222,6 +226,7 @@ def rows_to_array(req: RowBatch, model: Model) -> np.ndarray:
 def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: float):
     """Compute values, envelope and intervals; returns (response dict, compute seconds)."""
     x = rows_to_array(req, model)
+    score = model.score_rows if model.encoding.any else model.score
     half = None
     if req.coverage is not None:
         try:
@@ -229,7 +234,11 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
         except CoverageUnavailable as exc:  # the rule kridge predict refuses by too
             raise ApiError(422, exc.code, str(exc)) from None
     t0 = time.perf_counter()
-    y, env = model.score(x)
+    try:
+        y, env = score(x)
+    except ValueKindError as exc:  # a text feature's value not a string, or the reverse
+        raise ApiError(422, "invalid_value", str(exc),
+                       {"row": exc.row, "feature": exc.feature}) from None
     compute = time.perf_counter() - t0
     if not np.isfinite(y).all():  # JSON would carry it as null, silently
         i = int(np.argwhere(~np.isfinite(y))[0][0])

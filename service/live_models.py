@@ -61,7 +61,7 @@ def warm(model: Model) -> None:
     first-call costs, the laplacian's compiled loop above all, are paid here and not by the
     first request: a worker says ready only with every live model warmed."""
     with warming():
-        model.score(model.lo[None, :].copy())
+        model.score(model.low_row())
     log.info("model %s: version %s warmed in process %s", model.name, model.version,
              os.getpid())
 

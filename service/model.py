@@ -13,6 +13,7 @@ from collections.abc import Callable
 import numpy as np
 
 from service import envelope, intervals
+from service.categories import Categories, flag_new
 from service.engine import Engine
 from service.intervals import check_coverage
 from service.kernels import KernelSpec
@@ -42,6 +43,8 @@ class Model:
     ----------
     name, version, manifest : identity and the full manifest.
     features : feature names in the order ``predict`` expects.
+    columns : the encoded columns of the model's arrays: ``features``, with each text
+        feature replaced by its one-hot columns (:mod:`service.categories`).
     targets : target names; ``predict`` returns one column per target when there are several.
     """
 
@@ -59,8 +62,13 @@ class Model:
         self.spec = KernelSpec.from_params(kern["name"], kern.get("params", {}))
         precision = check_precision(manifest.get("precision", "float64"))
         env = manifest["envelope"]
-        self.lo = np.array([env["ranges"][f]["min"] for f in self.features])
-        self.hi = np.array([env["ranges"][f]["max"] for f in self.features])
+        self.encoding = Categories(self.features, manifest.get("categories"))
+        self.columns: list[str] = self.encoding.columns
+        numbers = self.encoding.number_mask()  # one-hot columns have no range to leave
+        self.lo = np.array([env["ranges"][f]["min"] if n else -np.inf
+                            for f, n in zip(self.columns, numbers, strict=True)])
+        self.hi = np.array([env["ranges"][f]["max"] if n else np.inf
+                            for f, n in zip(self.columns, numbers, strict=True)])
         nov = env["novelty"]
         self.novelty_tau = float(nov["threshold_distance"])
         self.neighbours = envelope.NeighbourIndex(arrays["novelty_reference"], int(nov["k"]))
@@ -83,8 +91,13 @@ class Model:
     def predict(self, x) -> np.ndarray:
         """Raw-unit predictions for raw rows ``x`` (m, d) in ``features`` order.
 
+        With text features (:attr:`encoding`), pass rows as a sequence of rows or an object
+        array: each text feature's value its category as a string, the others numbers; a
+        category never seen in training encodes as all zeros (:meth:`score_rows` flags it).
         Returns (m,) for one target, (m, t) for several.
         """
+        if self.encoding.any:
+            x = self.encoding.encode(list(x))[0]
         y = self.engine.predict(self._check(x), raw=True)
         return y[:, 0] if y.shape[1] == 1 else y
 
@@ -92,8 +105,18 @@ class Model:
         """(m, t) predictions for rows already standardized (service path, no re-checks)."""
         return self.engine.predict(xs) + self.intercept
 
+    def score_rows(self, rows) -> tuple[np.ndarray, list[dict]]:
+        """:meth:`score` of raw rows in ``features`` order, text features as strings; a
+        category never seen in training puts its row outside the envelope (ValueError for a
+        value of the wrong kind, naming row and feature)."""
+        x, unseen = self.encoding.encode(rows)
+        y, env = self.score(self._check(x))
+        flag_new(env, unseen)
+        return y, env
+
     def score(self, x: np.ndarray) -> tuple[np.ndarray, list[dict]]:
-        """Raw rows ``x`` (m, d), already checked, → ((m, t) predictions, envelope per row).
+        """Raw rows ``x`` (m, D) in :attr:`columns` order, already checked, → ((m, t)
+        predictions, envelope per row).
 
         The one path from rows to answers (the service and ``kridge predict`` both use it).
         When the novelty reference rows are training rows (distance kernels), their
@@ -107,7 +130,7 @@ class Model:
             y = self.engine.predict(x, raw=True)
             score = self.novelty(self.standardize(x))
         outside = envelope.check_ranges(x, self.lo, self.hi)
-        return y, envelope.describe(x, outside, score, self.features, self.lo, self.hi)
+        return y, envelope.describe(x, outside, score, self.columns, self.lo, self.hi)
 
     def novelty(self, xs: np.ndarray) -> np.ndarray:
         """Novelty score of standardized rows: k-th neighbour distance / τ (see envelope)."""
@@ -118,7 +141,11 @@ class Model:
         x = np.asarray(x, dtype=np.float64)
         xs = self.standardize(x) if xs is None else xs
         outside = envelope.check_ranges(x, self.lo, self.hi)
-        return envelope.describe(x, outside, self.novelty(xs), self.features, self.lo, self.hi)
+        return envelope.describe(x, outside, self.novelty(xs), self.columns, self.lo, self.hi)
+
+    def low_row(self) -> np.ndarray:
+        """(1, D): every feature at its training minimum, one-hot columns at 0 (a probe)."""
+        return np.where(np.isfinite(self.lo), self.lo, 0.0)[None, :]
 
     @property
     def has_intervals(self) -> bool:
@@ -137,12 +164,12 @@ class Model:
     def _check(self, x) -> np.ndarray:
         x = np.asarray(x, dtype=np.float64)
         shape = x.shape
-        if len(shape) == 1 and len(self.features) == 1:
+        if len(shape) == 1 and len(self.columns) == 1:
             x = x[:, None]
             shape = x.shape
-        if len(shape) != 2 or shape[1] != len(self.features):
+        if len(shape) != 2 or shape[1] != len(self.columns):
             raise ValueError(
-                f"expected rows of {len(self.features)} features ({', '.join(self.features)}), "
+                f"expected rows of {len(self.columns)} features ({', '.join(self.columns)}), "
                 f"got shape {x.shape}"
             )
         # 0·v is 0 for every finite v and NaN for ±inf and NaN: one dot product (~0.5 µs)
@@ -151,7 +178,7 @@ class Model:
             return x
         if not np.isfinite(x).all():
             i, j = np.argwhere(~np.isfinite(x))[0]
-            raise ValueError(f"row {i}, feature {self.features[j]!r}: value is not finite")
+            raise ValueError(f"row {i}, feature {self.columns[j]!r}: value is not finite")
         return x
 
 
@@ -182,7 +209,7 @@ def load_model(store=None, name: str | None = None, version: int | None = None) 
 def verify(store, name: str, version: int) -> Model:
     """Raise :class:`StoreError` naming the fault unless the version loads and predicts."""
     model = load_model(store, name, version)
-    probe = model.standardize(model.lo[None, :] + 0.0)
+    probe = model.standardize(model.low_row())
     if not np.isfinite(model.predict_standardized(probe)).all():
         raise StoreError(f"{name} v{version}: predictions are not finite")
     return model

@@ -56,6 +56,7 @@ class ServedModel:
     features: tuple[str, ...]
     versions: tuple[int, ...]  # versions taking the same rows and coverage as the live one
     calibration: int | None  # calibration residuals behind ``coverage``; None: no intervals
+    categories: tuple[tuple[str, tuple[str, ...]], ...] = ()  # text features' categories
 
 
 def _calibration_size(store, name: str, version: int) -> int | None:
@@ -83,7 +84,9 @@ def describe_served(store, live) -> dict[str, ServedModel]:
                     same.append(v)
             except (StoreError, KeyError, TypeError, ValueError, IndexError):
                 continue
-        out[name] = ServedModel(tuple(model.features), tuple(same or [model.version]), own)
+        text = tuple((f, tuple(c)) for f, c in model.encoding.categories.items())
+        out[name] = ServedModel(tuple(model.features), tuple(same or [model.version]), own,
+                                text)
     return out
 
 
@@ -106,10 +109,15 @@ def _model_body(batch: dict, served: ServedModel) -> dict:
     intervals, up to what they allow (the rule of :func:`service.intervals.coverage_limit`,
     which the service applies)."""
     number = batch["properties"]["rows"]["items"]["anyOf"][0]["additionalProperties"]
+    text = {f: {"type": "string", "maxLength": 200,
+                "description": f"Category, one of: {', '.join(c)} (another is answered, "
+                               "flagged outside the envelope)."}
+            for f, c in served.categories}
     rows = dict(batch["properties"]["rows"], items={"anyOf": [
-        {"type": "object", "properties": {f: number for f in served.features},
+        {"type": "object", "properties": {f: text.get(f, number) for f in served.features},
          "required": list(served.features), "additionalProperties": False},
-        {"type": "array", "items": number, "minItems": len(served.features),
+        {"type": "array", "items": {"anyOf": [number, {"type": "string", "maxLength": 200}]}
+         if text else number, "minItems": len(served.features),
          "maxItems": len(served.features),
          "description": "In this order: " + ", ".join(served.features)},
     ]})

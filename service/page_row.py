@@ -37,22 +37,29 @@ class FeatureField:
     high: str
     text: str  # what the field holds: as entered, else the training mean
     error: str | None = None
+    choices: tuple[str, ...] = ()  # a text feature's training categories
 
 
 def form_fields(model: Model, given: Mapping[str, str]) -> list[FeatureField]:
     """A field per feature in model order, filled from ``given`` (the query) or the mean."""
     out = []
-    for j, feature in enumerate(model.features):
+    for j, (feature, (c, _)) in enumerate(zip(model.features, model.encoding.slots,
+                                               strict=True)):
         key = f"f{j}"
         text = given.get(key)
+        choices = tuple(model.encoding.categories.get(feature, ()))
+        if choices:  # a text feature: its category, by default the first one
+            out.append(FeatureField(key, feature, "", "", (text or choices[0]).strip(),
+                                    choices=choices))
+            continue
         if text is None:
-            text = number(float(model.mean[j]), 4)
-        out.append(FeatureField(key, feature, number(float(model.lo[j]), 6),
-                                number(float(model.hi[j]), 6), text.strip()))
+            text = number(float(model.mean[c]), 4)
+        out.append(FeatureField(key, feature, number(float(model.lo[c]), 6),
+                                number(float(model.hi[c]), 6), text.strip()))
     return out
 
 
-def read_numbers(fields: list[FeatureField]) -> dict[str, float] | None:
+def read_numbers(fields: list[FeatureField]) -> dict[str, float | str] | None:
     """The row as {feature: value}; None with ``error`` set on each field that is no number.
 
     Only the text-to-number step happens here; range, finiteness and size are the predict
@@ -60,6 +67,9 @@ def read_numbers(fields: list[FeatureField]) -> dict[str, float] | None:
     """
     row, ok = {}, True
     for f in fields:
+        if f.choices:  # a text feature's category goes as written
+            row[f.feature] = f.text
+            continue
         try:
             row[f.feature] = float(f.text)
         except ValueError:
@@ -82,7 +92,7 @@ class Outcome:
     error: str | None = None
 
 
-def try_row(model: Model, row: dict[str, float], coverage: float | None,
+def try_row(model: Model, row: dict[str, float | str], coverage: float | None,
             max_rows: int) -> Outcome:
     """Predict one row with the predict route's parsing, validation and computation."""
     body = {"rows": [row]}
@@ -91,7 +101,7 @@ def try_row(model: Model, row: dict[str, float], coverage: float | None,
     t0 = time.perf_counter()
     try:
         # orjson writes a NaN or infinity as null, which the route's validation refuses
-        req = parse_body(orjson.dumps(body), max_rows, model.features)
+        req = parse_body(orjson.dumps(body), max_rows, model.features, model.encoding.any)
         resp, _ = predict_response(model, req, t0, time.perf_counter())
     except ApiError as exc:
         return Outcome(error=exc.message)
@@ -131,6 +141,9 @@ def verdict(envelope: dict, k: int) -> list[str]:
         lines.append(Markup("Out of range: {} = {} is {} its training range {} to {} by {}.")
                      .format(html_name(feature), number(value, 6), side, number(lo, 6),
                              number(hi, 6), number(by, 4)))
+    for feature, value in (envelope.get("new_category") or {}).items():
+        lines.append(Markup("New category: {} = {} was not among the training rows' "
+                            "categories.").format(html_name(feature), value))
     score = envelope["novelty"]
     if envelope["novel"]:
         lines.append(f"Novel row: novelty {number(score, 3)}. Its {ordinal(k)} nearest "

@@ -37,6 +37,12 @@ ObjectRow = Annotated[dict[str, Number], Field(min_length=1)]
 ArrayRow = Annotated[list[Number], Field(min_length=1)]
 
 
+#: A text feature's category, as a row carries it (:mod:`service.categories`).
+Category = Annotated[str, Field(max_length=200)]
+TextObjectRow = Annotated[dict[str, Number | Category], Field(min_length=1)]
+TextArrayRow = Annotated[list[Number | Category], Field(min_length=1)]
+
+
 #: Longest row identifier: room for a UUID, a sample code or a path-like key.
 MAX_ID_CHARS = 200
 RowId = Annotated[str, Field(max_length=MAX_ID_CHARS)]
@@ -54,6 +60,14 @@ class RowBatch(Strict):
         None, description="One identifier per row, in row order; each comes back as its "
         "result's id. As many as there are rows.",
     )
+
+
+class TextRowBatch(RowBatch):
+    """A request to a model with text features: a row's text feature holds its category."""
+
+    rows: list[TextObjectRow | TextArrayRow] = Field(
+        ..., min_length=1, description="Rows to predict. " + ROW_DOC
+        + " A text feature's value is its category as a string.")
 
 
 class Answer(BaseModel):
@@ -78,6 +92,9 @@ class Envelope(Answer):
         "threshold; above 1 means farther than 99 % of training rows are from theirs."
     )
     novel: bool = Field(description="novelty > 1")
+    new_category: dict[str, str] | None = Field(
+        None, description="Text features whose category the training rows never had "
+        "(feature: value); such a row is not inside.")
 
 
 class Result(Answer):

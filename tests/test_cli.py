@@ -114,7 +114,7 @@ def test_predict_columns_and_numbers_equal_load_model(trained, small_csv, tmp_pa
     data = tmp_path / "new.csv"
     lines = small_csv.read_text().splitlines()
     data.write_text("\n".join(lines[:11] + ["400,10,60,50,600,100,80"]) + "\n")
-    code, out, err = run_cli(capsys, "predict", "coat", data)
+    code, out, err = run_cli(capsys, "predict", "coat", data, "--with-inputs")
     assert code == 0, err
     header, rows = read_output(out)
     assert header == FEATURES + ["hardness_s_predicted", "gloss_gu_predicted",
@@ -134,7 +134,7 @@ def test_predict_counts_extrapolations_on_stderr(trained, small_csv, tmp_path, c
     lines = small_csv.read_text().splitlines()
     far = ["400,10,60,50,600,100,80", "-50,10,60,50,600,100,80", "150,99,60,50,600,100,80"]
     data.write_text("\n".join(lines[:8] + far) + "\n")
-    code, out, err = run_cli(capsys, "predict", "coat", data)
+    code, out, err = run_cli(capsys, "predict", "coat", data, "--with-inputs")
     assert code == 0, err
     _, rows = read_output(out)
     outside = sum(r[7] == "false" for r in rows)
@@ -151,7 +151,7 @@ def test_predict_counts_extrapolations_on_stderr(trained, small_csv, tmp_path, c
 def test_predict_with_coverage_adds_bounds(trained, small_csv, tmp_path, capsys):
     out_file = tmp_path / "pred.csv"
     code, out, err = run_cli(capsys, "predict", "coat", small_csv, "--coverage", "0.9",
-                             "--out", out_file)
+                             "--out", out_file, "--with-inputs")
     assert code == 0 and out == ""
     assert "60 rows scored with coat v1" in err
     header, rows = read_output(out_file.read_text())

@@ -139,7 +139,7 @@ def test_predict_csv_neutralises_formula_names_and_keeps_numbers(tmp_path, store
     lines = data.read_text().splitlines()
     score.write_text("\n".join(lines[:6] + ["99,0,0,0,1"]) + "\n")  # last row: out of range
     out = tmp_path / "out.csv"
-    code, _, err = run_cli(capsys, "predict", "f", score, "--out", out)
+    code, _, err = run_cli(capsys, "predict", "f", score, "--out", out, "--with-inputs")
     assert code == 0, err
     with open(out, newline="") as fh:
         header, *rows = list(csv.reader(fh))
@@ -237,7 +237,7 @@ def test_old_store_names_print_escaped_and_the_model_serves(tmp_path, store_dir,
                         "--release")
     printed = []
     for argv in (("inspect", "old"), ("versions", "old"), ("verify", "old"),
-                 ("predict", "old", data)):
+                 ("predict", "old", data, "--with-inputs")):
         code, out, err = run_cli(capsys, *argv)
         assert code == 0, err
         printed.append(out + err)

@@ -84,8 +84,8 @@ def grid_edge_warnings(tuning: dict | None) -> list[dict]:
             + ("a larger ridge than searched would smooth more; give --ridge to try one"
                if ridge["side"] == "upper" else
                "so small a ridge barely regularizes: expected for a smooth, nearly noise-free "
-               "response, else check for repeated or near-copy rows, or give --ridge")), parameter="ridge", value=chosen["ridge"],
-            edge=ridge["side"]))
+               "response, else check for repeated or near-copy rows, or give --ridge")),
+            parameter="ridge", value=chosen["ridge"], edge=ridge["side"]))
     width = chosen.get("width_edge")
     if width:
         lo, hi = width["range"]

@@ -43,7 +43,8 @@ def cmd_train(args) -> int:
         kernel=args.kernel, gamma=args.gamma, degree=args.degree, coef0=args.coef0,
         ridge=args.ridge, holdout=args.holdout, seed=args.seed, release=args.release,
         store=args.store, quiet=args.quiet, report=not args.no_report,
-        precision=args.precision, time=args.time, drop_incomplete=args.drop_incomplete,
+        precision=args.precision, time=args.time, time_format=args.time_format,
+        drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
         group=args.group,
@@ -184,25 +185,9 @@ def cmd_verify(args) -> int:
 
 
 def cmd_predict(args) -> int:
-    from service.model import load_model
-    from trainer.score_file import envelope_note, score_csv
+    from trainer.predict_command import run
 
-    model = load_model(_store(args), args.model, args.version and check_version(args.version))
-    if args.out:
-        tmp = f"{args.out}.partial"
-        try:
-            with open(tmp, "w", newline="") as fh:
-                scored = score_csv(model, args.data, fh, args.coverage, args.quiet)
-            os.replace(tmp, args.out)
-        finally:
-            if os.path.exists(tmp):
-                os.unlink(tmp)
-        print(f"{scored.rows} rows scored with {model.name} v{model.version} -> {args.out}",
-              file=sys.stderr)
-    else:
-        scored = score_csv(model, args.data, sys.stdout, args.coverage, quiet=True)
-    print(envelope_note(scored), file=sys.stderr)
-    return 0
+    return run(args, _store(args))
 
 
 def cmd_drift(args) -> int:
@@ -265,6 +250,10 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--group", metavar="COL",
                    help="group column (a mix, batch or sample id; not a feature): every row "
                         "of a group stays on one side of the holdout and of each tuning fold")
+    t.add_argument("--time-format", metavar="FMT",
+                   help="how the --time column is written, in strftime codes (e.g. "
+                        "'%%d.%%m.%%Y %%H:%%M'; default: ISO 8601, a number, or day-first/"
+                        "month-first dates when the column shows which)")
     t.add_argument("--drop-incomplete", action="store_true",
                    help="leave out (and count) rows with a missing feature value")
     t.add_argument("--sep", help="CSV separator (default: detected)")
@@ -324,13 +313,10 @@ def build_parser() -> argparse.ArgumentParser:
     ve.add_argument("model")
     ve.add_argument("version", nargs="?")
 
-    pr = add("predict", cmd_predict, "offline batch predictions of a CSV to a CSV")
-    pr.add_argument("model")
-    pr.add_argument("data")
-    pr.add_argument("--version")
-    pr.add_argument("--out", help="output CSV (default: standard output)")
-    pr.add_argument("--coverage", type=float, help="add interval bounds at this coverage")
-    pr.add_argument("--quiet", action="store_true")
+    from trainer.predict_command import FORMATS, add_arguments
+
+    pr = add("predict", cmd_predict, f"offline batch predictions of {FORMATS} to a CSV")
+    add_arguments(pr)
 
     dr = add("drift", cmd_drift, "kernel two-sample test: do new inputs differ from the "
              "training inputs? (no target needed)")

@@ -38,6 +38,10 @@ def run(model, path, permutations: int | None = None, seed: int = 0) -> DriftRes
     permutations = PERMUTATIONS if permutations is None else permutations
     if permutations < 1:
         raise UserError(f"--permutations must be at least 1, not {permutations}")
+    if model.encoding.any:  # the per-feature account is of number columns
+        raise UserError(f"{model.name} v{model.version} has text features "
+                        f"({', '.join(model.encoding.categories)}); the drift test takes "
+                        "models of number features only")
     return check_drift(model, read_rows(path, model.features), permutations, seed)
 
 

@@ -50,9 +50,11 @@ def train(opts: TrainOptions, log=print) -> dict:
     fitted = solver.fit(plan, rows, split, tuned, want_loo, log)
     scores = metrics.held_out_metrics(plan.columns.targets, fitted.evidence)
     calib, intervals = calibration.calibrate(fitted.evidence, split.by_time)
-    span = manifest.time_span(plan.columns.time, rows.times, rows.clock)
+    span = manifest.time_span(plan.columns.time, rows.times, rows.clock,
+                              plan.source.time_rule)
     envelope, reference = envelope_stats.training_envelope(
-        fitted.envelope, plan.columns.features, plan.splits.seed, span)
+        fitted.envelope, rows.encoding.columns if rows.encoding else plan.columns.features,
+        plan.splits.seed, span)
     check_x, check_y = fitted.check_rows
     check = precision_check(plan.output.precision, fitted.spec, fitted.x_train, fitted.dual,
                             check_x, list(plan.columns.targets), check_y, log)

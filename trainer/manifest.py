@@ -18,6 +18,7 @@ from service.store import now_iso
 
 if TYPE_CHECKING:
     from trainer.plan import Plan
+    from trainer.read.dates import TimeRule
     from trainer.solvers import Fitted, Rows
     from trainer.validation.splits import HoldoutSplit, PartSplit
 
@@ -29,13 +30,18 @@ def time_text(value: float, clock: bool) -> str | float:
     return datetime.fromtimestamp(value, tz=timezone.utc).isoformat(timespec="seconds")
 
 
-def time_span(column: str | None, times: np.ndarray | None, clock: bool) -> dict | None:
-    """First and last time of the training rows, for the manifest and the envelope."""
+def time_span(column: str | None, times: np.ndarray | None, clock: bool,
+              rule: TimeRule | None = None) -> dict | None:
+    """First and last time of the training rows, for the manifest and the envelope;
+    ``rule``: how the column's text was read, recorded when not ISO 8601 or numbers."""
     if times is None:
         return None
-    return {"column": column, "start": time_text(times.min(), clock),
+    span = {"column": column, "start": time_text(times.min(), clock),
             "end": time_text(times.max(), clock),
             "kind": "ISO 8601, UTC" if clock else "number"}
+    if rule is not None and rule.formats:
+        span["read_as"] = rule.describe()
+    return span
 
 
 def library_versions() -> dict[str, str]:
@@ -71,6 +77,8 @@ def build_manifest(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,
         "precision": plan.output.precision,
         "precision_check": check,
         "libraries": library_versions(),
+        # text features' categories in one-hot column order (service.categories)
+        **({"categories": rows.encoding.categories} if rows.encoding else {}),
     }
 
 

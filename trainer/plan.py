@@ -45,6 +45,7 @@ class TrainOptions:
     report: bool = True
     precision: str = "float64"
     time: str | None = None
+    time_format: str | None = None  # strptime codes for the time column (trainer.read.dates)
     drop_incomplete: bool = False
     sep: str | None = None
     decimal: str | None = None
@@ -64,6 +65,7 @@ class Columns:
     targets: tuple[str, ...]
     time: str | None
     drop_incomplete: bool
+    text: tuple[str, ...] = ()  # features whose cells are text: encoded one-hot (exact only)
     group: str | None = None  # --group: holdout and tuning folds keep each group whole
 
 
@@ -169,6 +171,8 @@ def check_options(opts: TrainOptions) -> Store:
                        or opts.solver == "cg"):
         raise UserError("--group needs every row in memory: it works with the exact method "
                         "only (--method exact or auto)")
+    if opts.time_format is not None and opts.time is None:
+        raise UserError("--time-format says how the --time column is written; give --time COL")
     return store
 
 
@@ -213,11 +217,18 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
     store = check_options(opts)
     src = Source(opts.data, opts.sep, opts.decimal)
     features = columns.feature_names(src, opts.targets, opts.features, opts.time, opts.group)
+    if opts.time:
+        src.settle_time(opts.time, opts.time_format)
+    text = tuple(columns.text_features(src, features)) if opts.features else ()
     method, reason = choose_method(opts, src)
+    if text and method == "nystrom":
+        raise UserError(f"text feature(s) {', '.join(map(repr, text))} are encoded one-hot for "
+                        f"exact fits only, and this fit would be Nyström ({reason}); train "
+                        "with --method exact (at most 15,000 rows) or leave them out")
     return Plan(
         source=src,
         columns=Columns(tuple(features), tuple(opts.targets), opts.time,
-                        opts.drop_incomplete, opts.group),
+                        opts.drop_incomplete, text, opts.group),
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
                       opts.solver),
         splits=Splits(opts.holdout, opts.seed),

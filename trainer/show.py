@@ -92,6 +92,8 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         ("created", m.get("created", "?")),
         ("features", f"{len(m['features'])}: {', '.join(m['features'])} (sha256 "
                      f"{features_hash(m['features'])})"),
+        *[(f"{f} (text)", f"one-hot over {len(c)}: {', '.join(c)}")
+          for f, c in (m.get("categories") or {}).items()],
         ("targets", ", ".join(m["targets"])),
         ("kernel", f"{kern['name']}({params})"),
         ("ridge", fmt(m["ridge"], 6)),

@@ -26,6 +26,7 @@ from typing import TYPE_CHECKING, Protocol
 
 import numpy as np
 
+from service.categories import Categories
 from service.kernels import KernelSpec
 
 if TYPE_CHECKING:
@@ -43,6 +44,8 @@ class Rows:
     counts: dict  # the row account (read, with a target, left out, used)
     times: np.ndarray | None  # every usable row's time, in the solver's row order
     clock: bool  # the time column held timestamps, not plain numbers
+    #: text features' encoding (service.categories): the rows' columns are its ``columns``
+    encoding: Categories | None = field(default=None, kw_only=True)
 
 
 @dataclass

@@ -72,7 +72,7 @@ def answer(name: str, model: Model, raw: bytes, max_rows: int, t_start: float,
     version = str(model.version)
     environ[LABELS] = labels = (name, version)
     with COMPUTE_SLOT:  # one request of this worker at a time; the socket work is outside
-        req = parse_body(raw, max_rows, model.features)
+        req = parse_body(raw, max_rows, model.features, model.encoding.any)
         t_parsed = perf_counter()
         body, compute = predict_response(model, req, t_start, t_parsed)
         results = body["results"]

@@ -54,13 +54,14 @@ class ExactSolver:
     def read(self, plan: Plan, log: Log) -> RowsInMemory:
         c = plan.columns
         d = columns.read_rows(plan.source, c.targets, c.features, c.time, c.drop_incomplete,
-                              c.group)
+                              c.text, c.group)
         x, y, t = d.x, d.y, d.time
         if t is not None:  # time order: the holdout is the latest stretch, folds run forward
             order = np.argsort(t, kind="stable")
             x, y, t = x[order], y[order], t[order]
-        return RowsInMemory(x.shape[0], d.counts, t, d.time_is_clock, x, y, d.groups,
-                            d.group_names)
+        return RowsInMemory(x.shape[0], d.counts, t, d.time_is_clock, x, y,
+                            encoding=d.encoding, groups=d.groups,
+                            group_names=d.group_names)
 
     def tune(self, plan: Plan, rows: RowsInMemory, split: HoldoutSplit, log: Log) -> Tuned:
         p = plan.parameters

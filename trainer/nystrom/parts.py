@@ -17,6 +17,7 @@ import numpy as np
 from service.kernels import KernelSpec
 from trainer.nystrom import numerics
 from trainer.read.columns import usable_rows
+from trainer.read.dates import TimeRule
 from trainer.read.source import Block, Source
 from trainer.validation.splits import PartSplit, part_keys
 
@@ -41,6 +42,7 @@ class BlockPlan:
     seed: int
     split: PartSplit  # the job's split: the rule that gives each row its part
     keep_train: bool = False  # CG: return the training rows themselves, no sums
+    time_rule: TimeRule = field(default_factory=TimeRule)  # how the time column reads
 
 
 @dataclass
@@ -55,7 +57,7 @@ def block_sums(plan: BlockPlan, block: Block, first_row: int) -> BlockResult:
     Runs locally or on a Dask worker (which opens the file itself); the result depends only
     on the block, never on which machine computed it.
     """
-    src = Source(plan.path, plan.sep, plan.decimal)
+    src = Source(plan.path, plan.sep, plan.decimal, plan.time_rule)
     chunk = src.read_block(block, plan.features + plan.targets, plan.time, first_row)
     d = len(plan.features)
     keep = usable_rows(src, chunk, plan.features, plan.time, first_row,

@@ -202,7 +202,7 @@ class NystromSolver:
         block_plan = BlockPlan(str(src.path), src.sep, src.decimal, list(c.features),
                                list(c.targets), c.time, c.drop_incomplete, rows.mean,
                                rows.scale, tuned.spec, tuned.landmarks, plan.splits.seed,
-                               split)
+                               split, time_rule=src.time_rule)
         solver, why = choose_solver(plan.method.solver, tuned.landmarks.shape[0])
         self.solve_record, self.warnings = {"solver": solver, "reason": why}, []
         if solver == "cg":

@@ -2,7 +2,8 @@
 
 Shared by every input format of :mod:`trainer.read.source`. Empty cells (and the usual spellings of
 missing: ``NA``, ``NaN``, ``null`` …) become NaN; the caller decides what a missing value
-means. A time cell is an ISO 8601 timestamp (UTC when it names no offset) or a plain number.
+means. A time cell is read by a :class:`~trainer.read.dates.TimeRule` (default: an ISO 8601
+timestamp, UTC when it names no offset, or a plain number).
 """
 
 from __future__ import annotations
@@ -17,6 +18,12 @@ from pathlib import Path
 import numpy as np
 
 from trainer.errors import UserError
+from trainer.read.dates import TimeRule, iso_or_number
+
+#: The default time rule: ISO 8601 or a plain number.
+ISO = TimeRule()
+#: An ISO 8601 stamp or a number → seconds or the number (see :mod:`trainer.read.dates`).
+parse_time_text = iso_or_number
 
 #: Rows per block for Parquet and Excel.
 BLOCK_ROWS = 100_000
@@ -44,6 +51,9 @@ class Chunk:
     block: Block
     values: np.ndarray  # (m, k) float64
     time: np.ndarray | None  # (m,) float64: seconds since 1970 (UTC) or plain numbers
+    #: cells of the columns asked for as they are (CSV: the text written, missing spellings
+    #: included; Parquet/Excel: the typed values, None when empty): ``cells[k][i]``
+    cells: list[list] | None = None
 
 
 def check_header(header: list, where: str) -> list[str]:
@@ -76,23 +86,7 @@ def is_missing(value) -> bool:
     return value is None or (isinstance(value, str) and value.strip() in MISSING)
 
 
-def parse_time_text(text: str) -> float:
-    """A timestamp cell → seconds since 1970-01-01 UTC (ISO 8601) or the number itself.
-
-    ISO 8601 without a zone offset is taken as UTC.
-    """
-    text = text.strip()
-    try:
-        return float(text)
-    except ValueError:
-        pass
-    stamp = datetime.fromisoformat(text.replace("Z", "+00:00").replace("z", "+00:00"))
-    if stamp.tzinfo is None:
-        stamp = stamp.replace(tzinfo=timezone.utc)
-    return (stamp - _EPOCH).total_seconds()
-
-
-def time_value(value) -> float:
+def time_value(value, rule: TimeRule = ISO) -> float:
     """A time cell of any type (datetime, number, text) → seconds or the number."""
     if isinstance(value, datetime):
         stamp = value if value.tzinfo else value.replace(tzinfo=timezone.utc)
@@ -101,32 +95,31 @@ def time_value(value) -> float:
         raise ValueError("a boolean is not a time")
     if isinstance(value, int | float):
         return float(value)
-    return parse_time_text(str(value))
+    return rule.seconds(str(value))
 
 
-def one_time(value, where: str, column: str) -> float:
+def one_time(value, where: str, column: str, rule: TimeRule = ISO) -> float:
     """One time cell, refused with ``where`` and the column when it is not a time."""
     if is_missing(value):
         return math.nan
     try:
-        v = time_value(value)
+        v = time_value(value, rule)
     except (ValueError, TypeError):
-        raise UserError(f"{where}, column {column!r}: {value!r} is neither an ISO 8601 "
-                        "time nor a number") from None
+        raise UserError(f"{where}, column {column!r}: {rule.refusal(value)}") from None
     if not math.isfinite(v):
         raise UserError(f"{where}, column {column!r}: {value!r} is not a finite time")
     return v
 
 
-def times_of(cells: list, where_row: Callable[[int], str], column: str) -> np.ndarray:
+def times_of(cells: list, where_row: Callable[[int], str], column: str,
+             rule: TimeRule = ISO) -> np.ndarray:
     """A column of time cells (None = missing); ``where_row(i)`` names row i on refusal."""
     out = np.empty(len(cells))
     for i, cell in enumerate(cells):
         try:
-            out[i] = math.nan if cell is None else time_value(cell)
+            out[i] = math.nan if cell is None else time_value(cell, rule)
         except (ValueError, TypeError):
-            raise UserError(f"{where_row(i)}, column {column!r}: {cell!r} is neither an "
-                            "ISO 8601 time nor a number") from None
+            raise UserError(f"{where_row(i)}, column {column!r}: {rule.refusal(cell)}") from None
     return out
 
 

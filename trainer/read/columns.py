@@ -19,8 +19,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from service.categories import Categories
 from service.text_safety import name_refusal
 from trainer.errors import UserError
+from trainer.read.categorical import CodeBook
 from trainer.read.source import BLOCK_BYTES, Chunk, Source
 
 MIN_ROWS = 3
@@ -57,6 +59,7 @@ class TrainingData:
     dialect: dict = field(default_factory=dict)
     time_column: str | None = None
     time_is_clock: bool = False  # the time column held ISO 8601 stamps (not plain numbers)
+    encoding: Categories | None = None  # text features: x holds their one-hot columns
     groups: np.ndarray | None = None  # (n,) int: the --group label of each row, as a code
     group_names: list[str] | None = None  # the labels, in code order
 
@@ -168,8 +171,9 @@ def feature_names(src: Source, targets: list[str], features: list[str] | None,
         if odd:
             raise UserError(
                 f"{src.path}: column(s) {', '.join(map(repr, odd))} are not numeric; name the "
-                "inputs with --features (other columns are then ignored), or give a "
-                "timestamp column with --time")
+                "inputs with --features (other columns are then ignored; a text column named "
+                "there is encoded one-hot)"
+                + ("" if time else ", or give a timestamp column with --time"))
     overlap = set(features) & set(targets)
     if overlap:
         raise UserError(f"column(s) {', '.join(sorted(overlap))} cannot be feature and target")
@@ -184,11 +188,15 @@ def feature_names(src: Source, targets: list[str], features: list[str] | None,
 
 def load_training(path, targets: list[str], features: list[str] | None = None,
                   time: str | None = None, drop_incomplete: bool = False,
-                  sep: str | None = None, decimal: str | None = None) -> TrainingData:
+                  sep: str | None = None, decimal: str | None = None,
+                  time_format: str | None = None) -> TrainingData:
     """Open ``path``, resolve the feature names and :func:`read_rows` (tests, tools)."""
     src = Source(path, sep, decimal)
-    return read_rows(src, targets, feature_names(src, targets, features, time), time,
-                     drop_incomplete)
+    if time:
+        src.settle_time(time, time_format)
+    names = feature_names(src, targets, features, time)
+    return read_rows(src, targets, names, time, drop_incomplete,
+                     text_features(src, names) if features else ())
 
 
 def group_codes(src: Source, column: str, kept: np.ndarray) -> tuple[np.ndarray, list[str]]:
@@ -205,9 +213,11 @@ def group_codes(src: Source, column: str, kept: np.ndarray) -> tuple[np.ndarray,
 
 
 def read_rows(src: Source, targets: list[str], features: list[str], time: str | None,
-              drop_incomplete: bool, group: str | None = None) -> TrainingData:
+              drop_incomplete: bool, text: list[str] | tuple = (),
+              group: str | None = None) -> TrainingData:
     """Read the rows to fit on: rows with every target present, complete features
-    (``features`` already resolved by :func:`feature_names`).
+    (``features`` already resolved by :func:`feature_names`). The ``text`` features are
+    encoded one-hot (:mod:`trainer.read.categorical`): ``x`` then holds the encoded columns.
 
     Returns
     -------
@@ -218,7 +228,11 @@ def read_rows(src: Source, targets: list[str], features: list[str], time: str | 
     d = len(features)
     xs, ys, ts, kept = [], [], [], []
     read = with_target = dropped = 0
-    for chunk in src.chunks(features + targets, time):
+    book = CodeBook(features, text) if text else None
+    numbers = book.numbers if book else features
+    for chunk in src.chunks(numbers + targets, time, cells=list(text) or None):
+        if book is not None:
+            chunk = book.merge(chunk, targets)
         m = chunk.values.shape[0]
         v = chunk.values
         keep, has_target, bad = usable_rows(src, chunk, features, time, read, drop_incomplete)
@@ -245,9 +259,17 @@ def read_rows(src: Source, targets: list[str], features: list[str], time: str | 
             raise UserError(f"{src.path}: target column {name!r} is constant ({y[0, j]:g})")
     counts = row_counts(read, with_target, dropped, n, targets)
     clock = bool(time) and is_clock(src, time)
+    encoding = None
+    if book is not None:
+        x, encoding = book.encode(x, src.path)
     codes, names = (group_codes(src, group, np.concatenate(kept)) if group else (None, None))
     return TrainingData(features, list(targets), x, y, t, src.sha256, str(src.path), counts,
-                        src.dialect(), time, clock, codes, names)
+                        src.dialect(), time, clock, encoding, codes, names)
+
+
+def text_features(src: Source, features: list[str]) -> list[str]:
+    """The named features whose cells are mostly text: encoded one-hot."""
+    return src.numeric_probe(features)
 
 
 def count_target_rows(src: Source, targets: list[str]) -> int:

@@ -19,6 +19,7 @@ import numpy as np
 from trainer.errors import UserError
 from trainer.read.cells import (
     DECIMAL_COMMA,
+    ISO,
     MISSING,
     Block,
     Chunk,
@@ -39,6 +40,7 @@ class CsvFile:
         self.path = path
         self.layout = layout
         self.sep, self.decimal, self.header = layout.sep, layout.decimal, layout.header
+        self.time_rule = ISO  # how the time column's cells read (Source.settle_time)
 
     def blocks(self, block_bytes: int = BLOCK_BYTES) -> Iterator[Block]:
         """Byte ranges of whole records: cut at a newline outside quotes."""
@@ -86,13 +88,18 @@ class CsvFile:
     def where(self, block: Block, row: int) -> str:
         return f"{self.path}: line {self.line_of(block, row)}"
 
-    def chunk(self, block: Block, columns: list[str], time: str | None) -> Chunk:
-        """Numbers of ``columns`` (and the ``time`` column) in one block."""
+    def chunk(self, block: Block, columns: list[str], time: str | None,
+              cells: list[str] | None = None) -> Chunk:
+        """Numbers of ``columns`` (and the ``time`` column) in one block, and the text of the
+        ``cells`` columns as written."""
         import pyarrow as pa
         import pyarrow.csv as pcsv
 
         raw = self.read_bytes(block)
         wanted = columns + ([time] if time else [])
+        if not wanted:  # only cells as written (pyarrow would read every column)
+            texts = self._texts(raw, cells or [])
+            return Chunk(block, np.empty((len(texts[0]) if texts else 0, 0)), None, texts)
         types = {c: pa.float64() for c in columns}
         if time:
             types[time] = pa.string()
@@ -123,8 +130,24 @@ class CsvFile:
         times = None
         if time:
             times = times_of(table.column(time).to_pylist(),
-                             lambda i: self.where(block, i), time)
-        return Chunk(block, values, times)
+                             lambda i: self.where(block, i), time, self.time_rule)
+        return Chunk(block, values, times, self._texts(raw, cells) if cells else None)
+
+    def _texts(self, raw: bytes, columns: list[str]) -> list[list[str]]:
+        """The cells of ``columns`` as written (quotes removed, nothing read as missing)."""
+        import pyarrow as pa
+        import pyarrow.csv as pcsv
+
+        table = pcsv.read_csv(
+            io.BytesIO(raw),
+            read_options=pcsv.ReadOptions(column_names=self.header, use_threads=False),
+            parse_options=pcsv.ParseOptions(delimiter=self.sep,
+                                            newlines_in_values=b'"' in raw),
+            convert_options=pcsv.ConvertOptions(
+                include_columns=columns, column_types=dict.fromkeys(columns, pa.string()),
+                null_values=[], strings_can_be_null=False, quoted_strings_can_be_null=False),
+        )
+        return [table.column(c).to_pylist() for c in columns]
 
     def _explain(self, block: Block, raw: bytes, columns: list[str], exc) -> None:
         """Find the first bad record or cell of a block that pyarrow refused, and say so."""

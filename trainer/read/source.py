@@ -16,9 +16,18 @@ from collections.abc import Iterator
 
 from service.store import sha256_file
 from trainer.errors import UserError
-from trainer.read.cells import BLOCK_ROWS, MISSING, Block, Chunk, check_path, parse_time_text
+from trainer.read.cells import (
+    BLOCK_ROWS,
+    MISSING,
+    Block,
+    Chunk,
+    check_path,
+    is_missing,
+    parse_time_text,
+)
 from trainer.read.csv_blocks import BLOCK_BYTES, CsvFile
 from trainer.read.csv_dialect import SEPARATORS, detect
+from trainer.read.dates import TimeRule, decide, given_format
 from trainer.read.tables import ExcelSheet, ParquetTable
 
 __all__ = ["BLOCK_BYTES", "BLOCK_ROWS", "MISSING", "SEPARATORS", "Block", "Chunk", "Source",
@@ -33,9 +42,11 @@ class Source:
     path : CSV (``.csv``, ``.txt``, ``.tsv`` or anything else), ``.parquet``/``.pq`` or
         ``.xlsx``/``.xlsm``.
     sep, decimal : CSV separator and decimal mark; detected from the first lines when None.
+    time_rule : how the time column reads (from :meth:`settle_time`, e.g. on a Dask worker).
     """
 
-    def __init__(self, path, sep: str | None = None, decimal: str | None = None):
+    def __init__(self, path, sep: str | None = None, decimal: str | None = None,
+                 time_rule: TimeRule | None = None):
         self.path = check_path(path)
         suffix = self.path.suffix.lower()
         self.kind = {".parquet": "parquet", ".pq": "parquet", ".xlsx": "excel",
@@ -52,6 +63,41 @@ class Source:
             self._file = ExcelSheet(self.path)
             self.sheet = self._file.sheet
         self.header: list[str] = self._file.header
+        if time_rule is not None:
+            self._file.time_rule = time_rule
+
+    @property
+    def time_rule(self) -> TimeRule:
+        return self._file.time_rule
+
+    def settle_time(self, time: str, time_format: str | None = None) -> TimeRule:
+        """Decide once how column ``time`` reads (:mod:`trainer.read.dates`) and keep it.
+
+        With ``time_format`` that format; else ISO 8601 or numbers, or written dates whose
+        day/month order the whole column shows. Reads only the time column, and past its
+        first block only when that block holds a written date.
+        """
+        self.check_columns([time], "time column")
+        if time_format is not None:
+            rule = given_format(time_format)
+        else:
+            rule = decide(self._time_texts(time), time, str(self.path))
+        self._file.time_rule = rule
+        return rule
+
+    def _time_texts(self, time: str):
+        """(text, where) of the time column's text cells, stopping after the first block
+        when it holds only ISO stamps, numbers and typed times."""
+        first_row = 0
+        for n, chunk in enumerate(self.chunks([], cells=[time])):
+            written = False
+            for i, cell in enumerate(chunk.cells[0]):
+                if isinstance(cell, str) and not is_missing(cell):
+                    written = written or _is_written_date(cell)
+                    yield cell, (lambda b=chunk.block, r=i, f=first_row: self.where(b, r, f))
+            first_row += chunk.values.shape[0]
+            if n == 0 and not written:
+                return
 
     # -- identity ------------------------------------------------------------------------
     @property
@@ -93,26 +139,31 @@ class Source:
                             f"columns are {', '.join(self.header)}")
 
     def read_block(self, block: Block, columns: list[str], time: str | None = None,
-                   first_row: int = 0) -> Chunk:
-        """Numbers of ``columns`` (and the ``time`` column) in one block."""
+                   first_row: int = 0, cells: list[str] | None = None) -> Chunk:
+        """Numbers of ``columns`` (and the ``time`` column) in one block; the ``cells``
+        columns as the file holds them (:attr:`Chunk.cells`)."""
         if isinstance(self._file, CsvFile):
-            return self._file.chunk(block, columns, time)
+            return self._file.chunk(block, columns, time, cells)
         if isinstance(self._file, ParquetTable):
-            return self._file.chunk(block, columns, time, first_row)
+            return self._file.chunk(block, columns, time, first_row, cells)
         raise UserError(f"{self.path}: Excel files are read whole, not in blocks")
 
     def chunks(self, columns: list[str], time: str | None = None,
-               block_bytes: int = BLOCK_BYTES) -> Iterator[Chunk]:
-        """Read ``columns`` block by block, in file order. Columns are checked first."""
-        self.check_columns(columns + ([time] if time else []))
+               block_bytes: int = BLOCK_BYTES, cells: list[str] | None = None
+               ) -> Iterator[Chunk]:
+        """Read ``columns`` block by block, in file order. Columns are checked first.
+
+        ``cells`` names columns wanted as the file holds them, unparsed (:attr:`Chunk.cells`).
+        """
+        self.check_columns(columns + ([time] if time else []) + list(cells or []))
         if isinstance(self._file, ExcelSheet):
-            yield from self._file.chunks(columns, time)
+            yield from self._file.chunks(columns, time, cells)
             return
         first_row = 0
         blocks = (self._file.blocks(block_bytes) if isinstance(self._file, CsvFile)
                   else self._file.blocks())
         for block in blocks:
-            chunk = self.read_block(block, columns, time, first_row)
+            chunk = self.read_block(block, columns, time, first_row, cells)
             first_row += chunk.values.shape[0]
             yield chunk
 
@@ -130,3 +181,11 @@ class Source:
         """Names among ``columns`` whose first block holds mostly cells that are not numbers
         (Parquet: whose type is not numeric)."""
         return self._file.numeric_probe(columns)
+
+
+def _is_written_date(text: str) -> bool:
+    try:
+        parse_time_text(text)
+        return False
+    except ValueError:
+        return True

@@ -16,6 +16,7 @@ import numpy as np
 from trainer.errors import UserError
 from trainer.read.cells import (
     BLOCK_ROWS,
+    ISO,
     Block,
     Chunk,
     cell_number,
@@ -39,17 +40,19 @@ class ParquetTable:
         except Exception as exc:  # pyarrow raises several types for a damaged file
             raise UserError(f"{path}: not readable as Parquet ({exc})") from None
         self.header = check_header(list(self.pq.schema_arrow.names), f"{path}: header")
+        self.time_rule = ISO
 
     def blocks(self) -> list[Block]:
         return [Block(i, i, i + 1, 0) for i in range(self.pq.num_row_groups)]
 
     def chunk(self, block: Block, columns: list[str], time: str | None,
-              first_row: int) -> Chunk:
-        """Numbers of ``columns`` (and ``time``) in one row group; ``first_row`` is the
-        group's first data row index (for messages)."""
+              first_row: int, cells: list[str] | None = None) -> Chunk:
+        """Numbers of ``columns`` (and ``time``) in one row group, and the typed values of
+        the ``cells`` columns; ``first_row`` is the group's first data row index (messages)."""
         import pyarrow as pa
 
-        table = self.pq.read_row_group(block.start, columns=columns + ([time] if time else []))
+        wanted = list(dict.fromkeys(columns + ([time] if time else []) + (cells or [])))
+        table = self.pq.read_row_group(block.start, columns=wanted)
         cols = []
         for name in columns:
             col = table.column(name)
@@ -74,8 +77,10 @@ class ParquetTable:
                     times[np.asarray(col.is_null())] = np.nan
             else:
                 times = times_of(col.to_pylist(),
-                                 lambda i: f"{self.path}: row {first_row + i + 1}", time)
-        return Chunk(block, values, times)
+                                 lambda i: f"{self.path}: row {first_row + i + 1}", time,
+                                 self.time_rule)
+        kept = [table.column(c).to_pylist() for c in cells] if cells else None
+        return Chunk(block, values, times, kept)
 
     def numeric_probe(self, columns: list[str]) -> list[str]:
         """Names among ``columns`` whose type is not a number."""
@@ -110,6 +115,7 @@ class ExcelSheet:
         while first and first[-1] is None:  # trailing empty header cells
             first = first[:-1]
         self.header = check_header(list(first), f"{path}: sheet {self.sheet!r}, row 1")
+        self.time_rule = ISO
 
     def where(self, block: Block, row: int) -> str:
         return f"{self.path}: sheet {self.sheet!r}, row {block.first_line + row}"
@@ -126,8 +132,10 @@ class ExcelSheet:
         finally:
             book.close()
 
-    def chunks(self, columns: list[str], time: str | None) -> Iterator[Chunk]:
+    def chunks(self, columns: list[str], time: str | None,
+               cells: list[str] | None = None) -> Iterator[Chunk]:
         index = [self.header.index(c) for c in columns]
+        kept = [self.header.index(c) for c in cells or []]
         t_index = self.header.index(time) if time else None
         batch: list[tuple[int, tuple]] = []
         count = 0
@@ -143,8 +151,10 @@ class ExcelSheet:
                 if time:
                     cell = row[t_index] if t_index < len(row) else None
                     times[i] = one_time(cell, f"{self.path}: sheet {self.sheet!r}, "
-                                              f"row {sheet_row}", time)
-            return Chunk(block, values, times)
+                                              f"row {sheet_row}", time, self.time_rule)
+            texts = ([[row[j] if j < len(row) else None for _, row in batch] for j in kept]
+                     if cells else None)
+            return Chunk(block, values, times, texts)
 
         for item in self.rows():
             batch.append(item)
