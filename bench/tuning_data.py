@@ -5,7 +5,9 @@
 * :func:`competing` — a linear trend, a kink and a wave: no single kernel family owns it, so
   rbf, Matérn and laplacian kernels score close to one another and ``--kernel auto`` has a
   real race to run;
-* :func:`fine_sine` — 15 periods of a sine on one input (the tuning tests' width-range case).
+* :func:`fine_sine` — 15 periods of a sine on one input (the tuning tests' width-range case);
+* :func:`smooth_and_wiggly` — several targets that want very different kernel widths
+  (``tests/test_per_target.py``, ``bench/per_target_rmse.py``).
 """
 
 from __future__ import annotations
@@ -34,3 +36,20 @@ def fine_sine(n: int, seed: int = 1) -> tuple[np.ndarray, np.ndarray]:
     rng = np.random.default_rng(seed)
     u = rng.uniform(0, 1, n)[:, None]
     return u, np.sin(2 * np.pi * 15 * u) + 0.05 * rng.standard_normal((n, 1))
+
+
+def smooth_and_wiggly(n: int = 150, seed: int = 1):
+    """Two noisy targets linear in the inputs (u, v) and one nearly noise-free fast sine of
+    u: (n, 2) inputs, (n, 3) targets, feature and target names. The smooth ones want a wide
+    kernel, the wiggly one a narrow kernel; one shared kernel, chosen on the mean of their
+    normalized errors, is a compromise that the wiggly target pays for.
+
+    y₁, y₂ = ½u + 0.3v + N(0, 0.5²) (independent noise), y₃ = sin(2.5u) + N(0, 0.05²),
+    u, v uniform on [−3, 3].
+    """
+    rng = np.random.default_rng(seed)
+    x = rng.uniform(-3, 3, (n, 2))
+    smooth = [0.5 * x[:, 0] + 0.3 * x[:, 1] + 0.5 * rng.normal(size=n) for _ in range(2)]
+    wiggly = np.sin(2.5 * x[:, 0]) + 0.05 * rng.normal(size=n)
+    return (x, np.column_stack([*smooth, wiggly]), ["u", "v"],
+            ["smooth_a", "smooth_b", "wiggly"])

@@ -257,7 +257,8 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
                                 else [float(lo[0]), float(hi[0])])
         item["envelope"] = env[i]
         results.append(item)
-    resp = {"model": model.name, "version": model.version, "results": results}
+    resp = {"model": model.name, "version": model.version, "targets": model.targets,
+            "results": results}
     if any(not e["inside"] for e in env):
         resp["caution"] = OUTSIDE_ENVELOPE
     resp["timing_ms"] = {

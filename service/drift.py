@@ -214,7 +214,9 @@ def check_drift(model, raw: np.ndarray, permutations: int = PERMUTATIONS,
     picked = _subsample(raw, rng)
     new = model.standardize(picked)
     spec, statistic, p = mmd_test(model.spec, ref, new, permutations, rng)
-    source = ("the version's own kernel" if spec is model.spec else
+    own = ("the version's own kernel" if len({tk.spec for tk in model.target_kernels}) == 1
+           else f"the version's first target's kernel ({model.targets[0]})")
+    source = (own if spec is model.spec else
               f"rbf with the median heuristic bandwidth ({model.spec.name} is not characteristic)")
     table = feature_table(model, raw, spec, ref, new, statistic)
     return DriftResult(statistic, p, spec.describe(), source, int(ref.shape[0]),

@@ -14,10 +14,10 @@ import numpy as np
 
 from service import envelope, intervals
 from service.categories import Categories, flag_new
-from service.engine import Engine
+from service.engine_groups import engine_for
 from service.intervals import check_coverage
-from service.kernels import KernelSpec
 from service.store import Store, StoreError
+from service.target_kernels import target_kernels
 
 #: Serving precisions a manifest (and ``kridge train --precision``) may name.
 PRECISIONS = ("float64", "float32")
@@ -46,6 +46,9 @@ class Model:
     columns : the encoded columns of the model's arrays: ``features``, with each text
         feature replaced by its one-hot columns (:mod:`service.categories`).
     targets : target names; ``predict`` returns one column per target when there are several.
+    target_kernels : each target's kernel and ridge (:mod:`service.target_kernels`).
+    spec : the first target's kernel (every target's, unless the manifest gives targets
+        kernels of their own).
     """
 
     def __init__(self, manifest: dict, arrays: dict[str, np.ndarray]):
@@ -58,8 +61,9 @@ class Model:
         self.mean = np.asarray(std["mean"], dtype=np.float64)
         self.scale = np.asarray(std["scale"], dtype=np.float64)
         self.intercept = np.asarray(manifest["intercept"], dtype=np.float64)
-        kern = manifest["kernel"]
-        self.spec = KernelSpec.from_params(kern["name"], kern.get("params", {}))
+        self.target_kernels = target_kernels(manifest)
+        specs = [tk.spec for tk in self.target_kernels]
+        self.spec = specs[0]
         precision = check_precision(manifest.get("precision", "float64"))
         env = manifest["envelope"]
         self.encoding = Categories(self.features, manifest.get("categories"))
@@ -76,11 +80,13 @@ class Model:
         self.reference: np.ndarray = arrays["novelty_reference"]
         # reference rows that are training rows: their distances come with the prediction
         shared = None
-        if self.spec.uses == "sqdist" and precision == "float64":
+        if any(s.uses == "sqdist" for s in specs) and precision == "float64":
             shared = envelope.rows_within(arrays["novelty_reference"], arrays["x_train"])
-        self.engine = Engine(self.spec, arrays["x_train"], arrays["dual"], dtype=precision,
-                             neighbours=None if shared is None else (shared, int(nov["k"])),
-                             shift=self.mean, scale=self.scale, offset=self.intercept)
+        # one kernel evaluation per distinct kernel (service.engine_groups)
+        self.engine = engine_for(specs, arrays["x_train"], arrays["dual"], dtype=precision,
+                                 neighbours=None if shared is None else (shared,
+                                                                         int(nov["k"])),
+                                 shift=self.mean, scale=self.scale, offset=self.intercept)
         self.residuals = arrays.get("abs_residuals")  # sorted, (c, t); None: no intervals
 
     # -- numbers -------------------------------------------------------------------------

@@ -16,9 +16,10 @@ from dataclasses import dataclass, field
 
 from markupsafe import Markup
 
-from service.kernels import KernelSpec
 from service.metrics import RowCounts
 from service.store import Store, StoreError
+from service.target_kernels import kernel_text as targets_kernel_text
+from service.target_kernels import ridge_text, target_kernels
 from service.text_safety import html_name
 from service.version_facts import (
     FEATURES_LISTED,
@@ -37,12 +38,20 @@ def safe_message(store: Store, exc: Exception) -> str:
 
 
 def kernel_text(manifest: dict) -> str:
-    """``rbf(gamma=0.2)``; the raw name when the manifest's parameters do not parse."""
-    kern = manifest.get("kernel") or {}
+    """``rbf(gamma=0.2)``, or each target's where they differ; the raw name when the
+    manifest's parameters do not parse."""
     try:
-        return KernelSpec.from_params(kern["name"], kern.get("params", {})).describe()
-    except (KeyError, TypeError, ValueError):
-        return str(kern.get("name", "unknown"))
+        return targets_kernel_text(target_kernels(manifest))
+    except (KeyError, TypeError, ValueError, AttributeError):
+        return str((manifest.get("kernel") or {}).get("name", "unknown"))
+
+
+def ridge_cell(manifest: dict) -> str:
+    """The ridge, or each target's where they differ; '–' when the manifest lacks it."""
+    try:
+        return ridge_text(target_kernels(manifest), 4)
+    except (KeyError, TypeError, ValueError, AttributeError):
+        return number(manifest.get("ridge"))
 
 
 def number(value, digits: int = 4) -> str:
@@ -201,7 +210,7 @@ def versions(store: Store, name: str, live: int | None) -> list[VersionCard]:
             man = store.read_manifest(name, v)
             card.created = str(man.get("created") or "–")
             card.kernel = kernel_text(man)
-            card.ridge = number(man.get("ridge"))
+            card.ridge = ridge_cell(man)
             card.rows = number((man.get("training") or {}).get("rows"), 12)
             card.method = method_text(man)
             card.features = feature_cells(list(man.get("features") or []))

@@ -117,6 +117,8 @@ class Timing(Answer):
 class PredictionBatch(Answer):
     model: str
     version: int
+    targets: list[str] = Field(description="The target names, in the order of each "
+                               "result's value list (one name when the value is a number).")
     results: list[Result]
     timing_ms: Timing
     caution: str | None = Field(
@@ -201,14 +203,24 @@ class Range(Answer):
     max: float
 
 
+class TargetKernelInfo(Answer):
+    target: str
+    kernel: KernelInfo
+    ridge: float | None
+
+
 class ModelSummary(Answer):
     model: str
     version: int
     created: str | None
     features: list[str]
     targets: list[str]
-    kernel: KernelInfo
-    ridge: float
+    kernel: KernelInfo | None = Field(description="The kernel every target shares; null when "
+                                      "targets have kernels of their own (per_target).")
+    ridge: float | None = Field(description="The ridge every target shares; null when "
+                                "targets have ridges of their own (per_target).")
+    per_target: list[TargetKernelInfo] = Field(description="Each target's kernel and ridge, "
+                                               "in target order.")
     training_rows: int | None
     metrics: dict[str, Any] | None
     ranges: dict[str, Range] = Field(description="Each feature's training range.")

@@ -1,11 +1,14 @@
-"""What tells versions of a model apart, read from their manifests (schema 1 and 2 alike):
-method, features, training rows, data fingerprint, held-out error; and what changed
-between two versions. Shared by ``kridge versions``/``kridge inspect`` and the model page."""
+"""What tells versions of a model apart, read from their manifests (schemas 1 to 3 alike):
+method, features, training rows, data fingerprint, each target's kernel and ridge,
+held-out error; and what changed between two versions. Shared by ``kridge versions``/``kridge
+inspect`` and the model page."""
 
 from __future__ import annotations
 
 import hashlib
 from typing import Any
+
+from service.target_kernels import kernel_text, ridge_text, target_kernels
 
 #: Up to this many features are listed by name; more are given as a count and a hash.
 FEATURES_LISTED = 6
@@ -51,10 +54,22 @@ def headline_error(metrics: dict) -> str:
     return ""
 
 
+def _settings(manifest: dict) -> list | None:
+    """Each target's kernel and ridge; None when the manifest does not say them readably."""
+    try:
+        return target_kernels(manifest)
+    except (KeyError, TypeError, ValueError, AttributeError):  # UserError is a ValueError
+        return None
+
+
 def facts(manifest: dict) -> dict[str, Any]:
-    """The figures one version is told apart by (JSON-able)."""
+    """The figures one version is told apart by (JSON-able). ``kernel`` and ``ridge`` name
+    each target's where the targets differ."""
     features = list(manifest.get("features") or [])
+    settings = _settings(manifest)
     return {
+        "kernel": kernel_text(settings) if settings else "?",
+        "ridge": ridge_text(settings, 4) if settings else "?",
         "method": method_text(manifest),
         "features": features_text(features),
         "feature_count": len(features),
@@ -112,7 +127,29 @@ def changes(a: dict, b: dict) -> dict[str, Any]:
               if (c := _pair(params_a.get(p), params_b.get(p))) is not None}
     if params:
         out["kernel_params"] = params
+    own = _target_changes(_settings(a) or [], _settings(b) or [])
+    if own:
+        out["per_target"] = own
     metrics = _metric_changes(a.get("metrics") or {}, b.get("metrics") or {})
     if metrics:
         out["metrics"] = metrics
+    return out
+
+
+def _target_changes(sa: list, sb: list) -> dict:
+    """{target: {"kernel" | "ridge": {from, to}}} for targets in both whose kernel or ridge
+    differs (kernels in words, e.g. ``rbf(gamma=0.1)``), only when some target's own
+    setting differs from the other targets' in either version."""
+    if not any(len({(s.spec, s.ridge) for s in side}) > 1 for side in (sa, sb)):
+        return {}
+    before = {s.target: s for s in sa}
+    out: dict = {}
+    for s in sb:
+        old = before.get(s.target)
+        if old is None:
+            continue
+        for key, change in (("kernel", _pair(old.spec.describe(), s.spec.describe())),
+                            ("ridge", _pair(old.ridge, s.ridge))):
+            if change is not None:
+                out.setdefault(s.target, {})[key] = change
     return out

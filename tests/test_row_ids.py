@@ -45,9 +45,11 @@ def test_an_answer_without_ids_keeps_its_bytes(client):
     body = {"rows": [TYPICAL_ROW, ARRAY]}
     with_null = post(client, {**body, "ids": None}).json
     without = post(client, body).get_data()
-    # every byte up to the timing (which differs per request) is as before ids existed
+    # every byte up to the timing (which differs per request) is as before ids existed,
+    # the target names included
     head = without[: without.index(b'"timing_ms"')]
-    assert head.startswith(b'{"model":"c","version":1,"results":[{"value":')
+    assert head.startswith(b'{"model":"c","version":1,"targets":["hardness_s"],'
+                           b'"results":[{"value":')
     assert orjson.loads(head[:-1] + b"}")["results"] == with_null["results"]
 
 

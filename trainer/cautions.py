@@ -72,7 +72,19 @@ def baseline_warnings(metrics: dict, baselines: dict | None) -> list[dict]:
 
 
 def grid_edge_warnings(tuning: dict | None) -> list[dict]:
-    """The chosen ridge or width at an edge of what the search covered."""
+    """The chosen ridge or width at an edge of what the search covered (for targets tuned
+    one by one, each target's search, its name first)."""
+    if tuning and tuning.get("per_target"):
+        out = []
+        for entry in tuning["per_target"]:
+            for w in _edge_warnings(entry):
+                out.append(dict(w, message=f"{entry['target']}: {w['message']}",
+                                target=entry["target"]))
+        return out
+    return _edge_warnings(tuning)
+
+
+def _edge_warnings(tuning: dict | None) -> list[dict]:
     chosen = (tuning or {}).get("chosen") or {}
     out = []
     ridge = chosen.get("ridge_edge")

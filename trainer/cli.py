@@ -1,7 +1,7 @@
 """The ``kridge`` command line.
 
 Every user mistake ends as one line on stderr and exit status 2; a failed ``verify`` exits 1,
-as does ``drift --fail-on-drift`` on an alarm;
+as does ``drift --fail-on-drift`` on an alarm; a failed ``compare --require-better`` exits 3;
 a bug in kridge itself shows its traceback and exits 70.
 Heavy imports (scipy, matplotlib) happen inside the commands that need them, so ``kridge
 serve`` works in a serving image without the trainer's extras.
@@ -18,6 +18,7 @@ from service.model import PRECISIONS, verifier
 from service.settings import DEFAULT_STORE
 from service.store import Store, StoreError, check_version
 from service.text_safety import visible
+from trainer import compare_cli
 from trainer.errors import UserError
 
 EXIT_USER = 2
@@ -47,8 +48,7 @@ def cmd_train(args) -> int:
         drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
-        group=args.group,
-    )
+        group=args.group, shared_kernel=args.shared_kernel)
 
     def log(*a, **k):
         if not args.quiet:
@@ -71,7 +71,7 @@ def cmd_train(args) -> int:
         ("features", f"{len(summary['features'])}: {', '.join(summary['features'])}"),
         ("targets", ", ".join(summary["targets"])),
         ("kernel", summary["kernel"]),
-        ("ridge", f"{summary['ridge']:.6g}"),
+        ("ridge", summary["ridge_text"]),
         *error_lines(summary["metrics"]),
         *([("tuning", summary["tuning"])] if summary.get("tuning") else []),
         *([("report", summary["report"])] if summary.get("report") else []),
@@ -84,7 +84,7 @@ def cmd_train(args) -> int:
 
 def cmd_versions(args) -> int:
     from service.version_facts import facts
-    from trainer.show import fmt, table
+    from trainer.show import table
 
     st = _store(args)
     live = st.live_version(args.model)
@@ -94,22 +94,22 @@ def cmd_versions(args) -> int:
             m = st.read_manifest(args.model, v)
         except StoreError as exc:
             why = str(exc).split(": ", 1)[-1]
-            rows.append(["*" if v == live else "", v, "?", "broken", why, "", "", "", ""])
+            rows.append(["*" if v == live else "", v, "?", "broken", why, "", "", "", "", ""])
             details.append({"version": v, "fault": why})
             continue
-        f = facts(m)
+        f = dict(facts(m), compared=compare_cli.on_record(st.comparisons(args.model, v)))
         details.append({"version": v, **f})
         rows.append([
             "*" if v == live else "", v, m.get("created", "?"), f["method"], f["features"],
             f["training_rows"], f["data_sha256"],
-            f"{m['kernel']['name']} ridge={fmt(m['ridge'])}", f["error"],
+            f"{f['kernel']} ridge={f['ridge']}", f["error"], f["compared"],
         ])
     if args.json:
         print(json.dumps({"model": args.model, "live": live, "versions": [r[1] for r in rows],
                           "details": details}))
     else:
         table(["live", "version", "created", "method", "features", "rows", "data sha256",
-               "kernel", "error"], rows)
+               "kernel", "error", "comparisons"], rows)
     return 0
 
 
@@ -238,6 +238,8 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--degree", type=float)
     t.add_argument("--coef0", type=float)
     t.add_argument("--ridge", type=float, help="ridge penalty λ (omit to tune)")
+    t.add_argument("--shared-kernel", action="store_true",
+                   help="several targets: one kernel and ridge for all (default: each its own)")
     t.add_argument("--holdout", type=float, default=0.2, help="held-out fraction (default 0.2)")
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")
@@ -330,6 +332,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="permutations behind the p-value (default 500)")
     dr.add_argument("--seed", type=int, default=0, help="seed of subsamples and permutations")
 
+    compare_cli.add_arguments(add("compare", compare_cli.cmd_compare, compare_cli.HELP))
     s = add("serve", cmd_serve, "run the HTTP service under gunicorn")
     s.add_argument("--bind", default=None,
                    help="HOST:PORT (default $KRIDGE_BIND or 127.0.0.1:8000)")

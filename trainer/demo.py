@@ -19,6 +19,7 @@ from pathlib import Path
 from service.cautions import BEFORE_ACTING
 from service.launch import Gunicorn, free_port
 from service.store import store_root
+from trainer.demo_story import story_lines
 from trainer.errors import UserError
 
 DEMO_DIR = Path(__file__).resolve().parents[1] / "demo_data"
@@ -80,7 +81,7 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         summary = train(TrainOptions(data=str(csv_path), targets=TARGETS, name=MODEL,
                                      release=True, store=store, quiet=True))
     print(f"    {MODEL} v{summary['version']} is live: {summary['kernel']}, "
-          f"ridge {summary['ridge']:.3g}, {summary['seconds']} s")
+          f"ridge {summary['ridge_text']}, {summary['seconds']} s")
     for t, m in summary["metrics"].get("holdout", {}).items():
         print(f"    holdout {t}: RMSE {m['rmse']:.3g}, R² {m['r2']:.3f}")
 
@@ -99,7 +100,8 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
             print(f"# {label}:")
             print(f"curl -s -X POST {base}/models/{MODEL}/predict "
                   f"-H 'Content-Type: application/json' -d '{json.dumps(body)}'\n")
-        print(f"# more: {base}/models/{MODEL}  {base}/metrics  {base}/openapi.json")
+        print(f"# more: {base}/models/{MODEL}  {base}/metrics  {base}/openapi.json\n")
+        print("\n".join(story_lines(DEMO_DIR, MODEL, store, TARGETS)) + "\n")
         print(f"# Caution: {BEFORE_ACTING}\n")
         if smoke:
             with urllib.request.urlopen(base + "/", timeout=10) as r:

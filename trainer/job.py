@@ -56,7 +56,8 @@ def train(opts: TrainOptions, log=print) -> dict:
         fitted.envelope, rows.encoding.columns if rows.encoding else plan.columns.features,
         plan.splits.seed, span)
     check_x, check_y = fitted.check_rows
-    check = precision_check(plan.output.precision, fitted.spec, fitted.x_train, fitted.dual,
+    specs = [s.spec for s in fitted.settings(list(plan.columns.targets))]
+    check = precision_check(plan.output.precision, specs, fitted.x_train, fitted.dual,
                             check_x, list(plan.columns.targets), check_y, log)
     bundle = manifest.build_manifest(plan, rows, split, fitted, metrics=scores,
                                      envelope=envelope, intervals=intervals, check=check,
@@ -66,7 +67,7 @@ def train(opts: TrainOptions, log=print) -> dict:
     bundle["baselines"] = baselines.holdout_baselines(list(plan.columns.targets),
                                                       fitted.evidence, train_mean, split.by_time)
     bundle["warnings"] = cautions.collect(bundle, fitted.warnings)
-    arrays = publish.bundle_arrays(fitted.spec, fitted.x_train, fitted.dual, reference, calib)
+    arrays = publish.bundle_arrays(specs, fitted.x_train, fitted.dual, reference, calib)
     report_args = (fitted.tuning, publish.report_points(fitted.evidence.holdout,
                                                         plan.splits.seed), calib)
     published = publish.publish(store, plan.output, bundle, arrays, report_args)

@@ -15,6 +15,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from service.store import now_iso
+from service.target_kernels import shared_entries
 
 if TYPE_CHECKING:
     from trainer.plan import Plan
@@ -60,13 +61,16 @@ def build_manifest(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,
                    fitted: Fitted, *, metrics: dict, envelope: dict, intervals: dict | None,
                    check: dict | None, span: dict | None) -> dict:
     """The manifest of any model, fed by the solver's :class:`~trainer.solvers.Fitted` (the
-    store adds ``schema``, ``model``, ``version`` and ``arrays`` when it publishes)."""
+    store adds ``schema``, ``model``, ``version`` and ``arrays`` when it publishes).
+
+    ``kernel`` and ``ridge`` are what every target shares (``null`` where targets differ);
+    ``per_target`` gives each target's (:mod:`service.target_kernels`)."""
+    targets = list(plan.columns.targets)
     return {
         "created": now_iso(),
         "features": list(plan.columns.features),
-        "targets": list(plan.columns.targets),
-        "kernel": {"name": fitted.spec.name, "params": fitted.spec.params()},
-        "ridge": fitted.ridge,
+        "targets": targets,
+        **shared_entries(fitted.settings(targets)),
         "standardization": fitted.standardization,
         "intercept": np.asarray(fitted.intercept).tolist(),
         "training": training_section(plan, rows, split, fitted, span),
@@ -101,5 +105,27 @@ def training_section(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,
         "holdout_rows": holdout.rows if holdout is not None else 0,
         "seed": plan.splits.seed,
         "fit_seconds": round(fitted.fit_seconds, 3),
+        "target_kernels": target_kernels_text(plan, fitted),
         **fitted.training,
     }
+
+
+def target_kernels_text(plan: Plan, fitted: Fitted) -> str:
+    """How the targets came by their kernels and ridges (the manifest's
+    ``training.target_kernels``)."""
+    t = len(plan.columns.targets)
+    if t == 1:
+        return "one target"
+    if fitted.per_target is not None and plan.method.name == "nystrom":
+        return ("one kernel for all targets, tuned together on the sample (mean over targets "
+                "of MSE / Var(target)); each target its own ridge, on the validation part")
+    if fitted.per_target is not None:
+        return "each target tuned for itself: its own kernel and ridge"
+    if not plan.parameters.to_tune:
+        return "kernel and ridge given: the same for every target"
+    if plan.method.name == "nystrom" and not plan.parameters.shared:
+        return ("one kernel and ridge for all targets (the CG solve, or too few validation "
+                "rows, gives no ridge per target), tuned on the mean over targets of MSE / "
+                "Var(target)")
+    return "one kernel and ridge for all targets (--shared-kernel), tuned on the mean over " \
+        "targets of MSE / Var(target)"

@@ -54,6 +54,7 @@ class TrainOptions:
     landmark_scheme: str | None = None
     cluster: str | None = None
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
+    shared_kernel: bool = False  # several targets: one kernel and ridge for all, not each its own
     group: str | None = None  # rows sharing this column's value stay on one side of a split
 
 
@@ -99,6 +100,7 @@ class Parameters:
     degree: float | None = None
     coef0: float | None = None
     ridge: float | None = None
+    shared: bool = False  # several targets tuned together: one kernel and ridge for all
 
     @property
     def to_tune(self) -> tuple[str, ...]:
@@ -232,6 +234,7 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
                       opts.solver),
         splits=Splits(opts.holdout, opts.seed),
-        parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge),
+        parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge,
+                              opts.shared_kernel),
         output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet),
     ), store

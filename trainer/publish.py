@@ -10,6 +10,7 @@ import numpy as np
 
 from service.model import verifier
 from service.store import Store
+from service.target_kernels import kernel_text, ridge_text, shared_entries
 from trainer.plan import Output, Plan
 from trainer.solvers import Fitted, Predicted
 
@@ -17,13 +18,15 @@ from trainer.solvers import Fitted, Predicted
 PLOT_ROWS = 5000
 
 
-def bundle_arrays(spec, x_train: np.ndarray, dual: np.ndarray, reference: np.ndarray,
+def bundle_arrays(specs, x_train: np.ndarray, dual: np.ndarray, reference: np.ndarray,
                   calib: np.ndarray | None) -> dict[str, np.ndarray]:
     """The arrays a bundle stores, for either solver (``x_train``: training or landmark rows,
     standardized; ``calib``: absolute calibration residuals, stored sorted)."""
     # The laplacian's L1 loop reads X one feature at a time: store it column-major, the
     # layout the engine serves from, so a loaded model needs no second, transposed copy.
-    x_store = np.asfortranarray(x_train) if spec.uses == "l1" else x_train
+    # ``specs``: every target's kernel (the others read either layout).
+    x_store = (np.asfortranarray(x_train) if any(s.uses == "l1" for s in specs)
+               else x_train)
     arrays = {"x_train": x_store, "dual": dual, "novelty_reference": reference}
     if calib is not None:
         arrays["abs_residuals"] = np.sort(calib, axis=0)
@@ -71,8 +74,13 @@ def publish(store: Store, out: Output, manifest: dict, arrays: dict,
 
 def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, manifest: dict,
             counts: dict, t0: float) -> dict:
-    """The train summary (printed by ``kridge train``, returned by :func:`trainer.job.train`)."""
+    """The train summary (printed by ``kridge train``, returned by :func:`trainer.job.train`).
+
+    ``kernel`` and ``ridge_text`` name each target's where they differ; ``ridge`` is None
+    when the targets' ridges differ."""
     metrics, check = manifest["metrics"], manifest["precision_check"]
+    settings = fitted.settings(list(plan.columns.targets))
+    shared = shared_entries(settings)
     return {
         "name": plan.output.name,
         "version": published.version,
@@ -82,8 +90,10 @@ def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, mani
         "method": f"{fitted.described} ({plan.method.reason})",
         "features": list(plan.columns.features),
         "targets": list(plan.columns.targets),
-        "kernel": fitted.spec.describe(),
-        "ridge": fitted.ridge,
+        "kernel": kernel_text(settings),
+        "ridge": shared["ridge"],
+        "ridge_text": ridge_text(settings),
+        "per_target": shared["per_target"],
         "metrics": metrics,
         "tuning": fitted.tuning["summary"] if fitted.tuning else None,
         "precision": plan.output.precision,

@@ -19,6 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from service.cautions import BEFORE_ACTING
+from service.target_kernels import shared_entries, target_kernels
 from service.text_safety import html_name, plot_label
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
 from trainer.cautions import CODE_TITLES
@@ -248,10 +249,14 @@ def _data_section(manifest: dict) -> list[str]:
 
 
 def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
-    kern = manifest["kernel"]
-    params = ", ".join(f"{k}={_num(v, 6)}" for k, v in kern.get("params", {}).items())
-    rows = [[_Raw("kernel"), _Raw(_esc(f"{kern['name']}({params})"))],
-            [_Raw("ridge λ"), _Raw(_num(manifest["ridge"], 6))]]
+    settings = target_kernels(manifest)
+    rows = [[_Raw(f"kernel ({html_name(s.target)})" if len(settings) > 1 else "kernel"),
+             _Raw(_esc(s.spec.describe()) + f", ridge λ = {_num(s.ridge, 6)}")]
+            for s in settings]
+    shared = shared_entries(settings)
+    if shared["kernel"] is not None and shared["ridge"] is not None:
+        rows = [[_Raw("kernel"), _Raw(_esc(settings[0].spec.describe()))],
+                [_Raw("ridge λ"), _Raw(_num(settings[0].ridge, 6))]]
     if tuning:
         rows += [[_Raw("how"), _Raw(_esc(tuning.get("method", "")))],
                  [_Raw("criterion"), _Raw(_esc(tuning.get("criterion", "")))],
@@ -261,8 +266,17 @@ def _parameters_section(manifest: dict, tuning: dict | None) -> list[str]:
     else:
         rows.append([_Raw("how"), _Raw("given on the command line (no tuning)")])
     out = ["<h2>Chosen parameters</h2>", _table(["", ""], rows, left=2)]
+    for own in (tuning or {}).get("per_target") or [tuning]:
+        out += _kernels_compared(own, (tuning or {}).get("per_target") is not None)
+    return out
+
+
+def _kernels_compared(tuning: dict | None, each: bool) -> list[str]:
+    """The best of each kernel a search compared (one table per target tuned alone)."""
+    out = []
     if tuning and len(tuning.get("per_kernel", {})) > 1:
-        out.append("<p>Best of each kernel compared:</p>")
+        out.append("<p>Best of each kernel compared"
+                   + (f" for {html_name(tuning['target'])}" if each else "") + ":</p>")
         out.append(_table(["kernel", "parameters", "ridge", "criterion"], [
             [_Raw(_esc(k + (f" (raced out: {v['raced_out']}, {v.get('rows')} rows)"
                                 if v.get("raced_out") else ""))),
@@ -279,11 +293,17 @@ def _metrics_section(manifest: dict, tuning: dict | None) -> list[str]:
            "<p class=note>LOO: exact leave-one-out of the final model (all rows); "
            "holdout: scored on held-out rows by a model that never saw them; "
            "validation: the Nyström validation part, which chose the final ridge.</p>"]
-    img = _curve_plot(tuning, list(manifest["targets"])) if tuning else None
-    if img:
-        out += [f"<h2>Tuning: {_esc(tuning['error_label'])} against ridge</h2>", img,
-                "<p class=note>One line per kernel parameter setting tried; "
-                "the star marks the choice.</p>"]
+    searches = [(own, [own["target"]]) for own in (tuning or {}).get("per_target") or []]
+    plots = [(targets, _curve_plot(own, targets)) for own, targets in
+             searches or ([(tuning, list(manifest["targets"]))] if tuning else [])]
+    plots = [(targets, img) for targets, img in plots if img]
+    if plots:
+        out.append(f"<h2>Tuning: {_esc(tuning['error_label'])} against ridge</h2>")
+        for targets, img in plots:
+            out += ([f"<h3>{html_name(targets[0])}, tuned for itself</h3>"] if searches
+                    else []) + [img]
+        out.append("<p class=note>One line per kernel parameter setting tried; the star "
+                   "marks the choice.</p>")
     return out
 
 

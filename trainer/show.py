@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import sys
 
+from service.target_kernels import kernel_text, ridge_text, target_kernels
 from service.text_safety import visible
 from service.version_facts import features_hash
 
@@ -71,6 +72,9 @@ def change_lines(diff: dict) -> list[tuple[str, str]]:
             lines.append((label, span(diff[key])))
     for param, c in diff.get("kernel_params", {}).items():
         lines.append((f"kernel {param}", span(c)))
+    for target, own in diff.get("per_target", {}).items():
+        lines.append((f"kernel and ridge {target}", ", ".join(
+            f"{key} {span(c)}" for key, c in own.items())))
     labels = dict((k, v) for k, v in ERROR_KINDS)
     for family, targets in diff.get("metrics", {}).items():
         for target, measures in targets.items():
@@ -85,8 +89,7 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     tr = m.get("training", {})
     env = m.get("envelope", {})
     nov = env.get("novelty", {})
-    kern = m["kernel"]
-    params = ", ".join(f"{k}={fmt(v, 6)}" for k, v in kern.get("params", {}).items())
+    settings = target_kernels(m)
     lines = [
         ("model", f"{m['model']} v{m['version']}" + ("  (live)" if live == m["version"] else "")),
         ("created", m.get("created", "?")),
@@ -95,8 +98,8 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         *[(f"{f} (text)", f"one-hot over {len(c)}: {', '.join(c)}")
           for f, c in (m.get("categories") or {}).items()],
         ("targets", ", ".join(m["targets"])),
-        ("kernel", f"{kern['name']}({params})"),
-        ("ridge", fmt(m["ridge"], 6)),
+        ("kernel", kernel_text(settings)),
+        ("ridge", ridge_text(settings)),
         ("training rows", f"{tr.get('rows')} (holdout {tr.get('holdout_rows', 0)} rows, "
                           f"seed {tr.get('seed')}), "
                           f"data sha256 {str(tr.get('data_sha256'))[:16]}…"),

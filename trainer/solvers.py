@@ -28,6 +28,7 @@ import numpy as np
 
 from service.categories import Categories
 from service.kernels import KernelSpec
+from service.target_kernels import TargetKernel
 
 if TYPE_CHECKING:
     from trainer.plan import Plan
@@ -51,11 +52,14 @@ class Rows:
 @dataclass
 class Tuned:
     """The kernel and ridge a solver's tune stage settled on, and its account (None when
-    every parameter was given)."""
+    every parameter was given). ``per_target``: each target's own (kernel, ridge), in target
+    order, when the targets were tuned one by one; ``spec`` and ``ridge`` are then the first
+    target's. None: ``spec`` and ``ridge`` serve every target."""
 
     spec: KernelSpec
     ridge: float
     account: dict | None
+    per_target: list[tuple[KernelSpec, float]] | None = field(default=None, kw_only=True)
 
 
 @dataclass(frozen=True)
@@ -127,6 +131,14 @@ class Fitted:
     tuning: dict | None  # the tuning account as the fit leaves it
     described: str  # the solver as the train summary names it
     warnings: list[str] = field(default_factory=list)  # the fit's own (train prints them)
+    #: each target's (kernel, ridge) when they are its own; None: ``spec``, ``ridge`` for all
+    per_target: list[tuple[KernelSpec, float]] | None = None
+
+    def settings(self, targets: list[str]) -> list[TargetKernel]:
+        """Every target's kernel and ridge, in target order."""
+        pairs = self.per_target or [(self.spec, self.ridge)] * len(targets)
+        return [TargetKernel(t, spec, float(r))
+                for t, (spec, r) in zip(targets, pairs, strict=True)]
 
 
 class Solver(Protocol):

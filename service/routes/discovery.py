@@ -12,6 +12,7 @@ from service import schemas as s
 from service.app_state import state
 from service.routes import model_name, model_response, not_found
 from service.store import StoreError
+from service.target_kernels import kernel_names, shared_entries
 
 log = logging.getLogger("kridge.service")
 bp = Blueprint("discovery", __name__)
@@ -51,10 +52,12 @@ def describe(name: str):
     except StoreError as exc:
         raise not_found(name, exc) from None
     man = m.manifest
+    shared = shared_entries(m.target_kernels)
     return model_response(s.ModelSummary(
         model=m.name, version=m.version, created=man.get("created"),
-        features=m.features, targets=m.targets, kernel=man["kernel"],
-        ridge=man["ridge"], training_rows=man.get("training", {}).get("rows"),
+        features=m.features, targets=m.targets, kernel=shared["kernel"],
+        ridge=shared["ridge"], per_target=shared["per_target"],
+        training_rows=man.get("training", {}).get("rows"),
         metrics=man.get("metrics"), ranges=man["envelope"]["ranges"],
         novelty=man["envelope"]["novelty"],
         intervals=m.has_intervals,
@@ -75,7 +78,7 @@ def list_versions(name: str):
         try:
             man = store.read_manifest(name, v)
             rows.append(s.VersionInfo(version=v, created=man.get("created"), live=v == live,
-                                      kernel=man["kernel"]["name"], metrics=man.get("metrics")))
+                                      kernel=kernel_names(man), metrics=man.get("metrics")))
         except StoreError as exc:
             rows.append(s.VersionInfo(version=v, created=None, live=v == live, kernel=None,
                                       metrics=None, fault=str(exc)))

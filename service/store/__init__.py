@@ -5,6 +5,7 @@ Layout (fixed; other tools and scripts depend on it)::
     <store>/<model>/versions/<N>/manifest.json
     <store>/<model>/versions/<N>/arrays/<name>.npy
     <store>/<model>/versions/<N>/report.html
+    <store>/<model>/versions/<N>/comparisons/<stamp>.json   (kept comparisons, unchecksummed)
     <store>/<model>/live.json
     <store>/<model>/history.jsonl
 
@@ -13,6 +14,7 @@ not interleave (choosing a version number and renaming into place; rewriting liv
 appending to the history). Everything a reader can see appears by one ``rename``.
 """
 
+from service.store.comparisons import Comparisons
 from service.store.files import sha256_file
 from service.store.names import (
     ARRAY_NAME_RE,
@@ -32,8 +34,9 @@ from service.store.publish import Publisher
 from service.store.releases import Releases
 
 
-class Store(Publisher, Releases):
-    """One store root holding any number of models: read, publish, release, roll back."""
+class Store(Publisher, Releases, Comparisons):
+    """One store root holding any number of models: read, publish, release, roll back, and
+    keep comparisons on record beside a version."""
 
 
 __all__ = ["ARRAY_NAME_RE", "NAME_RE", "SCHEMA", "STAGING", "Conflict", "NotFound", "Store",

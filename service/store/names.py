@@ -12,9 +12,11 @@ from service.settings import default_store
 #: The manifest schema this kridge writes. 2: the tuning record names its error by method
 #: (``error_method``; ``rmse`` in curves, per kernel and chosen, where 1 wrote ``loo_rmse``
 #: and ``cv_rmse`` whatever the method) and counts every decomposition made.
-SCHEMA = 2
-#: Schemas this kridge reads: what serving uses is the same in both.
-READABLE_SCHEMAS = (1, 2)
+#: 3: ``per_target`` gives each target its kernel and ridge; the top-level ``kernel`` and
+#: ``ridge`` are what all targets share, ``null`` where they differ.
+SCHEMA = 3
+#: Schemas this kridge reads (1 and 2 have one kernel and ridge for every target).
+READABLE_SCHEMAS = (1, 2, 3)
 NAME_RE = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 #: A version as text: ASCII digits only (str.isdigit also takes '²' and other scripts'
 #: digits, which int() then refuses), at most nine of them.

@@ -20,6 +20,7 @@ from scipy.linalg import lapack
 from threadpoolctl import threadpool_limits
 
 from service.kernels import KernelSpec, kernel_matrix
+from service.target_kernels import kernel_groups
 from trainer.errors import UserError
 
 #: Reciprocal condition number below which the system is called numerically singular.
@@ -71,11 +72,18 @@ class Fit:
     x_s: np.ndarray  # (n, d) standardized training rows
     dual: np.ndarray  # (n, t)
     loo_residuals: np.ndarray | None = None  # (n, t), exact, when asked for
+    #: each target's (kernel, ridge) when they are its own (``spec``, ``ridge``: the first's)
+    per_target: list[tuple[KernelSpec, float]] | None = None
 
     def predict(self, x_raw: np.ndarray) -> np.ndarray:
         """(m, t) raw-unit predictions (small batches; serving uses the tiled engine)."""
-        k = kernel_matrix(self.spec, self.scaler(x_raw), self.x_s)
-        return k @ self.dual + self.intercept
+        q = self.scaler(x_raw)
+        if self.per_target is None:
+            return kernel_matrix(self.spec, q, self.x_s) @ self.dual + self.intercept
+        out = np.empty((q.shape[0], self.dual.shape[1]))
+        for spec, cols in kernel_groups([s for s, _ in self.per_target]):
+            out[:, cols] = kernel_matrix(spec, q, self.x_s) @ self.dual[:, cols]
+        return out + self.intercept
 
 
 def solve_dual(k: np.ndarray, y_c: np.ndarray, ridge: float, want_loo: bool = False):
@@ -145,3 +153,34 @@ def fit_exact(
     return Fit(spec, ridge, scaler, intercept, x_s, dual, loo)
 
 
+
+
+def fit_exact_each(x: np.ndarray, y: np.ndarray, pairs: list[tuple[KernelSpec, float]],
+                   want_loo: bool = False) -> Fit:
+    """:func:`fit_exact` with each target's own kernel and ridge (``pairs``, target order).
+
+    Every target's α_j = (K_j + λ_j I)⁻¹ (y_j − ȳ_j) is the single-target solution; targets
+    with the same kernel share one kernel matrix, and those with the same kernel and ridge
+    one Cholesky factorization. The matrix is rebuilt for a second ridge rather than copied,
+    so memory stays at one n × n matrix.
+    """
+    for _, ridge in pairs:
+        if not ridge >= 0:
+            raise UserError(f"ridge must be a non-negative number, got {ridge}")
+    scaler = Standardizer.fit(x)
+    x_s = scaler(x)
+    intercept = np.ascontiguousarray(y).mean(axis=0)
+    y_c = y - intercept
+    dual = np.empty_like(y_c)
+    loo = np.empty_like(y_c) if want_loo else None
+    for spec, cols in kernel_groups([s for s, _ in pairs]):
+        by_ridge: dict[float, list[int]] = {}
+        for j in cols:
+            by_ridge.setdefault(pairs[j][1], []).append(j)
+        for ridge, js in by_ridge.items():
+            d, r = solve_dual(kernel_matrix(spec, x_s), y_c[:, js], ridge, want_loo)
+            dual[:, js] = d
+            if loo is not None:
+                loo[:, js] = r
+    return Fit(pairs[0][0], pairs[0][1], scaler, intercept, x_s, dual, loo,
+               per_target=list(pairs))

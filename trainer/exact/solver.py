@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from trainer.data_checks import duplicate_rows
-from trainer.exact.fit import fit_exact
+from trainer.exact.fit import fit_exact, fit_exact_each
 from trainer.plan import Plan
 from trainer.read import columns
 from trainer.solvers import EnvelopeRows, Evidence, Fitted, Log, Predicted, Rows, Tuned
@@ -69,27 +69,35 @@ class ExactSolver:
         if spec is not None:
             return Tuned(spec, float(p.ridge), None)
         from trainer.tuning import search
+        from trainer.tuning.each_target import tune_targets
 
-        tuned = search.tune(rows.x[split.train], rows.y[split.train], kernel=p.kernel,
+        return tune_targets(rows.x[split.train], rows.y[split.train], list(plan.columns.targets),
+                            kernel=p.kernel,
                             given=search.Given(p.gamma, p.degree, p.coef0, p.ridge),
                             seed=plan.splits.seed, quiet=plan.output.quiet, log=log,
-                            time_ordered=split.by_time,
+                            time_ordered=split.by_time, shared=p.shared,
                             groups=None if rows.groups is None else rows.groups[split.train])
-        return Tuned(tuned.spec, tuned.ridge, tuned.account)
 
     def fit(self, plan: Plan, rows: RowsInMemory, split: HoldoutSplit, tuned: Tuned,
             want_loo: bool, log: Log) -> Fitted:
         x, y, spec, ridge = rows.x, rows.y, tuned.spec, tuned.ridge
+        pairs = tuned.per_target
+
+        def fit(xa: np.ndarray, ya: np.ndarray):
+            if pairs is None:
+                return fit_exact(xa, ya, spec, ridge, want_loo=want_loo)
+            return fit_exact_each(xa, ya, pairs, want_loo=want_loo)
+
         tr, ho = split.train, split.holdout
         holdout = scorer_loo = last = None
         if ho.size:
-            part = fit_exact(x[tr], y[tr], spec, ridge, want_loo=want_loo)
+            part = fit(x[tr], y[tr])
             holdout = Predicted(y[ho], part.predict(x[ho]),
                                 rows.times[ho] if rows.times is not None else None)
             scorer_loo = part.loo_residuals
             last = y[tr[-1]] if split.by_time else None  # rows are in time order
         t_fit = time.perf_counter()
-        final = fit_exact(x, y, spec, ridge, want_loo=want_loo)
+        final = fit(x, y)
         fit_seconds = time.perf_counter() - t_fit
         loo = (Predicted.from_residuals(y, final.loo_residuals)
                if final.loo_residuals is not None else None)
@@ -107,4 +115,4 @@ class ExactSolver:
                       "duplicates": duplicate_rows(x, tr, ho),
                       **({"group": group_record(plan.columns.group, rows.groups, ho)}
                          if rows.groups is not None else {})},
-            tuning=tuned.account, described="exact")
+            tuning=tuned.account, described="exact", per_target=pairs)

@@ -144,6 +144,22 @@ def refine_ridge(path, tuned: NystromTuned, held: dict[str, HeldRows],
                    "Var(target), averaged over the targets)"}}
 
 
+def target_ridges(path, tuned: NystromTuned, val: HeldRows, train_rows: int) -> list[float]:
+    """Each target's own ridge on the shared landmark system: the same 41 values around
+    the sample's choice as :func:`~trainer.nystrom.tune.final_ridge`, each target scored by
+    its own validation MSE (the kernel stays the one chosen for all targets)."""
+    grow = train_rows / max(tuned.problem.x_s.shape[0], 1)
+    ridges = np.geomspace(tuned.ridge * 1e-2, tuned.ridge * max(grow, 1.0) * 1e2, 41)
+    res = numerics.validation_errors(path, tuned.spec, tuned.landmarks, val.x, val.y, ridges)
+    return [float(ridges[i]) for i in np.argmin(np.mean(res**2, axis=1), axis=0)]
+
+
+def _own_ridges(plan: Plan, tuned: NystromTuned, held: dict[str, HeldRows]) -> bool:
+    """Whether the targets get ridges of their own (several, tuned, not --shared-kernel)."""
+    return (len(plan.columns.targets) > 1 and not plan.parameters.shared
+            and tuned.problem is not None and held["validate"].x.shape[0] >= 2)
+
+
 #: The manifest's ``training.solver`` for a CG fit.
 CG_TEXT = ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), preconditioned "
            "conjugate gradient (FALKON's preconditioner, Rudi, Carratino & Rosasco 2017), K_nm "
@@ -205,6 +221,7 @@ class NystromSolver:
                                split, time_rule=src.time_rule)
         solver, why = choose_solver(plan.method.solver, tuned.landmarks.shape[0])
         self.solve_record, self.warnings = {"solver": solver, "reason": why}, []
+        self.per_target = None  # each target's (kernel, ridge) when the ridges are their own
         if solver == "cg":
             fit = solve_with_cg(block_plan, rows.scan.blocks, plan.method.cluster,
                                 _progress(plan.output.quiet), tuned, why)
@@ -217,8 +234,19 @@ class NystromSolver:
             raise UserError(f"{src.path}: no training rows left for the final fit")
         path = numerics.ridge_path(tuned.spec, tuned.landmarks, sums)
         ridge, account = refine_ridge(path, tuned, held, sums.count)
-        return (path.dual(ridge), path.intercept, ridge, account, int(path.rank),
-                int(sums.count), held)
+        beta = path.dual(ridge)
+        if _own_ridges(plan, tuned, held):
+            own = target_ridges(path, tuned, held["validate"], int(sums.count))
+            beta = np.column_stack([path.dual(r)[:, j] for j, r in enumerate(own)])
+            self.per_target = [(tuned.spec, r) for r in own]
+            own_text = ", ".join(f"{t} {r:.4g}" for t, r in zip(plan.columns.targets, own,
+                                                                 strict=True))
+            account = dict(account, summary=account["summary"] + f"; each target's own "
+                           f"ridge on the same rows: {own_text}", target_ridges={
+                "ridges": dict(zip(plan.columns.targets, own, strict=True)),
+                "how": "each target's validation MSE over the final ridge's 41 values; the "
+                       "kernel is shared by all targets"})
+        return (beta, path.intercept, ridge, account, int(path.rank), int(sums.count), held)
 
     def fit(self, plan: Plan, rows: ScannedRows, split: PartSplit, tuned: NystromTuned,
             want_loo: bool, log: Log) -> Fitted:
@@ -254,7 +282,7 @@ class NystromSolver:
                       "cluster": bool(plan.method.cluster),
                       "final_fit": "the training part only: holdout and calibration rows "
                                    "stay unseen"},
-            tuning=account,
+            tuning=account, per_target=self.per_target,
             described=f"nystrom with {landmark_info['count']} {landmark_info['scheme']} "
                       f"landmarks, {self.solve_record['solver']} solve "
                       f"({self.solve_record['reason']})",

@@ -26,8 +26,9 @@ The search
   same criterion. The sigmoid kernel is not positive semi-definite in general and is only
   tuned when asked for by name.
 
-Several targets: the criterion is the mean over targets of CV MSE / Var(target), so targets
-in different units weigh the same. The manifest gets the whole account
+Several targets searched together (``--shared-kernel``; by default each target gets its own
+search, :mod:`trainer.tuning.each_target`): the criterion is the mean over targets of CV
+MSE / Var(target), so targets in different units weigh the same. The manifest gets the whole account
 (:mod:`trainer.tuning.account`).
 """
 
