@@ -148,6 +148,31 @@ def ensure_wrk(install: bool) -> bool:
     return shutil.which("wrk") is not None
 
 
+def measure(tree: Path, app: str, store: Path, body: bytes, args, use_wrk: bool,
+            env: dict | None = None) -> dict:
+    """One server's single-row figures: requests/s, p50, p99 and worker CPU per request."""
+    # the tree's service and gunicorn config come first on the path
+    with Gunicorn.on_free_port(store, args.workers, cwd=str(tree), app=app,
+                               env={"BENCH_MODEL": "bench", "PYTHONPATH": str(tree),
+                                    **(env or {})}) as g:
+        wait_booted(g.proc.pid, args.workers)
+        # one unmeasured second: first-request costs (lazy imports, metric files)
+        if use_wrk:
+            wrk_load(g.base, body, 1, args.clients)
+        else:
+            run_load("127.0.0.1", g.port, "/models/bench/predict", body, 1, args.clients)
+        cpu0 = workers_cpu(g.proc.pid)[1]
+        if use_wrk:
+            res = wrk_load(g.base, body, args.seconds, args.clients)
+        else:
+            res = run_load("127.0.0.1", g.port, "/models/bench/predict", body,
+                           args.seconds, args.clients)
+        # server CPU per request: what the handler costs, whatever the client's share
+        res["cpu_us"] = ((workers_cpu(g.proc.pid)[1] - cpu0)
+                         / max(res["rps"] * args.seconds, 1) * 1e6)
+    return res
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--seconds", type=float, default=8.0)
@@ -156,8 +181,15 @@ def main() -> None:
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--no-install", action="store_true", help="never apt-get install wrk")
     ap.add_argument("--before", type=Path, help="another checkout's service, run alongside")
+    ap.add_argument("--traffic", action="store_true",
+                    help="instead: ours with drift sampling and a shadow version on and off "
+                         "(bench/traffic_bench.py)")
     add_json_option(ap)
     args = ap.parse_args()
+    if args.traffic:
+        from bench.traffic_bench import run_traffic
+
+        return run_traffic(args)
     print(header("http bench: kridge vs a bare Flask handler and a scikit-learn handler"))
     WORK.mkdir(parents=True, exist_ok=True)
     store = WORK / "store-exact"  # an exact model: k(x, X)·α over all 20,000 rows
@@ -180,25 +212,7 @@ def main() -> None:
     seen: dict[str, list[dict]] = {label: [] for label in servers}
     for rnd in range(args.rounds):
         for label, app in servers.items():
-            tree = trees[label]  # its service and gunicorn config come first on the path
-            with Gunicorn.on_free_port(store, args.workers, cwd=str(tree), app=app,
-                          env={"BENCH_MODEL": "bench", "PYTHONPATH": str(tree)}) as g:
-                wait_booted(g.proc.pid, args.workers)
-                # one unmeasured second: first-request costs (lazy imports, metric files)
-                if use_wrk:
-                    wrk_load(g.base, body, 1, args.clients)
-                else:
-                    run_load("127.0.0.1", g.port, "/models/bench/predict", body, 1,
-                             args.clients)
-                cpu0 = workers_cpu(g.proc.pid)[1]
-                if use_wrk:
-                    res = wrk_load(g.base, body, args.seconds, args.clients)
-                else:
-                    res = run_load("127.0.0.1", g.port, "/models/bench/predict", body,
-                                   args.seconds, args.clients)
-                # server CPU per request: what the handler costs, whatever the client's share
-                res["cpu_us"] = ((workers_cpu(g.proc.pid)[1] - cpu0)
-                                 / max(res["rps"] * args.seconds, 1) * 1e6)
+            res = measure(trees[label], app, store, body, args, use_wrk)
             print(f"  round {rnd + 1} {label:18s} {res['rps']:8.0f} req/s  p50 "
                   f"{res['p50_ms']:6.2f} ms  p99 {res['p99_ms']:6.2f} ms  worker CPU "
                   f"{res['cpu_us']:5.0f} µs/req  errors {res['errors']}", flush=True)

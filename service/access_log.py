@@ -39,6 +39,8 @@ FIELDS = ("time", "request_id", "method", "route", "model", "version", "status",
 #: count for the access log and the error handlers: plain dict entries, cheaper than ``g``.
 LABELS = "kridge.model_labels"
 ROWS = "kridge.rows"
+#: Environ key of the request id (for the shadow's pairs file).
+REQUEST_ID = "kridge.request_id"
 #: The route pattern, left by a layer that answers before Flask matches a rule.
 ROUTE = "kridge.route"
 #: Where the request of a logged call waits for its access-log line (popped then).
@@ -95,7 +97,7 @@ class RequestLog:
 
     def __call__(self, environ: dict, start_response: Callable) -> Iterable[bytes]:
         started = perf_counter()
-        rid = request_id(environ.get("HTTP_X_REQUEST_ID"))
+        environ[REQUEST_ID] = rid = request_id(environ.get("HTTP_X_REQUEST_ID"))
         sink = self.sink
         status: list[str] = []
 

@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 import orjson
 from flask import Flask, current_app
 
-from service import metrics
+from service import metrics, traffic
 from service.live_models import LiveModels
 from service.openapi import build_openapi, describe_served
 from service.settings import Settings
@@ -34,6 +34,7 @@ class AppState:
         models = LiveModels(store, settings.pinned_cache, on_load_failure=count_load_failure)
         if watch:
             models.start(settings.poll_seconds)
+            traffic.install(traffic.Traffic(store, models, settings))
         else:
             models.refresh()
         return cls(settings, store, models)

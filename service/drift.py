@@ -24,6 +24,8 @@ can run it in the background as well as ``kridge drift`` offline.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -90,8 +92,10 @@ def _split_sums(k0: np.ndarray, rows: np.ndarray, total: float, member: np.ndarr
     return sxx, total - sxx - 2.0 * sxy, sxy
 
 
-def permutation_test(k: np.ndarray, n: int, permutations: int,
-                     rng: np.random.Generator) -> tuple[float, float]:
+def permutation_test(k: np.ndarray, n: int, permutations: int, rng: np.random.Generator,
+                     chunk: int = _PERM_CHUNK,
+                     step: Callable[[], AbstractContextManager] = nullcontext
+                     ) -> tuple[float, float]:
     """MMD²_u of the first ``n`` rows against the rest of the joint kernel matrix ``k``, and
     its permutation p-value (1 + #{permuted ≥ observed}) / (1 + B).
 
@@ -100,11 +104,16 @@ def permutation_test(k: np.ndarray, n: int, permutations: int,
 
     Under no drift the rows are exchangeable, so p ≤ α has probability at most α for any
     sample size (a Monte Carlo permutation test; Gretton et al. 2012, section 5).
+
+    ``chunk`` permutations are evaluated per matrix product, each set inside ``step()`` (the
+    service passes its compute slot, so a request waits for one set at most); neither
+    changes the result.
     """
     big = k.shape[0]
     m = big - n
-    np.fill_diagonal(k, 0.0)
-    rows = k.sum(axis=1)
+    with step():
+        np.fill_diagonal(k, 0.0)
+        rows = k.sum(axis=1)
     total = float(rows.sum())
 
     def stats(member: np.ndarray) -> np.ndarray:
@@ -113,29 +122,36 @@ def permutation_test(k: np.ndarray, n: int, permutations: int,
 
     first = np.zeros((big, 1))
     first[:n] = 1.0
-    observed = float(stats(first)[0])
+    with step():
+        observed = float(stats(first)[0])
     above = 0
-    for start in range(0, permutations, _PERM_CHUNK):
-        b = min(_PERM_CHUNK, permutations - start)
+    for start in range(0, permutations, chunk):
+        b = min(chunk, permutations - start)
         member = np.zeros((big, b))
         for j in range(b):
             member[rng.permutation(big)[:n], j] = 1.0
         # kernel values lie in [0, 1]: 1e-12 absorbs rounding, so a permutation equal to the
         # observed split in exact arithmetic counts as ≥
-        above += int(np.sum(stats(member) >= observed - 1e-12))
+        with step():
+            above += int(np.sum(stats(member) >= observed - 1e-12))
     return observed, (1.0 + above) / (1.0 + permutations)
 
 
 def mmd_test(spec: KernelSpec, ref: np.ndarray, new: np.ndarray, permutations: int,
-             rng: np.random.Generator) -> tuple[KernelSpec, float, float]:
+             rng: np.random.Generator, chunk: int = _PERM_CHUNK,
+             step: Callable[[], AbstractContextManager] = nullcontext
+             ) -> tuple[KernelSpec, float, float]:
     """Kernel two-sample test of standardized rows ``ref`` (n, d) against ``new`` (m, d).
 
     Returns (kernel used, MMD²_u, permutation p-value); the kernel is ``spec`` when it is
-    characteristic, else rbf with the median heuristic γ of the pooled rows.
+    characteristic, else rbf with the median heuristic γ of the pooled rows. ``chunk`` and
+    ``step`` as in :func:`permutation_test` (the kernel matrix is built inside one step).
     """
     pooled = np.vstack([ref, new])
-    used = drift_kernel(spec, pooled, rng)
-    statistic, p = permutation_test(kernel_matrix(used, pooled), ref.shape[0], permutations, rng)
+    with step():
+        used = drift_kernel(spec, pooled, rng)
+        k = kernel_matrix(used, pooled)
+    statistic, p = permutation_test(k, ref.shape[0], permutations, rng, chunk, step)
     return used, statistic, p
 
 

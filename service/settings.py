@@ -14,6 +14,11 @@ KRIDGE_ADMIN_TOKEN         bearer token for release/rollback routes         unse
 KRIDGE_ENGINE_THREADS      threads one worker may use for a large batch     cores // workers
 KRIDGE_DRAIN_SECONDS       after SIGTERM: /readyz 503, still answering      0 (off)
 KRIDGE_ACCESS_LOG          JSON-lines access log: ``-`` stdout, or a file   unset: off
+KRIDGE_DRIFT_WINDOW        request rows sampled per model for drift checks  300
+KRIDGE_DRIFT_SECONDS       seconds between a worker's drift checks          60 (0: off)
+KRIDGE_DRIFT_PERMUTATIONS  permutations behind a served drift p-value       200
+KRIDGE_SHADOW_QUEUE        requests waiting for the shadow, per worker      256
+KRIDGE_SHADOW_PAIRS        JSON-lines file of live/shadow prediction pairs  unset: off
 =========================  ===============================================  ==============
 
 "cores" is what this process may really use: the CPU affinity mask, capped by a cgroup CPU
@@ -39,6 +44,10 @@ MAX_BODY_BYTES = 8 << 20
 MAX_ROWS = 10_000
 POLL_SECONDS = 0.25
 PINNED_CACHE = 4
+DRIFT_WINDOW = 300
+DRIFT_SECONDS = 60.0
+DRIFT_PERMUTATIONS = 200
+SHADOW_QUEUE = 256
 
 
 def default_store() -> str:
@@ -143,6 +152,11 @@ class Settings:
     pinned_cache: int = PINNED_CACHE
     admin_token: str | None = field(default=None, repr=False)
     access_log: str | None = None
+    drift_window: int = DRIFT_WINDOW
+    drift_seconds: float = DRIFT_SECONDS
+    drift_permutations: int = DRIFT_PERMUTATIONS
+    shadow_queue: int = SHADOW_QUEUE
+    shadow_pairs: str | None = None
 
     @classmethod
     def from_env(cls, **overrides) -> Settings:
@@ -154,6 +168,11 @@ class Settings:
             pinned_cache=_int("KRIDGE_PINNED_CACHE", PINNED_CACHE),
             admin_token=os.environ.get("KRIDGE_ADMIN_TOKEN") or None,
             access_log=access_log_target(),
+            drift_window=_int("KRIDGE_DRIFT_WINDOW", DRIFT_WINDOW),
+            drift_seconds=_seconds("KRIDGE_DRIFT_SECONDS", DRIFT_SECONDS),
+            drift_permutations=_int("KRIDGE_DRIFT_PERMUTATIONS", DRIFT_PERMUTATIONS),
+            shadow_queue=_int("KRIDGE_SHADOW_QUEUE", SHADOW_QUEUE),
+            shadow_pairs=os.environ.get("KRIDGE_SHADOW_PAIRS") or None,
         )
         values.update({k: v for k, v in overrides.items() if v is not None})
         return cls(**values)

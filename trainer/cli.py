@@ -18,7 +18,7 @@ from service.model import PRECISIONS, verifier
 from service.settings import DEFAULT_STORE
 from service.store import Store, StoreError, check_version
 from service.text_safety import visible
-from trainer import compare_cli
+from trainer import compare_cli, shadow_cmd
 from trainer.errors import UserError
 
 EXIT_USER = 2
@@ -340,6 +340,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="worker processes (default $KRIDGE_WORKERS, else one per usable core, "
                         "at least 2)")
 
+    shadow_cmd.register(add)
     d = add("demo", cmd_demo, "demo data -> train -> release -> serve, with example calls")
     d.add_argument("--bind", default=None)
     d.add_argument("--smoke", action="store_true", help="make the example calls, then exit")

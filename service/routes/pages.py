@@ -34,6 +34,7 @@ from service.errors import ApiError
 from service.page_data import overview, safe_message, score_keys, timeline, versions
 from service.page_row import DEFAULT_COVERAGE, form_fields, read_numbers, try_row
 from service.store import NotFound, StoreError, check_name, check_version
+from service.traffic_page import drift_lines, shadow_line
 
 log = logging.getLogger("kridge.pages")
 
@@ -136,7 +137,8 @@ def overview_page():
     store, models, _ = _services()
     _, served, _ = models.readiness()
     lines = overview(store, served, metrics.row_counts(), models.refused)
-    return render_template("overview.html", models=lines, counted_since=metrics.counted_since())
+    return render_template("overview.html", models=lines, counted_since=metrics.counted_since(),
+                           drift=drift_lines())
 
 
 @bp.get("/page/<name>")
@@ -153,7 +155,7 @@ def model_page(name: str):
                            served=served.model.version if served and served.model else None,
                            refused=models.refused(name, live),
                            cards=cards, score_keys=score_keys(cards), events=events,
-                           history_problem=history_problem)
+                           history_problem=history_problem, shadow=shadow_line(name))
 
 
 @bp.get("/page/<name>/try")

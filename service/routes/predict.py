@@ -21,7 +21,7 @@ from time import perf_counter
 import orjson
 from flask import Blueprint, Response, request
 
-from service import metrics
+from service import metrics, traffic
 from service.access_log import LABELS, ROUTE, ROWS
 from service.answers import COMPUTE_SLOT, parse_body, predict_response
 from service.app_state import AppState, state
@@ -81,6 +81,7 @@ def answer(name: str, model: Model, raw: bytes, max_rows: int, t_start: float,
         t["total"] = total = round((perf_counter() - t_start) * 1e3, 4)
         payload = orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY)
     metrics.count_request(labels, results, compute, total / 1e3)  # last: nothing can fail
+    traffic.after_answer(name, model, req, results, environ)  # drift window, shadow queue
     # wire order; with Content-Type in the list werkzeug skips its mimetype work
     return payload, [
         ("Server-Timing", f"parse;dur={t['parse']}, compute;dur={t['compute']}, "

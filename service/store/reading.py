@@ -36,6 +36,10 @@ from service.store.names import (
     store_root,
 )
 
+#: Actions a history record may name; rollback's replay looks at release and rollback only
+#: (the shadow records are written by :mod:`service.store.shadowing`).
+HISTORY_ACTIONS = ("release", "rollback", "shadow", "shadow_off")
+
 
 def read_fault(exc: OSError, what: str) -> StoreError:
     """The store error for a file ``what`` (e.g. "coat v2: manifest.json") that could not
@@ -172,7 +176,7 @@ class StoreReader:
             except ValueError:
                 rec = None
             version = rec.get("version") if isinstance(rec, dict) else None
-            if (not isinstance(rec, dict) or rec.get("action") not in ("release", "rollback")
+            if (not isinstance(rec, dict) or rec.get("action") not in HISTORY_ACTIONS
                     or isinstance(version, bool) or not isinstance(version, int)):
                 bad.append(number)
             else:
