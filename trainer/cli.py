@@ -49,15 +49,15 @@ def cmd_train(args) -> int:
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
         target_range=args.target_range, shared_kernel=args.shared_kernel,
-        cg_stop=args.cg_stop)
+        cg_stop=args.cg_stop, group=args.group)
 
     def log(*a, **k):
         if not args.quiet:
             print(*map(visible, map(str, a)), file=sys.stderr, **k)
 
     summary = train(opts, log=log)
-    for warning in summary["warnings"]:  # even with --quiet: they concern the model itself
-        print(f"warning: {visible(warning)}", file=sys.stderr)
+    for w in summary["warnings"]:  # even with --quiet: they concern the model itself
+        print(f"warning: {visible(w['message'])} [{w['code']}]", file=sys.stderr)
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
@@ -252,6 +252,9 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--time", metavar="COL",
                    help="timestamp column (ISO 8601 or a number): hold out the most recent "
                         "rows and tune by blocked cross-validation in time order")
+    t.add_argument("--group", metavar="COL",
+                   help="group column (a mix, batch or sample id; not a feature): every row "
+                        "of a group stays on one side of the holdout and of each tuning fold")
     t.add_argument("--time-format", metavar="FMT",
                    help="how the --time column is written, in strftime codes (e.g. "
                         "'%%d.%%m.%%Y %%H:%%M'; default: ISO 8601, a number, or day-first/"

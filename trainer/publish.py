@@ -11,7 +11,6 @@ import numpy as np
 from service.model import verifier
 from service.store import Store
 from service.target_kernels import kernel_text, ridge_text, shared_entries
-from trainer import cautions
 from trainer.plan import Output, Plan
 from trainer.solvers import Fitted, Predicted
 
@@ -75,12 +74,13 @@ def publish(store: Store, out: Output, manifest: dict, arrays: dict,
                                                "report.html") if extra is not None else None)
 
 
-def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, metrics: dict,
-            counts: dict, check: dict | None, t0: float) -> dict:
+def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, manifest: dict,
+            counts: dict, t0: float) -> dict:
     """The train summary (printed by ``kridge train``, returned by :func:`trainer.job.train`).
 
     ``kernel`` and ``ridge_text`` name each target's where they differ; ``ridge`` is None
     when the targets' ridges differ."""
+    metrics, check = manifest["metrics"], manifest["precision_check"]
     settings = fitted.settings(list(plan.columns.targets))
     shared = shared_entries(settings)
     return {
@@ -103,5 +103,6 @@ def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, metr
         "report": published.report,
         "seconds": round(time.perf_counter() - t0, 2),
         "store": str(store.root),
-        "warnings": list(fitted.warnings) + cautions.poor_holdout(metrics),
+        "baselines": manifest["baselines"],
+        "warnings": manifest["warnings"],
     }

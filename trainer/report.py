@@ -22,7 +22,7 @@ from service.intervals import measured_coverage
 from service.target_kernels import shared_entries, target_kernels
 from service.text_safety import html_name, plot_label
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
-from trainer.cautions import R2_POOR, poor_holdout
+from trainer.cautions import CODE_TITLES
 from trainer.report_envelope import envelope_section
 from trainer.report_tables import Raw as _Raw
 from trainer.report_tables import esc as _esc
@@ -174,8 +174,8 @@ def _metrics_rows(metrics: dict) -> list[list]:
 def _cautions(manifest: dict) -> str:
     """The caution section: poor holdout scores, extrapolation flags, what the intervals
     promise, and review before acting."""
-    items = [f"<li><b>Poor holdout score.</b> {_esc(w)}.</li>"
-             for w in poor_holdout(manifest.get("metrics", {}))]
+    items = [f"<li><b>{_esc(CODE_TITLES.get(w['code'], 'Warning'))}.</b> {_esc(w['message'])}"
+             f" <code>{_esc(w['code'])}</code></li>" for w in manifest.get("warnings") or []]
     if not (manifest.get("metrics") or {}).get("holdout"):
         items.append("<li><b>No holdout.</b> Nothing scored this model on rows it did not "
                      "see; its errors on new rows are unknown.</li>")
@@ -196,8 +196,9 @@ def _cautions(manifest: dict) -> str:
                      "intervals below), not the nominal level.</li>")
     items.append(f"<li><b>Before acting.</b> {_esc(BEFORE_ACTING)}</li>")
     return ("<h2>Cautions</h2><ul>" + "".join(items) + "</ul>"
-            f"<p class=note>A holdout R² below {R2_POOR} is flagged: the model then explains "
-            "less than half of the target's variance on unseen rows.</p>")
+            "<p class=note>The holdout is judged against the training mean (and, for a time "
+            "holdout, the last known value): a warning above names the baseline a target "
+            "does not beat.</p>")
 
 
 def _head(manifest: dict) -> list[str]:

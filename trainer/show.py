@@ -166,7 +166,16 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
     lines += envelope_lines(m)
     lines.append(("precision", precision_line(m.get("precision", "float64"),
                                               m.get("precision_check"))))
+    lines += warning_lines(m)
     return lines
+
+
+def warning_lines(m: dict) -> list[tuple[str, str]]:
+    """One ``warning`` line per entry of the manifest's ``warnings`` (code in brackets)."""
+    if "warnings" not in m:
+        return [("warnings", "not recorded (a manifest from before warnings were stored)")]
+    return [("warning", f"{w['message']} [{w['code']}]") for w in m["warnings"]] or [
+        ("warnings", "none")]
 
 
 def print_pairs(pairs: list[tuple[str, str]], out=None) -> None:
