@@ -35,6 +35,7 @@ from service.store.names import (
     os_reason,
     store_root,
 )
+from service.store.pointers import read_pointer
 
 #: Actions a history record may name; rollback's replay looks at release and rollback only
 #: (the shadow records are written by :mod:`service.store.shadowing`).
@@ -139,20 +140,7 @@ class StoreReader:
         A damaged pointer (not JSON, no positive integer version) is a :class:`StoreError`
         naming the model; ``kridge release`` writes a fresh one.
         """
-        try:
-            raw = read_regular(self.model_dir(name) / "live.json")
-        except FileNotFoundError:
-            return None
-        except OSError as exc:
-            raise read_fault(exc, f"{name}: live.json") from None
-        try:
-            entry = json.loads(raw)
-        except ValueError:
-            raise StoreError(f"{name}: live.json is damaged (not valid JSON)") from None
-        version = entry.get("version") if isinstance(entry, dict) else None
-        if isinstance(version, bool) or not isinstance(version, int) or version < 1:
-            raise StoreError(f"{name}: live.json is damaged (it names no valid version)")
-        return entry
+        return read_pointer(self.model_dir(name) / "live.json", name, read_fault)
 
     def live_version(self, name: str) -> int | None:
         """The version live.json names, None when nothing is live; StoreError when damaged."""

@@ -6,22 +6,17 @@ replays the history to find the version live before.
 
 from __future__ import annotations
 
-import contextlib
-import json
-import os
 from collections.abc import Callable
 from pathlib import Path
 
-from service.store.files import append_line, fsync_dir, write_temp
 from service.store.names import (
     Conflict,
     NotFound,
     StoreError,
-    Unwritable,
     check_version,
     now_iso,
-    os_reason,
 )
+from service.store.pointers import replace_pointer
 from service.store.reading import StoreReader
 
 
@@ -42,20 +37,7 @@ class Releases(StoreReader):
             record["repaired"] = repaired
         if restart:  # rollback replays the history from here on (earlier lines are damaged)
             record["restart"] = True
-        live = mdir / "live.json"
-        try:
-            tmp = write_temp(live, (json.dumps(entry) + "\n").encode())
-            try:
-                append_line(mdir / "history.jsonl", json.dumps(record),
-                             then=lambda: os.replace(tmp, live))
-            except BaseException:
-                with contextlib.suppress(FileNotFoundError):
-                    os.unlink(tmp)
-                raise
-            fsync_dir(mdir)
-        except OSError as exc:
-            raise Unwritable(f"{name}: cannot write to the store ({os_reason(exc)}); live.json "
-                             "and the history are unchanged") from None
+        replace_pointer(mdir, "live.json", name, entry, record)
         return record
 
     def release(self, name: str, version: int, check: Callable[[int], None] | None = None) -> dict:

@@ -10,12 +10,11 @@ appends a record too. History records: ``{"action": "shadow", "version": N, "pre
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 from pathlib import Path
 
-from service.store.files import append_line, fsync_dir, read_regular, write_temp
+from service.store.files import append_line, fsync_dir
 from service.store.names import (
     NotFound,
     StoreError,
@@ -24,6 +23,7 @@ from service.store.names import (
     now_iso,
     os_reason,
 )
+from service.store.pointers import read_pointer, replace_pointer
 from service.store.reading import StoreReader, read_fault
 
 #: File name of the shadow pointer inside a model's folder.
@@ -35,20 +35,7 @@ class Shadowing(StoreReader):
 
     def shadow(self, name: str) -> dict | None:
         """Contents of shadow.json, None when no shadow is named; StoreError when damaged."""
-        try:
-            raw = read_regular(self.model_dir(name) / SHADOW_FILE)
-        except FileNotFoundError:
-            return None
-        except OSError as exc:
-            raise read_fault(exc, f"{name}: {SHADOW_FILE}") from None
-        try:
-            entry = json.loads(raw)
-        except ValueError:
-            raise StoreError(f"{name}: {SHADOW_FILE} is damaged (not valid JSON)") from None
-        version = entry.get("version") if isinstance(entry, dict) else None
-        if isinstance(version, bool) or not isinstance(version, int) or version < 1:
-            raise StoreError(f"{name}: {SHADOW_FILE} is damaged (it names no valid version)")
-        return entry
+        return read_pointer(self.model_dir(name) / SHADOW_FILE, name, read_fault)
 
     def shadow_version(self, name: str) -> int | None:
         entry = self.shadow(name)
@@ -71,20 +58,7 @@ class Shadowing(StoreReader):
             entry = {"version": version, "since": now, "live": self.live_version(name)}
             record = {"time": now, "action": "shadow", "version": version,
                       "previous": previous}
-            path = mdir / SHADOW_FILE
-            try:
-                tmp = write_temp(path, (json.dumps(entry) + "\n").encode())
-                try:
-                    append_line(mdir / "history.jsonl", json.dumps(record),
-                                then=lambda: os.replace(tmp, path))
-                except BaseException:
-                    with contextlib.suppress(FileNotFoundError):
-                        os.unlink(tmp)
-                    raise
-                fsync_dir(mdir)
-            except OSError as exc:
-                raise Unwritable(f"{name}: cannot write to the store ({os_reason(exc)}); "
-                                 f"{SHADOW_FILE} and the history are unchanged") from None
+            replace_pointer(mdir, SHADOW_FILE, name, entry, record)
         return record
 
     def end_shadow(self, name: str, only: int | None = None,

@@ -93,7 +93,6 @@ class CsvFile:
         """Numbers of ``columns`` (and the ``time`` column) in one block, and the text of the
         ``cells`` columns as written."""
         import pyarrow as pa
-        import pyarrow.csv as pcsv
 
         raw = self.read_bytes(block)
         wanted = columns + ([time] if time else [])
@@ -108,16 +107,7 @@ class CsvFile:
             # tasks on its thread pool that abort the process at exit ("terminate called
             # without an active exception", apache/arrow#34314), turning a one-line refusal
             # into SIGABRT. Blocks are small, so the cost is a fraction of a second per 10⁶ rows.
-            table = pcsv.read_csv(
-                io.BytesIO(raw),
-                read_options=pcsv.ReadOptions(column_names=self.header, use_threads=False),
-                parse_options=pcsv.ParseOptions(delimiter=self.sep,
-                                                newlines_in_values=b'"' in raw),
-                convert_options=pcsv.ConvertOptions(
-                    include_columns=wanted, column_types=types, null_values=MISSING,
-                    strings_can_be_null=True, quoted_strings_can_be_null=True,
-                    decimal_point=self.decimal),
-            )
+            table = self.arrow_table(raw, wanted, types, missing=True, decimal=self.decimal)
         except (pa.ArrowInvalid, UnicodeDecodeError) as exc:
             self._explain(block, raw, columns, exc)
             raise AssertionError("unreachable") from exc  # _explain always raises
@@ -133,20 +123,30 @@ class CsvFile:
                              lambda i: self.where(block, i), time, self.time_rule)
         return Chunk(block, values, times, self._texts(raw, cells) if cells else None)
 
-    def _texts(self, raw: bytes, columns: list[str]) -> list[list[str]]:
-        """The cells of ``columns`` as written (quotes removed, nothing read as missing)."""
-        import pyarrow as pa
+    def arrow_table(self, raw: bytes, include: list[str], types: dict, missing: bool,
+                    decimal: str = "."):
+        """pyarrow's table of one block's ``include`` columns, typed as ``types``, parsed on
+        this thread (see :meth:`chunk` for why); ``missing``: the missing-value words (and
+        empty cells) read as null, else every cell as written."""
         import pyarrow.csv as pcsv
 
-        table = pcsv.read_csv(
+        return pcsv.read_csv(
             io.BytesIO(raw),
             read_options=pcsv.ReadOptions(column_names=self.header, use_threads=False),
             parse_options=pcsv.ParseOptions(delimiter=self.sep,
                                             newlines_in_values=b'"' in raw),
             convert_options=pcsv.ConvertOptions(
-                include_columns=columns, column_types=dict.fromkeys(columns, pa.string()),
-                null_values=[], strings_can_be_null=False, quoted_strings_can_be_null=False),
+                include_columns=include, column_types=types,
+                null_values=MISSING if missing else [], strings_can_be_null=missing,
+                quoted_strings_can_be_null=missing, decimal_point=decimal),
         )
+
+    def _texts(self, raw: bytes, columns: list[str]) -> list[list[str]]:
+        """The cells of ``columns`` as written (quotes removed, nothing read as missing)."""
+        import pyarrow as pa
+
+        table = self.arrow_table(raw, columns, dict.fromkeys(columns, pa.string()),
+                                 missing=False)
         return [table.column(c).to_pylist() for c in columns]
 
     def _explain(self, block: Block, raw: bytes, columns: list[str], exc) -> None:

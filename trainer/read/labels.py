@@ -9,28 +9,15 @@ two labels in CSV, as written; one in a typed Parquet column).
 
 from __future__ import annotations
 
-import io
-
-from trainer.read.cells import MISSING
-
 
 def csv_labels(file, column: str) -> list[str | None]:
     """Every data row's cell of ``column`` in a CSV file (None: empty)."""
     import pyarrow as pa
-    import pyarrow.csv as pcsv
 
     out: list[str | None] = []
     for block in file.blocks():
         raw = file.read_bytes(block)
-        table = pcsv.read_csv(
-            io.BytesIO(raw),
-            read_options=pcsv.ReadOptions(column_names=file.header, use_threads=False),
-            parse_options=pcsv.ParseOptions(delimiter=file.sep,
-                                            newlines_in_values=b'"' in raw),
-            convert_options=pcsv.ConvertOptions(
-                include_columns=[column], column_types={column: pa.string()},
-                null_values=MISSING, strings_can_be_null=True,
-                quoted_strings_can_be_null=True))
+        table = file.arrow_table(raw, [column], {column: pa.string()}, missing=True)
         out += table.column(column).to_pylist()
     return out
 
