@@ -89,9 +89,14 @@ def cmd_compare(args) -> int:
         raise UserError("--pairs and --id go together: the pairs file and the data's row id "
                         "column it is joined on")
     if args.pairs is not None:
-        from trainer.compare_pairs_cmd import cmd_compare_pairs
+        from trainer.compare_pairs import as_text as pairs_text
+        from trainer.compare_pairs_cmd import compare_pairs
 
-        return cmd_compare_pairs(args, level)
+        doc, gate = compare_pairs(args, level)
+        doc = _finite(doc)
+        print(json.dumps(doc, indent=2, allow_nan=False) if args.json else
+              "\n".join([pairs_text(doc), *([gate["reason"]] if gate else []), doc["caution"]]))
+        return EXIT_NOT_BETTER if gate is not None and not gate["passed"] else 0
     if args.permutations is not None and args.permutations < 1:
         raise UserError(f"--permutations must be at least 1, not {args.permutations}")
     if (args.window is not None or args.time_format is not None) and args.time is None:

@@ -2,12 +2,9 @@
 
 from __future__ import annotations
 
-import json
-
 from service.store import Store, now_iso
 from trainer import compare as cmp
 from trainer import compare_pairs as cp
-from trainer.compare_cli import EXIT_NOT_BETTER, _finite
 from trainer.compare_text import COMPARE_CAUTION
 from trainer.errors import UserError
 
@@ -25,8 +22,8 @@ def _versions(text: str | None) -> tuple[int, int] | None:
     return int(parts[0]), int(parts[1])
 
 
-def cmd_compare_pairs(args, level: float | None) -> int:
-    """Run the served comparison; exit as kridge compare does."""
+def compare_pairs(args, level: float | None) -> tuple[dict, dict | None]:
+    """Run the served comparison: its JSON-ready document (NaN left in) and the gate."""
     used = [f"--{o.replace('_', '-')}" for o in _NOT_WITH_PAIRS
             if getattr(args, o) not in (None, False)]
     if used:
@@ -55,11 +52,9 @@ def cmd_compare_pairs(args, level: float | None) -> int:
     result = cp.compare_served(rows, live, shadow, versions,
                                cmp.DEFAULT_LEVEL if level is None else level)
     gate = cmp.gate(result["verdicts"], versions[1], level) if level is not None else None
-    doc = _finite(dict(cmp.public(result), model=args.model, targets=present,
-                       counts={**rows.counts, **pair_counts, **lab_counts}, gate=gate,
-                       figures_method=cp.FIGURES_METHOD, test_method=cp.TEST_METHOD,
-                       caution=COMPARE_CAUTION, pairs=str(args.pairs), data=str(args.data),
-                       time=now_iso()))
-    print(json.dumps(doc, indent=2, allow_nan=False) if args.json else
-          cp.as_text(doc) + ("\n" + gate["reason"] if gate else "") + "\n" + COMPARE_CAUTION)
-    return EXIT_NOT_BETTER if gate is not None and not gate["passed"] else 0
+    doc = dict(cmp.public(result), model=args.model, targets=present,
+               counts={**rows.counts, **pair_counts, **lab_counts}, gate=gate,
+               figures_method=cp.FIGURES_METHOD, test_method=cp.TEST_METHOD,
+               caution=COMPARE_CAUTION, pairs=str(args.pairs), data=str(args.data),
+               time=now_iso())
+    return doc, gate
