@@ -21,7 +21,8 @@ and the bench prints the noise floor beside every figure so the headroom is visi
         --direct-too                                   # CG with 10,000 landmarks vs direct
 
 With ``--cg-landmarks M`` the bench also fits Nyström with M landmarks by preconditioned CG
-(``--solver cg``), with ``--direct-too`` the direct solve at the same M, and scikit-learn's
+(``--solver cg``, stopped by the validation rule; which rule stopped each ridge is
+printed), with ``--direct-too`` the direct solve at the same M, and scikit-learn's
 ``Nystroem`` + ``Ridge`` with M components and our kernel and ridge where its n × M feature
 matrix fits in a quarter of the memory. Every figure is printed with the load average
 before and after it: the machine is shared.
@@ -175,7 +176,8 @@ def cg_runs(args, data: Path, store: Path, x_test: np.ndarray, y_test: np.ndarra
 
         train_rec = Store(store).read_manifest(name, 1)["training"]
         solve = {k: v for k, v in (train_rec.get("solve") or {}).items()
-                 if k in ("iterations", "final_residual", "converged", "seconds")}
+                 if k in ("iterations", "final_residual", "converged", "seconds",
+                          "stopped_by", "column_iterations")}
         print(f"nystrom {solver} with {m} landmarks: {res['wall_seconds']:.0f} s "
               f"({res['load']}); fit {train_rec['fit_seconds']:.0f} s {solve}", flush=True)
     sk = sklearn_nystroem(data, store, f"cg-{m}", m, x_test, y_test)

@@ -32,8 +32,10 @@ def _standardized(n: int, seed: int = 0, noise: float = 0.1):
     return (x - x.mean(0)) / x.std(0), y
 
 
-def _cg(spec, landmarks, xs, y, ridges, **kw) -> cg.CgFit:
-    rows = LocalRows(spec, landmarks, xs, y)
+def _cg(spec, landmarks, xs, y, ridges, dtype=np.float64, **kw) -> cg.CgFit:
+    """CG on rows in memory; float64 tiles unless asked (the algorithm's checks run to
+    tolerance need them: float32 tiles are checked on their own below)."""
+    rows = LocalRows(spec, landmarks, xs, y, dtype=dtype)
     return cg.solve_nystrom_cg(spec, landmarks, rows, rows.mean, rows.count, ridges, **kw)
 
 
@@ -167,7 +169,9 @@ def test_cli_cg_fit_records_the_solve_and_serves_like_the_direct_one(tmp_path, c
     store = tmp_path / "st"
     common = ["--method", "nystrom", "--landmarks", "150", "--gamma", "0.4", "--ridge", "1"]
     assert _train(store, path, *common, "--solver", "direct", name="direct") == 0
-    assert _train(store, path, *common, "--solver", "cg", name="cg") == 0
+    # solved to the residual rule (the validation rule is checked on its own below)
+    assert _train(store, path, *common, "--solver", "cg", "--cg-stop", "residual",
+                  name="cg") == 0
     summary = json.loads(capsys.readouterr().out.split("\n}\n")[1] + "\n}")
     assert "cg solve (asked for with --solver cg)" in summary["method"]
     a, b = load_model(store, "direct", 1), load_model(store, "cg", 1)
@@ -250,3 +254,131 @@ def test_width_steps_use_a_bounded_landmark_subset_above_the_cap(monkeypatch):
                                               np.random.default_rng(1))
     assert "a uniform subset of 60 of the 120" in info["method"]
     assert set(seen) == {30, 60}  # never all 120
+
+
+def test_float32_kernel_values_stay_close_to_the_float64_iteration():
+    """The float32 tile option (float32 values, float64 products) against float64 tiles.
+
+    Run to the residual rule at ridge 1: β within 3e-2 of its largest entry and predictions
+    within 5e-4 of their largest (measured 9e-3 and 1.1e-4: float32 values perturb the
+    system by ~1e-7 and β's ill-determined directions move, the predictions hardly). Twenty-
+    five iterations at a tiny ridge (a tuned one's scale): predictions within 5e-3 of their
+    spread and the RMSE against the noiseless response within 1e-3 of itself (measured 1.8e-3
+    and 1.2e-4). With float32 products as well CG diverges (bench/cg_bench.py --float32-sums).
+    """
+    xs, y = _standardized(4800, seed=14)
+    q = _standardized(2000, seed=15)[0]
+    spec = KernelSpec("rbf", gamma=0.4)
+    lm = _landmarks(xs, 150)
+    kq = kernel_matrix(spec, q, lm)
+    runs = [_cg(spec, lm, xs, y[:, :1], [1.0], dtype=dt, tol=1e-10, max_iter=500)
+            for dt in (np.float64, np.float32)]
+    (b64, b32), (p64, p32) = ([r.betas[0] for r in runs],
+                              [kq @ r.betas[0] for r in runs])
+    assert np.abs(b32 - b64).max() <= 3e-2 * np.abs(b64).max()
+    assert np.abs(p32 - p64).max() <= 5e-4 * np.abs(p64).max()
+
+    xs, y = _standardized(8000, seed=14)
+    rng = np.random.default_rng(15)
+    x0 = np.random.default_rng(14).uniform(-1, 1, (8000, 4))  # _standardized's draw
+    xq = rng.uniform(-1, 1, (2000, 4))
+    f_q = _function(xq)[:, :1]
+    spec = KernelSpec("rbf", gamma=0.3)
+    lm = _landmarks(xs, 400)
+    kq = kernel_matrix(spec, (xq - x0.mean(0)) / x0.std(0), lm)
+    runs = [_cg(spec, lm, xs, y[:, :1], [1e-4], dtype=dt, tol=0.0, max_iter=25)
+            for dt in (np.float64, np.float32)]
+    assert all(r.run.iterations == 25 and r.run.stopped_by == ["cap"] for r in runs)
+    p64, p32 = (kq @ r.betas[0] + r.intercept for r in runs)
+    assert np.abs(p32 - p64).max() <= 5e-3 * np.ptp(p64)
+    r64, r32 = (np.sqrt(np.mean((p - f_q) ** 2)) for p in (p64, p32))
+    assert abs(r32 - r64) <= 1e-3 * r64
+    assert "float32 kernel values" in LocalRows(spec, lm, xs, y, dtype=np.float32).tiles
+    assert LocalRows(spec, lm, xs, y).kern.dtype == cg.TILE_DTYPE == np.float64
+
+
+def test_validation_rule_stops_early_keeps_the_best_iterate_and_says_why():
+    from trainer.nystrom import cg_stop
+
+    xs, y = _standardized(5000, seed=16)
+    spec, ridge = KernelSpec("rbf", gamma=0.3), 1e-5
+    lm = _landmarks(xs[:4000], 200)
+    tr, ytr, val = xs[:4000], y[:4000, :1], (xs[4000:], y[4000:, :1])
+    fit = _cg(spec, lm, tr, ytr, [ridge], tol=1e-10, max_iter=300, check=val)
+    run, mon = fit.run, fit.run.monitor
+    assert run.stopped_by == ["validation"] and run.iterations < 300
+    best, stop = int(mon.best_iteration[0]), run.column_iterations[0]
+    hist = np.array(mon.history)[:, 0]
+    assert len(hist) == stop and hist[best - 1] == hist.min()
+    # stalled: the last PATIENCE iterations gained less than MIN_GAIN on the MSE before them
+    mse = hist**2
+    cut = stop - cg_stop.PATIENCE
+    assert mse[cut:].min() > mse[:cut].min() * (1 - cg_stop.MIN_GAIN)
+    # the iterate kept is the one of the best iteration: the same solve stopped there
+    again = _cg(spec, lm, tr, ytr, [ridge], tol=0.0, max_iter=best)
+    np.testing.assert_allclose(fit.betas[0], again.betas[0], rtol=0,
+                               atol=1e-12 * np.abs(again.betas[0]).max())
+    kv = kernel_matrix(spec, val[0], lm)
+    got = np.sqrt(np.mean((kv @ fit.betas[0] + fit.intercept - val[1]) ** 2))
+    assert abs(got - hist.min()) <= 1e-9
+    rec = run.record(1e-10, 300)
+    assert "validation MSE on 1000 validation rows" in rec["stopping_rule"]
+    assert rec["validation_check"]["best_iteration"] == [best]
+    assert rec["stopped_by"] == ["validation"] and rec["converged"] is False
+
+
+def test_cli_cg_fit_stops_by_the_validation_rule_and_records_it(tmp_path, capsys):
+    path = _csv(tmp_path, 6000, seed=17)
+    store = tmp_path / "st"
+    assert _train(store, path, "--method", "nystrom", "--landmarks", "300", "--gamma", "0.3",
+                  "--ridge", "1e-5", "--solver", "cg", name="v") == 0
+    solve = Store(store).read_manifest("v", 1)["training"]["solve"]
+    assert solve["stopped_by"] == ["validation"] and solve["iterations"] < 100
+    check = solve["validation_check"]
+    assert check["rows"] > 0 and len(check["rmse_by_iteration"]) == solve["iterations"]
+    assert solve["kernel_tiles"] == "float64 kernel tiles and products"
+    assert "validation MSE on" in solve["stopping_rule"]
+    out = capsys.readouterr()
+    assert "warning" not in out.err  # not the cap: no warning
+    assert (f"stopped by the validation rule after {solve['iterations']} iterations"
+            in json.loads(out.out)["method"])
+    with pytest.raises(SystemExit) as bad:
+        _train(store, path, "--method", "nystrom", "--cg-stop", "sideways", name="bad")
+    assert bad.value.code == 2 and "--cg-stop" in capsys.readouterr().err
+
+
+def _curve(gamma: float, score: float):
+    from trainer.exact.candidates import Curve
+
+    return Curve(KernelSpec("rbf", gamma=gamma), np.array([1e-3]), np.array([score]),
+                 np.array([[np.sqrt(score)]]))
+
+
+def test_rank_guard_prefers_a_width_that_keeps_the_landmark_rank_and_says_so():
+    """A synthetic case of our own: the widest kernel (rank 3 of 300) scores best by a hair;
+    a width that keeps the rank scores within the tolerance and is chosen instead."""
+    from trainer.nystrom import rank
+
+    lm = _landmarks(_standardized(3000, seed=18)[0], 300)
+    wide, fine, narrow = _curve(1e-6, 0.100), _curve(0.3, 0.101), _curve(3.0, 0.2)
+    assert rank.landmark_rank(wide.spec, lm, np.random.default_rng(0))[0] < 30
+    scored = []
+    kept, account = rank.rank_guard(wide, [wide, fine, narrow], lm, 0,
+                                    lambda s: scored.append(s) or _curve(s.gamma, 1.0), 2.0)
+    assert kept is fine and not scored
+    assert account["kept"] == fine.spec.describe()
+    assert account["collapsed"]["fraction"] < rank.RANK_WARN_FRACTION
+    assert "so it was chosen instead" in account["summary"]
+    # outside the tolerance the collapsed width stays, and the account says that too
+    worse = _curve(0.3, 0.100 * (1 + 2 * rank.RANK_PREFER_TOLERANCE))
+    kept, account = rank.rank_guard(wide, [wide, worse], lm, 0,
+                                    lambda s: scored.append(s) or _curve(s.gamma, 1.0), 2.0)
+    assert kept is wide and not scored and "so it was kept" in account["summary"]
+    # every searched width collapsed: narrower widths are scored until one keeps the rank
+    kept, account = rank.rank_guard(wide, [wide, _curve(2e-6, 0.1005)], lm, 0,
+                                    lambda s: scored.append(s) or _curve(s.gamma, 0.1001),
+                                    1e3)
+    assert scored and kept.spec.gamma == scored[-1].gamma
+    assert rank.landmark_rank(kept.spec, lm, np.random.default_rng(0))[0] >= 30
+    # a width that keeps the rank is left alone
+    assert rank.rank_guard(fine, [wide, fine], lm, 0, None, 2.0) == (fine, None)

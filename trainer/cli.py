@@ -48,7 +48,8 @@ def cmd_train(args) -> int:
         drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
-        shared_kernel=args.shared_kernel)
+        shared_kernel=args.shared_kernel,
+        cg_stop=args.cg_stop)
 
     def log(*a, **k):
         if not args.quiet:
@@ -265,8 +266,10 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
                    help="how Nyström landmarks are chosen (default: uniform)")
     t.add_argument("--solver", choices=("direct", "cg", "auto"), default="auto",
                    help="Nyström solve: direct (m × m sums, every ridge at once), cg "
-                        "(preconditioned conjugate gradient, n·m per iteration), or auto by "
-                        "landmark count (default)")
+                        "(preconditioned conjugate gradient), or auto by landmark count")
+    t.add_argument("--cg-stop", choices=("validation", "residual"), default="validation",
+                   help="what stops CG: validation error levelling off, or the residual "
+                        "(validation, default); the residual alone (residual)")
     t.add_argument("--cluster", metavar="ADDRESS",
                    help="Dask scheduler address: run the Nyström accumulation there")
     t.add_argument("--quiet", action="store_true")

@@ -54,6 +54,7 @@ class TrainOptions:
     cluster: str | None = None
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
     shared_kernel: bool = False  # several targets: one kernel and ridge for all, not each its own
+    cg_stop: str = "validation"  # CG: validation (and residual) rule, or residual alone
 
 
 @dataclass(frozen=True)
@@ -77,6 +78,7 @@ class Method:
     landmark_scheme: str | None = None
     cluster: str | None = None
     solver: str = "auto"
+    cg_stop: str = "validation"
 
 
 @dataclass(frozen=True)
@@ -159,6 +161,8 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError("--cluster runs the Nyström accumulation; use --method nystrom")
     if opts.solver not in ("direct", "cg", "auto"):
         raise UserError(f"--solver must be direct, cg or auto, not {opts.solver!r}")
+    if opts.cg_stop not in ("validation", "residual"):
+        raise UserError(f"--cg-stop must be validation or residual, not {opts.cg_stop!r}")
     if opts.method == "exact" and opts.solver == "cg":
         raise UserError("--solver cg solves the Nyström system; use --method nystrom")
     if opts.method not in METHODS:
@@ -208,7 +212,7 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
         columns=Columns(tuple(features), tuple(opts.targets), opts.time,
                         opts.drop_incomplete, text),
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
-                      opts.solver),
+                      opts.solver, opts.cg_stop),
         splits=Splits(opts.holdout, opts.seed),
         parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge,
                               opts.shared_kernel),

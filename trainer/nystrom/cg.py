@@ -17,10 +17,18 @@ Cholesky factor K_mm = TᵀT, and with (n/m) T Tᵀ + λ I = AᵀA,
 
 whose matrix is close to the identity: CG converges in tens of iterations whatever λ is.
 
-Stopping rule: per column of the right-hand side, the relative residual of the
-preconditioned system ‖Bᵀ(b − Hβ_k)‖ / ‖Bᵀb‖ falls to ``tol``, or ``max_iter`` iterations ran
-(the record says which). Several right-hand sides (targets, and several ridge values, each
-with its own A) run side by side: one pass over the rows serves them all.
+Stopping rules: per column of the right-hand side, the relative residual of the
+preconditioned system ‖Bᵀ(b − Hβ_k)‖ / ‖Bᵀb‖ falls to ``tol``, the validation rule of
+:mod:`trainer.nystrom.cg_stop` stops it, or ``max_iter`` iterations ran (the record says
+which, per column).
+
+Precision: the kernel values may be float32 (:data:`TILE_DTYPE`, float64 by default); the
+products with v stay float64. With kridge's tiny tuned ridges v = Bp has large components
+along K_mm's near-null directions that cancel in K_nm v, so float32 rounding of the values
+(or of the sums) moves the iterates (README, "The CG solver", for the figures).
+
+Several right-hand sides (targets, and several ridge values, each with its own A) run side
+by side: one pass over the rows serves them all.
 
 Reuse across ridges: T and T Tᵀ depend only on the kernel and are shared; A does not allow it,
 as the Cholesky factor of a shifted matrix is no cheap update of the unshifted one, so each
@@ -42,15 +50,29 @@ import numpy as np
 import scipy.linalg as sla
 
 from service.kernels import KernelBlocks, KernelSpec, finish_tile, kernel_matrix
+from trainer.nystrom.cg_stop import ValidationStop, rule_text
 
-#: Kernel values per tile (2 MB of float64): a tile stays in a core's L2 cache between its
-#: three passes (product, kernel function, the two products with v), which memory-sized
-#: blocks do not.
+#: Kernel values per tile (1 MB of float32): one tile stays in a core's L2 cache between its
+#: passes (product, kernel function, the two products with v), which memory-sized blocks
+#: do not.
 TILE_VALUES = 1 << 18
+#: Precision of the kernel values of an iteration's tiles: float64 (default), or float32
+#: (Q̃X̃ and exp in single precision; the products K_t v and K_tᵀ(K_t v) stay float64). Kept
+#: float64 because float32 values bought no time once widened for the products, and moved
+#: the iterates (README, "The CG solver": measured with bench/cg_bench.py).
+TILE_DTYPE = np.float64
 #: Default stopping rule: relative residual in the preconditioned norm, and an iteration cap.
 CG_TOL, CG_MAX_ITER = 1e-6, 100
 #: First jitter on K_mm's diagonal (times m·max diag), grown ×100 until the factor exists.
 JITTER_START, JITTER_MAX = 1e-10, 1e-4
+
+
+def tiles_text(dtype) -> str:
+    """The manifest's words for the kernel tiles' precision."""
+    if np.dtype(dtype) == np.float64:
+        return "float64 kernel tiles and products"
+    return (f"{np.dtype(dtype).name} kernel values (Q̃X̃ and exp), products K_t v and "
+            "K_tᵀ(K_t v) in float64")
 
 
 def tile_rows(m: int) -> int:
@@ -59,10 +81,10 @@ def tile_rows(m: int) -> int:
 
 
 def _tiles(kern: KernelBlocks, x: np.ndarray):
-    """The kernel tiles k(x_i, L) of the rows x, one buffer reused, no clip of u (a value a
-    hair above k(x, x) from rounding does not matter in a sum)."""
+    """The kernel tiles k(x_i, L) of the rows x in the blocks' dtype, one buffer reused, no
+    clip of u (a value a hair above k(x, x) from rounding does not matter in a sum)."""
     rows = tile_rows(kern.n)
-    buf = np.empty((min(rows, x.shape[0]), kern.n))
+    buf = np.empty((min(rows, x.shape[0]), kern.n), dtype=kern.dtype)
     scratch = None if kern.spec.name in ("rbf", "linear", "laplacian", "sigmoid") \
         else np.empty_like(buf)
     for i in range(0, x.shape[0], rows):
@@ -72,21 +94,35 @@ def _tiles(kern: KernelBlocks, x: np.ndarray):
 
 
 def gram_times(kern: KernelBlocks, x: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """K_xmᵀ(K_xm v) for the rows x and an (m, c) matrix v, tile by tile."""
-    out = np.zeros((kern.n, v.shape[1]))
-    for _i, k in _tiles(kern, x):
-        out += k.T @ (k @ v)
+    """K_xmᵀ(K_xm v) for the rows x and an (m, c) matrix v, tile by tile, in float64.
+
+    Each tile's K_tᵀ(K_t v) is one BLAS product accumulated in place (``dgemm`` with β = 1,
+    Fortran order: no copy of the tile); float32 tiles are widened into one reused float64
+    buffer first.
+    """
+    out = np.zeros((kern.n, v.shape[1]), order="F")
+    wide = None
+    for _i, tile in _tiles(kern, x):
+        k = tile
+        if tile.dtype != np.float64:
+            if wide is None:
+                wide = np.empty(tile.shape)
+            k = wide[:tile.shape[0]]
+            np.copyto(k, tile)
+        # k is C-ordered (r, m): k.T is Fortran-ordered (m, r), which gemm reads as it is
+        out = sla.blas.dgemm(1.0, k.T, k @ v, beta=1.0, c=out, overwrite_c=1)
     return out
 
 
 def cross_sums(kern: KernelBlocks, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """K_xmᵀ[1, y], (m, 1 + t): the kernel's column sums and its products with the targets."""
+    """K_xmᵀ[1, y], (m, 1 + t): the kernel's column sums and its products with the targets
+    (float64 for the exact right-hand side, whatever the tiles' dtype)."""
     ones_y = np.empty((x.shape[0], 1 + y.shape[1]))
     ones_y[:, 0] = 1.0
     ones_y[:, 1:] = y
     out = np.zeros((kern.n, ones_y.shape[1]))
     for i, k in _tiles(kern, x):
-        out += k.T @ ones_y[i:i + k.shape[0]]
+        out += k.T.astype(np.float64, copy=False) @ ones_y[i:i + k.shape[0]]
     return out
 
 
@@ -126,15 +162,19 @@ def cross_block(kern: KernelBlocks, x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return cross_sums(kern, x, y)
 
 
-def landmark_factor(kmm: np.ndarray) -> tuple[np.ndarray, float]:
+def landmark_factor(make_kmm: Callable[[], np.ndarray]) -> tuple[np.ndarray, float]:
     """(T upper, jitter): K_mm + jitter·I = TᵀT by Cholesky, jitter the smallest of
     m·max diag·{1e-10, 1e-8, …} that lets the factor exist (one of order m·eps,
-    as FALKON adds, left CG stalling on a singular K_mm: tests/test_nystrom_cg.py)."""
-    m = kmm.shape[0]
-    base = m * max(float(np.max(np.diag(kmm))), 1e-300)
+    as FALKON adds, left CG stalling on a singular K_mm: tests/test_nystrom_cg.py).
+
+    ``make_kmm()`` gives K_mm as a new array that the factor overwrites (one m × m array
+    in memory, not two); it is called again for each larger jitter.
+    """
     rel = JITTER_START
     while True:
-        a = kmm.copy(order="F")
+        a = np.asfortranarray(make_kmm())
+        m = a.shape[0]
+        base = m * max(float(np.max(np.diag(a))), 1e-300)
         a[np.diag_indices(m)] += rel * base
         t, info = sla.lapack.dpotrf(a, lower=0, overwrite_a=1, clean=1)
         if info == 0:
@@ -142,6 +182,7 @@ def landmark_factor(kmm: np.ndarray) -> tuple[np.ndarray, float]:
         if rel >= JITTER_MAX:
             raise np.linalg.LinAlgError("K_mm has no Cholesky factor even with jitter "
                                         f"{rel * base:.3g}")
+        del a, t
         rel *= 100.0
 
 
@@ -158,24 +199,34 @@ class Preconditioner:
     jitter: float
 
     @classmethod
-    def build(cls, kmm: np.ndarray, n: int, ridges: list[float], targets: int
-              ) -> Preconditioner:
-        """T once, T Tᵀ once (LAPACK dlauum, m³/3), one Cholesky per ridge."""
-        m = kmm.shape[0]
-        t, jitter = landmark_factor(kmm)
+    def build(cls, kmm: np.ndarray | Callable[[], np.ndarray], n: int, ridges: list[float],
+              targets: int) -> Preconditioner:
+        """T once, T Tᵀ once (LAPACK dlauum, m³/3), one Cholesky per ridge, the last one in
+        T Tᵀ's place: at most 2 + len(ridges) − 1 m × m arrays at a time.
+
+        ``kmm``: K_mm, or a function giving it anew (then factored in place).
+        """
+        make = kmm if callable(kmm) else (lambda: np.array(kmm, order="F"))
+        t, jitter = landmark_factor(make)
+        m = t.shape[0]
         ttt, info = sla.lapack.dlauum(t, lower=0)  # T Tᵀ, upper triangle
         if info:
             raise np.linalg.LinAlgError(f"dlauum failed ({info})")
         ttt *= n / m
         factors = []
-        for lam in ridges:
-            a = ttt.copy(order="F")
+        for i, lam in enumerate(ridges):
+            last = i == len(ridges) - 1
+            a = ttt if last else ttt.copy(order="F")
             a[np.diag_indices(m)] += lam
             f, info = sla.lapack.dpotrf(a, lower=0, overwrite_a=1, clean=1)
             if info:
                 raise np.linalg.LinAlgError(f"(n/m)TTᵀ + {lam:g}·I has no Cholesky factor")
             factors.append(f)
         return cls(t, factors, targets, jitter)
+
+    def kmm_times(self, v: np.ndarray) -> np.ndarray:
+        """K_mm v = Tᵀ(T v) − jitter·v (K_mm itself is not kept)."""
+        return self.t.T @ (self.t @ v) - self.jitter * v
 
     def _groups(self, c: int):
         for i, a in enumerate(self.a):
@@ -204,6 +255,12 @@ class NoPreconditioner:
 
     jitter = 0.0
 
+    def __init__(self, kmm: np.ndarray):
+        self.kmm = kmm
+
+    def kmm_times(self, v: np.ndarray) -> np.ndarray:
+        return self.kmm @ v
+
     def apply(self, v: np.ndarray) -> np.ndarray:
         return v
 
@@ -220,18 +277,26 @@ class CgRun:
     converged: bool
     seconds: float
     history: list[float] = field(default_factory=list)  # worst column's residual per step
+    stopped_by: list[str] = field(default_factory=list)  # per column: residual|validation|cap
+    column_iterations: list[int] = field(default_factory=list)
+    monitor: ValidationStop | None = None
 
     def record(self, tol: float, max_iter: int) -> dict:
         return {"iterations": self.iterations, "max_iterations": max_iter, "tolerance": tol,
                 "final_residual": float(self.residuals.max()),
                 "converged": bool(self.converged), "seconds": round(self.seconds, 3),
-                "stopping_rule": "relative residual ‖Bᵀ(b − Hβ)‖ / ‖Bᵀb‖ of the "
-                                 "preconditioned system ≤ tolerance, per column, or the "
-                                 "iteration cap"}
+                "stopping_rule": rule_text(self.monitor), "stopped_by": self.stopped_by,
+                "column_iterations": self.column_iterations,
+                "validation_check": None if self.monitor is None else self.monitor.record()}
+
+
+#: Why a column stopped, by code (0: still running).
+_STOP_WORDS = {1: "residual", 2: "validation", 3: "cap"}
 
 
 def conjugate_gradient(h_times: Callable[[np.ndarray], np.ndarray], b: np.ndarray,
-                       precond, tol: float = CG_TOL, max_iter: int = CG_MAX_ITER) -> CgRun:
+                       precond, tol: float = CG_TOL, max_iter: int = CG_MAX_ITER,
+                       monitor: ValidationStop | None = None) -> CgRun:
     """Solve H β = b column by column by CG on Bᵀ H B w = Bᵀ b, β = B w.
 
     Parameters
@@ -239,12 +304,14 @@ def conjugate_gradient(h_times: Callable[[np.ndarray], np.ndarray], b: np.ndarra
     h_times : v ↦ H v for an (m, c) matrix (one pass over the rows serves every column).
     b : (m, c) right-hand sides.
     precond : :class:`Preconditioner` or :class:`NoPreconditioner`.
+    monitor : the validation rule (:mod:`trainer.nystrom.cg_stop`), or None for the
+        residual rule alone.
 
     Notes
     -----
     Hestenes & Stiefel's CG (J. Res. NBS 1952) on the preconditioned system, each column
-    with its own step sizes; a column that met the stopping rule (module notes) keeps its
-    iterate while the others go on.
+    with its own step sizes; a column that met a stopping rule keeps its iterate (the
+    validation rule: its best-scored one) while the others go on.
     """
     t0 = time.perf_counter()
     w = np.zeros_like(b)
@@ -254,9 +321,11 @@ def conjugate_gradient(h_times: Callable[[np.ndarray], np.ndarray], b: np.ndarra
     rs0 = np.where(rs > 0, rs, 1.0)
     rel = np.sqrt(rs / rs0)
     history = [float(rel.max())]
+    stop = np.where(rel <= tol, 1, 0)
+    at = np.zeros(b.shape[1], dtype=int)
     it = 0
-    while it < max_iter and (rel > tol).any():
-        active = rel > tol
+    while it < max_iter and (stop == 0).any():
+        active = stop == 0
         q = precond.apply_t(h_times(precond.apply(p)))
         pq = np.einsum("ij,ij->j", p, q)
         alpha = np.where(active & (pq > 0), rs / np.where(pq > 0, pq, 1.0), 0.0)
@@ -269,8 +338,18 @@ def conjugate_gradient(h_times: Callable[[np.ndarray], np.ndarray], b: np.ndarra
         rel = np.sqrt(rs / rs0)
         it += 1
         history.append(float(rel.max()))
-    return CgRun(precond.apply(w), it, rel, bool((rel <= tol).all()),
-                 time.perf_counter() - t0, history)
+        stop[active & (rel <= tol)] = 1
+        if monitor is not None:
+            stalled = monitor.update(it, precond.apply(w))
+            stop[(stop == 0) & stalled] = 2
+        at[active] = it
+    stop[stop == 0] = 3
+    beta_out = precond.apply(w)
+    if monitor is not None:
+        by_val = stop == 2
+        beta_out[:, by_val] = monitor.best_beta[:, by_val]
+    return CgRun(beta_out, it, rel, bool((rel <= tol).all()), time.perf_counter() - t0,
+                 history, [_STOP_WORDS[int(c)] for c in stop], [int(i) for i in at], monitor)
 
 
 @dataclass
@@ -282,31 +361,39 @@ class CgFit:
     run: CgRun
     jitter: float
     count: int
+    tiles: str = ""  # the kernel tiles' precision, in words
 
 
 def solve_nystrom_cg(spec: KernelSpec, landmarks: np.ndarray, row_sum: RowSum,
                      mean: np.ndarray, count: int, ridges: list[float], tol: float = CG_TOL,
-                     max_iter: int = CG_MAX_ITER, precondition: bool = True) -> CgFit:
+                     max_iter: int = CG_MAX_ITER, precondition: bool = True,
+                     check: tuple[np.ndarray, np.ndarray] | None = None) -> CgFit:
     """(K_nmᵀK_nm + λ K_mm) β = K_nmᵀ(y − ȳ) for each λ in ``ridges`` by preconditioned CG.
 
     ``row_sum(fn, *args)`` sums ``fn(kern, x_block, y_block, *args)`` over the training
     blocks in block order (here in threads, or on Dask workers); ``mean`` is ȳ of their
-    ``count`` rows.
-    The same β as :func:`trainer.nystrom.numerics.ridge_path` to the tolerance, wherever
-    K_mm has full rank (else the same predictions).
+    ``count`` rows. ``check``: validation rows (x, y) for the validation stopping rule
+    (:mod:`trainer.nystrom.cg_stop`); without them the residual rule alone.
+    Run to the residual rule with float64 tiles, the same β as
+    :func:`trainer.nystrom.numerics.ridge_path` to the tolerance wherever K_mm has full
+    rank (else the same predictions).
     """
     cross = row_sum(cross_block)
     t = cross.shape[1] - 1
     b = cross[:, 1:] - np.outer(cross[:, 0], mean)
-    kmm = kernel_matrix(spec, landmarks)
-    precond = (Preconditioner.build(kmm, count, ridges, t) if precondition
-               else NoPreconditioner())
+    if precondition:
+        precond = Preconditioner.build(lambda: kernel_matrix(spec, landmarks), count, ridges, t)
+    else:
+        precond = NoPreconditioner(kernel_matrix(spec, landmarks))
     lam = np.repeat(np.asarray(ridges, dtype=np.float64), t)
     rhs = np.tile(b, (1, len(ridges)))
+    monitor = None if check is None else ValidationStop(spec, landmarks, check[0], check[1],
+                                                        mean, rhs.shape[1])
 
     def h_times(v: np.ndarray) -> np.ndarray:
-        return row_sum(gram_block, v) + (kmm @ v) * lam
+        return row_sum(gram_block, v) + precond.kmm_times(v) * lam
 
-    run = conjugate_gradient(h_times, rhs, precond, tol, max_iter)
+    run = conjugate_gradient(h_times, rhs, precond, tol, max_iter, monitor)
     betas = [run.beta[:, i * t:(i + 1) * t] for i in range(len(ridges))]
-    return CgFit(betas, mean, run, precond.jitter, count)
+    tiles = getattr(row_sum, "tiles", "")
+    return CgFit(betas, mean, run, precond.jitter, count, tiles)

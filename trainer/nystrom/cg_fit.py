@@ -15,7 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from trainer.errors import UserError
-from trainer.nystrom import cg
+from trainer.nystrom import cg, cg_stop
 from trainer.nystrom.cg_rows import LocalRows
 from trainer.nystrom.parts import BlockPlan, HeldRows
 from trainer.nystrom.pass2 import run_pass2
@@ -23,7 +23,7 @@ from trainer.nystrom.scores import predictor
 
 #: ``--solver auto``: CG from this many landmarks on, the direct solve below (README,
 #: "Large data: Nyström", for the measured crossover).
-CG_FROM_LANDMARKS = 4000
+CG_FROM_LANDMARKS = 3000
 
 
 def choose_solver(asked: str, m: int) -> tuple[str, str]:
@@ -66,12 +66,25 @@ def _validation_scores(spec, landmarks, fit: cg.CgFit, val: HeldRows,
                            axis=0) * inv_var).mean()) for b in fit.betas]
 
 
+#: ``--cg-stop``: the rules that may stop CG (trainer.nystrom.cg_stop).
+CG_STOPS = ("validation", "residual")
+
+
+def _check_rows(val: HeldRows, seed: int, stop: str) -> tuple[np.ndarray, np.ndarray] | None:
+    """The validation rows of the validation stopping rule (None: the residual rule only)."""
+    if stop != "validation" or val.x.shape[0] < 2:
+        return None
+    pick = cg_stop.check_rows(val.x.shape[0], seed)
+    return val.x[pick], val.y[pick]
+
+
 def fit_cg(plan: BlockPlan, blocks: list, cluster: str | None, progress, ridges_for,
            inv_var: np.ndarray | None, tol: float = cg.CG_TOL,
-           max_iter: int = cg.CG_MAX_ITER) -> FinalFit:
+           max_iter: int = cg.CG_MAX_ITER, stop: str = "validation") -> FinalFit:
     """Pass 2 keeping the training rows, then CG for every candidate ridge
-    (``ridges_for(training rows)``); the ridge with the lowest validation score is kept (the
-    first when the validation part is empty or there is no criterion)."""
+    (``ridges_for(training rows)``), stopped by ``stop``'s rule; the ridge with the lowest
+    validation score is kept (the first when the validation part is empty or there is no
+    criterion)."""
     plan = replace(plan, keep_train=True)
     if cluster:
         from trainer.nystrom.cluster import ClusterRows  # Dask only with --cluster
@@ -92,27 +105,30 @@ def fit_cg(plan: BlockPlan, blocks: list, cluster: str | None, progress, ridges_
         if inv_var is None or val.x.shape[0] < 2:
             ridges = ridges[:1]
         fit = cg.solve_nystrom_cg(plan.spec, plan.landmarks, rows, rows.mean, rows.count,
-                                  ridges, tol, max_iter)
+                                  ridges, tol, max_iter, check=_check_rows(val, plan.seed, stop))
     finally:
         if cluster:
             rows.close()
     record = {"solver": "cg", **fit.run.record(tol, max_iter), "jitter": fit.jitter,
-              "ridges_solved": [float(r) for r in ridges]}
+              "kernel_tiles": fit.tiles, "ridges_solved": [float(r) for r in ridges]}
     best = 0
     if len(ridges) > 1:
         scores = _validation_scores(plan.spec, plan.landmarks, fit, val, inv_var)
         best = int(np.argmin(scores))
         record["validation_scores"] = scores
-    warnings = [] if fit.run.converged else [
+    t = len(plan.targets)
+    capped = "cap" in fit.run.stopped_by[best * t:(best + 1) * t]
+    warnings = [] if not capped else [
         f"CG stopped at its cap of {max_iter} iterations with relative residual "
-        f"{fit.run.residuals.max():.2g} > {tol:g}: β is CG's early-stopped iterate, not the "
-        "solution of the Nyström system (a larger ridge or --solver direct converge)"]
+        f"{fit.run.residuals.max():.2g} > {tol:g} before either stopping rule: β is CG's "
+        "last iterate, not the solution of the Nyström system (a larger ridge or --solver "
+        "direct converge)"]
     return FinalFit(fit.betas[best], fit.intercept, float(ridges[best]), fit.count, held,
                     record, None, warnings)
 
 
 def solve_with_cg(block_plan: BlockPlan, blocks: list, cluster: str | None, progress,
-                  tuned, reason: str) -> FinalFit:
+                  tuned, reason: str, stop: str = "validation") -> FinalFit:
     """The Nyström solver's solve by CG: the sample's ridge and, when it was tuned, two
     scaled ones; the tuning account gains the final-ridge step."""
     problem, account = tuned.problem, tuned.account
@@ -123,7 +139,7 @@ def solve_with_cg(block_plan: BlockPlan, blocks: list, cluster: str | None, prog
         return ridge_candidates(tuned.ridge, grow, tuned_ridge)
 
     fit = fit_cg(block_plan, blocks, cluster, progress, ridges_for,
-                 problem.inv_var if tuned_ridge else None)
+                 problem.inv_var if tuned_ridge else None, stop=stop)
     fit.record["reason"] = reason
     if tuned_ridge and "validation_scores" in fit.record:
         val_rows = int(fit.held["validate"].x.shape[0])

@@ -14,6 +14,7 @@ from __future__ import annotations
 import numpy as np
 
 from service.kernels import KernelBlocks, KernelSpec
+from trainer.nystrom.cg import TILE_DTYPE, tiles_text
 from trainer.nystrom.cg import chunks as _chunks
 from trainer.nystrom.pass2 import in_threads
 
@@ -21,12 +22,14 @@ from trainer.nystrom.pass2 import in_threads
 class LocalRows:
     """``rows(fn, *args)`` = Σ_blocks Σ_chunks fn(kern, x_chunk, y_chunk, *args), in order.
 
-    ``block_rows``: the training rows each file block gave (all rows one block if omitted).
+    ``block_rows``: the training rows each file block gave (all rows one block if omitted);
+    ``dtype``: the kernel tiles' precision (:data:`trainer.nystrom.cg.TILE_DTYPE`).
     """
 
     def __init__(self, spec: KernelSpec, landmarks: np.ndarray, x_s: np.ndarray,
-                 y: np.ndarray, block_rows: list[int] | None = None):
-        self.kern = KernelBlocks(spec, landmarks)
+                 y: np.ndarray, block_rows: list[int] | None = None, dtype=TILE_DTYPE):
+        self.kern = KernelBlocks(spec, landmarks, dtype=dtype)
+        self.tiles = tiles_text(self.kern.dtype)
         self.x, self.y = np.ascontiguousarray(x_s), np.ascontiguousarray(y)
         self.count = int(x_s.shape[0])
         self.mean = self.y.mean(axis=0) if self.count else np.zeros(y.shape[1])

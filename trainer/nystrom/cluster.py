@@ -68,15 +68,17 @@ class ClusterRows:
     """
 
     def __init__(self, address: str, plan, blocks: list):
+        from trainer.nystrom.cg import TILE_DTYPE, tiles_text
         from trainer.nystrom.parts import block_sums
 
         self.client = _connect(address)
+        self.tiles = tiles_text(TILE_DTYPE)
         try:
             from service.kernels import KernelBlocks
 
             shared = self.client.scatter(plan, broadcast=True)
-            self.kern = self.client.scatter(KernelBlocks(plan.spec, plan.landmarks),
-                                            broadcast=True)
+            kern = KernelBlocks(plan.spec, plan.landmarks, dtype=TILE_DTYPE)
+            self.kern = self.client.scatter(kern, broadcast=True)
             self.blocks = [self.client.submit(block_sums, shared, block, first, pure=False)
                            for block, first in blocks]
             self.held_rows, counts, sums = [], 0, 0.0

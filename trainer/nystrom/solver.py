@@ -160,6 +160,15 @@ def _own_ridges(plan: Plan, tuned: NystromTuned, held: dict[str, HeldRows]) -> b
             and tuned.problem is not None and held["validate"].x.shape[0] >= 2)
 
 
+def _stopped(record: dict) -> str:
+    """', stopped by the validation rule after 60 iterations' for a CG solve ('' else)."""
+    rules = sorted(set(record.get("stopped_by") or []))
+    if not rules:
+        return ""
+    return (f", stopped by the {' and '.join(rules)} rule{'s' if len(rules) > 1 else ''} "
+            f"after {record['iterations']} iterations")
+
+
 #: The manifest's ``training.solver`` for a CG fit.
 CG_TEXT = ("Nyström normal equations (K_nmᵀK_nm + ridge·K_mm)β = K_nmᵀ(y − ȳ), preconditioned "
            "conjugate gradient (FALKON's preconditioner, Rudi, Carratino & Rosasco 2017), K_nm "
@@ -224,7 +233,7 @@ class NystromSolver:
         self.per_target = None  # each target's (kernel, ridge) when the ridges are their own
         if solver == "cg":
             fit = solve_with_cg(block_plan, rows.scan.blocks, plan.method.cluster,
-                                _progress(plan.output.quiet), tuned, why)
+                                _progress(plan.output.quiet), tuned, why, plan.method.cg_stop)
             self.solve_record, self.warnings = fit.record, fit.warnings
             return (fit.beta, fit.intercept, fit.ridge, fit.account, None, fit.count,
                     fit.held)
@@ -285,6 +294,6 @@ class NystromSolver:
             tuning=account, per_target=self.per_target,
             described=f"nystrom with {landmark_info['count']} {landmark_info['scheme']} "
                       f"landmarks, {self.solve_record['solver']} solve "
-                      f"({self.solve_record['reason']})",
+                      f"({self.solve_record['reason']}){_stopped(self.solve_record)}",
             warnings=self.warnings + ([ranks["warning"]] if ranks and ranks["warning"]
                                       else []))

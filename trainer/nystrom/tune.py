@@ -18,6 +18,7 @@ import numpy as np
 from service.kernels import KERNEL_PARAMS, KernelSpec
 from trainer.errors import UserError
 from trainer.nystrom import numerics
+from trainer.nystrom.rank import rank_guard
 
 if TYPE_CHECKING:
     from trainer.exact.candidates import Curve
@@ -169,6 +170,11 @@ def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
     if not math.isfinite(best.best_score):
         raise UserError("tuning found no usable parameters on the sample; give --gamma and "
                         "--ridge explicitly")
+    guard = None
+    if given.gamma is None:
+        scored = fine if two_stage else coarse
+        best, guard = rank_guard(best, curves, problem.landmarks, seed,
+                                 lambda s: runner(scored, [s])[0], FINE_STEP)
     ridge = float(best.ridges[best.best])
     seconds = time.perf_counter() - t0
     evaluated = coarse.evaluated + (fine.evaluated if two_stage else 0)
@@ -181,7 +187,8 @@ def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
                     f"a uniform subset of {FINE_MAX_LANDMARKS} of the {m}"))
     rmse = ", ".join(f"{v:.4g}" for v in best.rmse[best.best])
     summary = (f"{best.spec.describe()}, ridge={ridge:.4g} chosen by {what} "
-               f"({evaluated} decompositions; validation RMSE {rmse}; {seconds:.1f} s)")
+               f"({evaluated} decompositions; validation RMSE {rmse}; {seconds:.1f} s)"
+               + (f"; rank guard: {guard['summary']}" if guard else ""))
     log(f"tuning: {summary}")
     info = {
         "method": what + "; one eigendecomposition per kernel setting serves every ridge",
@@ -198,6 +205,7 @@ def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
         "decompositions": evaluated,
         "seconds": round(seconds, 3),
         "summary": summary,
+        "rank_guard": guard,
         "fallback": False,
     }
     return best.spec, ridge, info
