@@ -42,8 +42,8 @@ def _id_text(cell) -> str | None:
         return None
     if isinstance(cell, float) and cell.is_integer():
         return str(int(cell))
-    text = str(cell).strip()
-    return text or None
+    text = str(cell)  # as written: the pairs' ids are compared as the requests sent them
+    return text if text.strip() else None
 
 
 def _values(obj, n: int, where: str, field: str) -> list[float]:
