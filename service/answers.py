@@ -226,7 +226,7 @@ def rows_to_array(req: RowBatch, model: Model) -> np.ndarray:
 def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: float):
     """Compute values, envelope and intervals; returns (response dict, compute seconds)."""
     x = rows_to_array(req, model)
-    score = model.score_rows if model.encoding.any else model.score
+    answer = model.answer_rows if model.encoding.any else model.answer
     half = None
     if req.coverage is not None:
         try:
@@ -235,7 +235,7 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
             raise ApiError(422, exc.code, str(exc)) from None
     t0 = time.perf_counter()
     try:
-        y, env = score(x)
+        y, env, lower, upper = answer(x, half)
     except ValueKindError as exc:  # a text feature's value not a string, or the reverse
         raise ApiError(422, "invalid_value", str(exc),
                        {"row": exc.row, "feature": exc.feature}) from None
@@ -251,10 +251,12 @@ def predict_response(model: Model, req: RowBatch, t_start: float, t_parsed: floa
     for i in range(y.shape[0]):
         value = y[i].tolist() if multi else float(y[i, 0])
         item: dict = {"value": value} if ids is None else {"id": ids[i], "value": value}
-        if half is not None:
-            lo, hi = y[i] - half, y[i] + half
-            item["interval"] = (np.column_stack([lo, hi]).tolist() if multi
-                                else [float(lo[0]), float(hi[0])])
+        if lower is not None:
+            item["interval"] = (np.column_stack([lower[i], upper[i]]).tolist() if multi
+                                else [float(lower[i, 0]), float(upper[i, 0])])
+            # the calibration residuals come from rows inside the envelope: outside it
+            # nothing says the coverage holds
+            item["interval_calibrated"] = env[i]["inside"]
         item["envelope"] = env[i]
         results.append(item)
     resp = {"model": model.name, "version": model.version, "targets": model.targets,

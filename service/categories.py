@@ -107,3 +107,4 @@ def flag_new(envelopes: list[dict], unseen: list[dict[str, str]]) -> None:
         if new:
             env["inside"] = False
             env["new_category"] = new
+            env["flagged_by"].append("category")

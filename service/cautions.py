@@ -18,8 +18,9 @@ OUTSIDE_ENVELOPE = (
 #: The general caution: reports, pages, ``kridge predict``, the demo and the API description.
 BEFORE_ACTING = (
     "Predictions are estimates from past data. Rows outside the training envelope "
-    "(out-of-range or novel inputs) are extrapolations and may be far off; intervals mean "
-    "little there. Before acting on a prediction — changing a recipe, releasing or holding a "
+    "(out-of-range, novel or unusually shaped inputs, or a prediction outside its target's "
+    "training range) are extrapolations and may be far off; their intervals are not "
+    "calibrated there. Before acting on a prediction — changing a recipe, releasing or holding a "
     "batch — follow your site's procedures and have a qualified person review the result "
     "against measurements."
 )

@@ -12,11 +12,17 @@ is farther from the data than 99 % of the training rows are from theirs.
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
 from service.kernels import KernelBlocks
 
+#: Names of the checks a row can be flagged by, in the order ``flagged_by`` lists them:
+#: a feature outside its training range, the novelty score, Hotelling's T², the residual Q,
+#: a prediction outside its target's training range, a text feature's category never seen
+#: (added by :func:`service.categories.flag_new`).
+CHECKS = ("range", "novelty", "t2", "q", "target_range", "category")
 #: Neighbours counted (common practice: small k, here 5).
 NOVELTY_K = 5
 #: Calibration quantile of the training rows' own k-th-neighbour distances.
@@ -118,6 +124,32 @@ def check_ranges(x_raw: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarra
     return (x_raw < lo) | (x_raw > hi)
 
 
+@dataclass(frozen=True)
+class DomainChecks:
+    """The checks beyond ranges and novelty, for one batch (each None when the version
+    stores none): T² and Q as ratios to their limits (:mod:`service.pca_domain`), and the
+    model's unclipped predictions (m, t) against each target's training range."""
+
+    t2: np.ndarray | None = None
+    q: np.ndarray | None = None
+    y: np.ndarray | None = None
+    targets: list[str] | None = None
+    y_lo: np.ndarray | None = None
+    y_hi: np.ndarray | None = None
+
+
+def _target_flags(y: np.ndarray, targets: list[str], lo: np.ndarray, hi: np.ndarray
+                  ) -> list[dict]:
+    """Per row, the targets whose prediction lies outside their training range."""
+    outside = (y < lo) | (y > hi)
+    if not outside.any():  # the common case: one call, no per-row work
+        return [{} for _ in range(y.shape[0])]
+    rows = outside.any(axis=1).tolist()
+    return [{targets[j]: {"value": float(y[i, j]), "min": float(lo[j]), "max": float(hi[j])}
+             for j in np.flatnonzero(outside[i])} if rows[i] else {}
+            for i in range(y.shape[0])]
+
+
 def describe(
     x_raw: np.ndarray,
     outside: np.ndarray,
@@ -125,26 +157,44 @@ def describe(
     features: list[str],
     lo: np.ndarray,
     hi: np.ndarray,
+    more: DomainChecks | None = None,
 ) -> list[dict]:
-    """Per-row envelope dicts in the response's shape."""
+    """Per-row envelope dicts in the response's shape; ``flagged_by`` names every check
+    that flagged the row (:data:`CHECKS` order), and ``inside`` is true when none did."""
+    more = more or DomainChecks()
+    t2 = None if more.t2 is None else more.t2.tolist()
+    q = None if more.q is None else more.q.tolist()
+    targets = (None if more.y is None else
+               _target_flags(more.y, more.targets, more.y_lo, more.y_hi))
     result = []
     any_outside = outside.any(axis=1).tolist()
     for i, score in enumerate(novelty.tolist()):
         cols = np.flatnonzero(outside[i]) if any_outside[i] else ()
         novel = score > 1.0
-        result.append(
-            {
-                "inside": not (any_outside[i] or novel),
-                "out_of_range": {
-                    features[j]: {
-                        "value": float(x_raw[i, j]),
-                        "min": float(lo[j]),
-                        "max": float(hi[j]),
-                    }
-                    for j in cols
-                },
-                "novelty": round(score, 4),
-                "novel": bool(novel),
-            }
-        )
+        flagged = [name for name, hit in (("range", any_outside[i]), ("novelty", novel),
+                                          ("t2", t2 is not None and t2[i] > 1.0),
+                                          ("q", q is not None and q[i] > 1.0),
+                                          ("target_range", bool(targets and targets[i])))
+                   if hit]
+        env = {
+            "inside": not flagged,
+            "out_of_range": {
+                features[j]: {
+                    "value": float(x_raw[i, j]),
+                    "min": float(lo[j]),
+                    "max": float(hi[j]),
+                }
+                for j in cols
+            },
+            "novelty": round(score, 4),
+            "novel": bool(novel),
+        }
+        if t2 is not None:
+            env["t2"] = round(t2[i], 4)
+        if q is not None:
+            env["q"] = round(q[i], 4)
+        if targets is not None:
+            env["target_out_of_range"] = targets[i]
+        env["flagged_by"] = flagged
+        result.append(env)
     return result

@@ -94,3 +94,17 @@ def bounded_half_width(sorted_abs: np.ndarray | None, coverage: float, who: str
                                   f"coverage {coverage!r} is more than {who} can give: "
                                   + coverage_limit(c))
     return half_width(sorted_abs, coverage)
+
+
+def measured_coverage(level: dict) -> list[float] | None:
+    """A stored coverage check's measured coverage per target, or None when its half-width
+    was unbounded: too few calibration residuals for that coverage (the rule of
+    :func:`bounded_half_width`), so nothing was measured. Versions trained before this
+    rule stored such a level as a coverage of 1.0 with an infinite half-width; it is
+    read as unmeasured too, never as 100 %."""
+    empirical, widths = level.get("empirical"), level.get("half_width")
+    if empirical is None or widths is None:
+        return None
+    if not all(isinstance(w, int | float) and math.isfinite(w) for w in widths):
+        return None
+    return [float(v) for v in empirical]

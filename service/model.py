@@ -9,10 +9,11 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
+from typing import NamedTuple
 
 import numpy as np
 
-from service import envelope, intervals
+from service import envelope, intervals, pca_domain, target_bounds
 from service.categories import Categories, flag_new
 from service.engine_groups import engine_for
 from service.intervals import check_coverage
@@ -34,6 +35,16 @@ def check_precision(precision: str) -> str:
     if precision not in PRECISIONS:
         raise ValueError(f"precision must be float64 or float32, not {precision!r}")
     return precision
+
+
+class Scored(NamedTuple):
+    """What :meth:`Model.answer` gives for a batch: (m, t) values, the envelope per row, and
+    the (m, t) interval ends when half-widths were given (None otherwise)."""
+
+    values: np.ndarray
+    envelope: list[dict]
+    lower: np.ndarray | None
+    upper: np.ndarray | None
 
 
 class Model:
@@ -88,6 +99,14 @@ class Model:
                                                                          int(nov["k"])),
                                  shift=self.mean, scale=self.scale, offset=self.intercept)
         self.residuals = arrays.get("abs_residuals")  # sorted, (c, t); None: no intervals
+        # checks and bounds that older versions do not store: None, and simply not made
+        self.pca = pca_domain.from_bundle(env.get("pca"), arrays, self.mean, self.scale)
+        ranges = env.get("target_ranges")
+        self.y_lo = self.y_hi = None
+        if ranges:
+            self.y_lo = np.array([ranges[t]["min"] for t in self.targets])
+            self.y_hi = np.array([ranges[t]["max"] for t in self.targets])
+        self.bounds = target_bounds.from_manifest(manifest, self.targets)
 
     # -- numbers -------------------------------------------------------------------------
     def standardize(self, x: np.ndarray) -> np.ndarray:
@@ -105,6 +124,8 @@ class Model:
         if self.encoding.any:
             x = self.encoding.encode(list(x))[0]
         y = self.engine.predict(self._check(x), raw=True)
+        if self.bounds is not None:
+            self.bounds.clip(y)
         return y[:, 0] if y.shape[1] == 1 else y
 
     def predict_standardized(self, xs: np.ndarray) -> np.ndarray:
@@ -112,21 +133,37 @@ class Model:
         return self.engine.predict(xs) + self.intercept
 
     def score_rows(self, rows) -> tuple[np.ndarray, list[dict]]:
-        """:meth:`score` of raw rows in ``features`` order, text features as strings; a
-        category never seen in training puts its row outside the envelope (ValueError for a
-        value of the wrong kind, naming row and feature)."""
-        x, unseen = self.encoding.encode(rows)
-        y, env = self.score(self._check(x))
-        flag_new(env, unseen)
-        return y, env
+        """:meth:`score` of raw rows in ``features`` order, text features as strings
+        (:meth:`answer_rows` without intervals)."""
+        scored = self.answer_rows(rows)
+        return scored.values, scored.envelope
 
     def score(self, x: np.ndarray) -> tuple[np.ndarray, list[dict]]:
         """Raw rows ``x`` (m, D) in :attr:`columns` order, already checked, → ((m, t)
-        predictions, envelope per row).
+        predictions, envelope per row) (:meth:`answer` without intervals)."""
+        scored = self.answer(x)
+        return scored.values, scored.envelope
+
+    def answer_rows(self, rows, half: np.ndarray | None = None) -> Scored:
+        """:meth:`answer` of raw rows in ``features`` order, text features as strings; a
+        category never seen in training puts its row outside the envelope (ValueError for a
+        value of the wrong kind, naming row and feature)."""
+        x, unseen = self.encoding.encode(rows)
+        scored = self.answer(self._check(x), half)
+        flag_new(scored.envelope, unseen)
+        return scored
+
+    def answer(self, x: np.ndarray, half: np.ndarray | None = None) -> Scored:
+        """Raw rows ``x`` (m, D) in :attr:`columns` order, already checked → predictions,
+        envelope per row and, with the interval half-widths ``half`` (t,), the interval ends.
 
         The one path from rows to answers (the service and ``kridge predict`` both use it).
         When the novelty reference rows are training rows (distance kernels), their
-        distances come out of the prediction's own product instead of a second one.
+        distances come out of the prediction's own product instead of a second one. The
+        target-range check reads the unclipped predictions. With target bounds
+        (:mod:`service.target_bounds`) the predictions and both interval ends are clipped
+        to them; the interval is the unclipped ŷ ± h clipped, so whatever it covered of
+        the possible values it still covers.
         """
         if self.engine.gives_neighbours:
             score = np.empty(x.shape[0])
@@ -136,18 +173,37 @@ class Model:
             y = self.engine.predict(x, raw=True)
             score = self.novelty(self.standardize(x))
         outside = envelope.check_ranges(x, self.lo, self.hi)
-        return y, envelope.describe(x, outside, score, self.columns, self.lo, self.hi)
+        env = envelope.describe(x, outside, score, self.columns, self.lo, self.hi,
+                                self.domain_checks(x, y))
+        lower = upper = None
+        if half is not None:
+            lower, upper = y - half, y + half
+        if self.bounds is not None:
+            for part in (y, lower, upper):
+                if part is not None:
+                    self.bounds.clip(part)
+        return Scored(y, env, lower, upper)
+
+    def domain_checks(self, x: np.ndarray, y: np.ndarray | None) -> envelope.DomainChecks:
+        """T² and Q ratios of raw rows ``x`` and, with the unclipped predictions ``y``, the
+        target-range check; each left out when the version stores none."""
+        t2, q = (None, None) if self.pca is None else self.pca.ratios(x)
+        if y is None or self.y_lo is None:
+            return envelope.DomainChecks(t2, q)
+        return envelope.DomainChecks(t2, q, y, self.targets, self.y_lo, self.y_hi)
 
     def novelty(self, xs: np.ndarray) -> np.ndarray:
         """Novelty score of standardized rows: k-th neighbour distance / τ (see envelope)."""
         return self.neighbours.distances(xs) / self.novelty_tau
 
     def envelope(self, x, xs: np.ndarray | None = None) -> list[dict]:
-        """Envelope report per row: inside, out_of_range, novelty, novel."""
+        """Envelope report per row from the inputs alone (no target-range check: that needs
+        the prediction, which :meth:`score` gives)."""
         x = np.asarray(x, dtype=np.float64)
         xs = self.standardize(x) if xs is None else xs
         outside = envelope.check_ranges(x, self.lo, self.hi)
-        return envelope.describe(x, outside, self.novelty(xs), self.columns, self.lo, self.hi)
+        return envelope.describe(x, outside, self.novelty(xs), self.columns, self.lo, self.hi,
+                                 self.domain_checks(x, None))
 
     def low_row(self) -> np.ndarray:
         """(1, D): every feature at its training minimum, one-hot columns at 0 (a probe)."""

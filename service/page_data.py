@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 
 from markupsafe import Markup
 
+from service.intervals import measured_coverage
 from service.metrics import RowCounts
 from service.store import Store, StoreError
 from service.target_kernels import kernel_text as targets_kernel_text
@@ -160,6 +161,8 @@ class VersionCard:
     scores: list[Score] = field(default_factory=list)
     intervals: str = "none stored"
     coverage: list[str] = field(default_factory=list)
+    shape: str = "none stored"  # the PCA check in words
+    bounds: str = "none"  # --target-range
     has_report: bool = False
     problem: str | None = None
 
@@ -182,7 +185,13 @@ def _intervals(manifest: dict) -> tuple[str, list[str]]:
     lines = []
     for level in info.get("holdout_coverage") or []:
         try:
-            measured = [f"{100 * float(v):.1f} %" for v in level["empirical"]]
+            got = measured_coverage(level)
+            if got is None:  # unbounded half-width: nothing measured, never "100 %"
+                lines.append(Markup("{} %: not available (too few calibration residuals "
+                                    "for this coverage)").format(
+                                        f"{100 * float(level['nominal']):g}"))
+                continue
+            measured = [f"{100 * v:.1f} %" for v in got]
             if len(measured) == len(targets) > 1:
                 measured = [Markup("{} {}").format(html_name(str(t)), m)
                             for t, m in zip(targets, measured, strict=True)]
@@ -192,6 +201,34 @@ def _intervals(manifest: dict) -> tuple[str, list[str]]:
         except (KeyError, TypeError, ValueError):
             continue
     return method, lines
+
+
+def shape_text(manifest: dict) -> str:
+    """The version's PCA check in a line: components, variance, limits' level."""
+    pca = (manifest.get("envelope") or {}).get("pca")
+    if not isinstance(pca, dict):
+        return "none stored"
+    try:
+        q = "and Q" if pca.get("q_limit") is not None else "(no Q: nothing left off them)"
+        return (f"T² {q} on {int(pca['components'])} components "
+                f"({100 * float(pca['explained_variance']):.1f} % of the variance), "
+                f"limits at {float(pca['level']):g}")
+    except (KeyError, TypeError, ValueError):
+        return "stored"
+
+
+def bounds_text(manifest: dict) -> str:
+    """The targets' bounds from --target-range: ``fat 0 to +∞``; HTML (names isolated)."""
+    section = manifest.get("target_bounds")
+    if not isinstance(section, dict) or not isinstance(section.get("bounds"), dict):
+        return "none"
+    parts = []
+    for target, b in section["bounds"].items():
+        lo, hi = (b or {}).get("low"), (b or {}).get("high")
+        parts.append(Markup("{} {} to {}").format(
+            html_name(str(target)), "−∞" if lo is None else number(lo, 6),
+            "+∞" if hi is None else number(hi, 6)))
+    return Markup("; ").join(parts)
 
 
 def feature_cells(features: list[str]) -> str:
@@ -217,6 +254,7 @@ def versions(store: Store, name: str, live: int | None) -> list[VersionCard]:
             card.data = data_fingerprint(man)
             card.scores = scores(man)
             card.intervals, card.coverage = _intervals(man)
+            card.shape, card.bounds = shape_text(man), bounds_text(man)
             card.has_report = store.report_path(name, v) is not None
         except StoreError as exc:
             card.problem = safe_message(store, exc)

@@ -90,6 +90,7 @@ class Outcome:
     verdict: list[str] = field(default_factory=list)  # HTML: names isolated (Markup)
     caution: str | None = None
     error: str | None = None
+    calibrated: bool = True  # the interval's coverage holds here (row inside the envelope)
 
 
 def try_row(model: Model, row: dict[str, float | str], coverage: float | None,
@@ -119,6 +120,7 @@ def try_row(model: Model, row: dict[str, float | str], coverage: float | None,
         out.values.append((target, number(values[j], 5), interval))
     if bounds is not None and coverage is not None:
         out.coverage = f"{100 * coverage:g} %"
+        out.calibrated = bool(result.get("interval_calibrated", True))
     env = result["envelope"]
     out.inside = env["inside"]
     out.outside = set(env["out_of_range"])
@@ -153,9 +155,38 @@ def verdict(envelope: dict, k: int) -> list[str]:
     else:
         lines.append(f"Not novel: novelty {number(score, 3)} (1 or less means the row is as "
                      f"close to the training rows as {pct} of them are to each other).")
+    lines += shape_lines(envelope) + target_lines(envelope)
     if envelope["inside"]:
-        lines.insert(0, "Inside the training envelope: every feature lies within its "
-                        "training range.")
+        lines.insert(0, "Inside the training envelope: no check flagged the row.")
+    return lines
+
+
+def shape_lines(envelope: dict) -> list[str]:
+    """T² and Q in words, when the version has the PCA check."""
+    lines = []
+    if "t2" in envelope:
+        t2 = envelope["t2"]
+        lines.append(f"Unusual combination: T² is {number(t2, 3)} times its limit; the row "
+                     "is far along the training data's main directions of variation."
+                     if t2 > 1 else f"T² is {number(t2, 3)} times its limit (1 or less: an "
+                     "ordinary combination along the training data's main directions).")
+    if "q" in envelope:
+        q = envelope["q"]
+        lines.append(f"Unfamiliar shape: Q is {number(q, 3)} times its limit; the row does "
+                     "not follow the pattern the training rows share across features."
+                     if q > 1 else f"Q is {number(q, 3)} times its limit (1 or less: the row "
+                     "follows the pattern the training rows share across features).")
+    return lines
+
+
+def target_lines(envelope: dict) -> list[str]:
+    """A prediction outside its target's training range, in words (name isolated)."""
+    lines = []
+    for target, flag in (envelope.get("target_out_of_range") or {}).items():
+        lines.append(Markup("Prediction outside the training range: {} = {} (before any "
+                            "clipping) against {} to {} in the training data.")
+                     .format(html_name(target), number(flag["value"], 6),
+                             number(flag["min"], 6), number(flag["max"], 6)))
     return lines
 
 

@@ -83,7 +83,7 @@ class RangeFlag(Answer):
 
 
 class Envelope(Answer):
-    inside: bool = Field(description="Inside every training range and not novel.")
+    inside: bool = Field(description="No check flagged the row (flagged_by is empty).")
     out_of_range: dict[str, RangeFlag] = Field(
         description="Features outside their training range, with the training min and max."
     )
@@ -95,16 +95,36 @@ class Envelope(Answer):
     new_category: dict[str, str] | None = Field(
         None, description="Text features whose category the training rows never had "
         "(feature: value); such a row is not inside.")
+    t2: float | None = Field(
+        None, description="Hotelling's T² of the row in the training rows' principal "
+        "components divided by its 0.99 control limit; above 1 flags an unusual combination "
+        "within the training data's main directions. Absent for versions without the check.")
+    q: float | None = Field(
+        None, description="Squared residual off the principal components (Q, SPE) divided by "
+        "its 0.99 control limit; above 1 flags a row whose shape the training rows never "
+        "had (e.g. a reversed or ramped profile). Absent for versions without the check.")
+    target_out_of_range: dict[str, RangeFlag] | None = Field(
+        None, description="Targets whose (unclipped) prediction lies outside the target's "
+        "training range, with that range. Absent for versions that store no target ranges.")
+    flagged_by: list[Literal["range", "novelty", "t2", "q", "target_range", "category"]] = Field(
+        description="Every check that flagged the row (category: a text feature's category "
+        "never seen in training); empty when inside.")
 
 
 class Result(Answer):
     id: str | None = Field(None, description="The row's entry of the request's ids, when "
                            "it sent them.")
     value: float | list[float] = Field(description="Prediction in raw units; a list per row "
-                                       "when the model has several targets.")
+                                       "when the model has several targets. Clipped to the "
+                                       "version's target bounds when it has them.")
     interval: list[float] | list[list[float]] | None = Field(
-        None, description="[lower, upper] (one pair per target) when coverage was asked."
+        None, description="[lower, upper] (one pair per target) when coverage was asked; "
+        "clipped to the version's target bounds when it has them."
     )
+    interval_calibrated: bool | None = Field(
+        None, description="With an interval: true when the row is inside the envelope; false "
+        "when a check flagged it, where the interval keeps its usual width but its coverage "
+        "was never measured.")
     envelope: Envelope
 
 
@@ -225,6 +245,15 @@ class ModelSummary(Answer):
     metrics: dict[str, Any] | None
     ranges: dict[str, Range] = Field(description="Each feature's training range.")
     novelty: dict[str, Any] = Field(description="How the novelty score is calibrated.")
+    shape_check: dict[str, Any] | None = Field(
+        None, description="The PCA check behind t2 and q: components kept and the rule, "
+        "their variances, both control limits and their formulas. Absent for versions "
+        "trained without it.")
+    target_ranges: dict[str, Range] | None = Field(
+        None, description="Each target's training range, behind target_out_of_range.")
+    target_bounds: dict[str, dict[str, float | None]] | None = Field(
+        None, description="Bounds from kridge train --target-range that predictions and "
+        "interval ends are clipped to, per target: low and high (null: no bound).")
     intervals: bool = Field(description="Whether the version can answer a coverage.")
 
 

@@ -118,7 +118,8 @@ def test_predict_columns_and_numbers_equal_load_model(trained, small_csv, tmp_pa
     assert code == 0, err
     header, rows = read_output(out)
     assert header == FEATURES + ["hardness_s_predicted", "gloss_gu_predicted",
-                                 "inside", "novelty", "out_of_range"]
+                                 "inside", "novelty", "out_of_range", "t2", "q",
+                                 "target_out_of_range", "flagged_by"]
     x = np.array([[float(c) for c in r[:5]] for r in rows])
     got = np.array([[float(c) for c in r[5:7]] for r in rows])
     expected = load_model(trained, "coat").predict(x)

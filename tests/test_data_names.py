@@ -145,8 +145,10 @@ def test_predict_csv_neutralises_formula_names_and_keeps_numbers(tmp_path, store
         header, *rows = list(csv.reader(fh))
     # OWASP, "CSV Injection": a cell starting with = + - @ is prefixed with a single quote
     assert header == ["'" + FORMULA, "'@SUM(1+1)", "'-offset", "a;=b", "'+target_predicted",
-                      "inside", "novelty", "out_of_range"]
-    assert rows[-1][-1] == "'" + FORMULA and rows[-1][-3] == "false"
+                      "inside", "novelty", "out_of_range", "t2", "q", "target_out_of_range",
+                      "flagged_by"]
+    assert rows[-1][7] == "'" + FORMULA and rows[-1][5] == "false"
+    assert rows[-1][10] in ("", "'+target")  # a target's name is neutralised too
     # numbers stay plain numbers (negative ones too): the exact inputs, unquoted
     inputs = np.array([[float(c) for c in line.split(",")[:4]] for line in lines[1:6]])
     assert np.array_equal(np.array([[float(c) for c in r[:4]] for r in rows[:5]]), inputs)

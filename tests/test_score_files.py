@@ -53,7 +53,8 @@ def test_kept_columns_join_back_to_the_samples(trained, samples, tmp_path, capsy
     scored = pd.read_csv(out, dtype={"taken": str})
     # by default: the kept columns and the results, no inputs echoed
     assert list(scored.columns) == ["sample", "taken", "hardness_s_predicted",
-                                    "gloss_gu_predicted", "inside", "novelty", "out_of_range"]
+                                    "gloss_gu_predicted", "inside", "novelty", "out_of_range",
+                                    "t2", "q", "target_out_of_range", "flagged_by"]
     joined = samples.merge(scored, on="sample", validate="one_to_one")
     assert len(joined) == len(samples)
     assert (joined["taken_x"] == joined["taken_y"]).all()  # copied as written, not parsed
@@ -70,7 +71,8 @@ def test_semicolon_decimal_comma_file_comes_back_in_its_dialect(trained, samples
                              "--with-inputs", "--coverage", "0.8")
     assert code == 0, err
     header = out.splitlines()[0]
-    assert header.count(";") == 5 + 2 + 2 + 4 + 3 - 1 and "," not in header
+    # kept, inputs, predictions, bounds, envelope (7) and interval_calibrated
+    assert header.count(";") == 2 + 5 + 2 + 4 + 7 + 1 - 1 and "," not in header
     back = pd.read_csv(__import__("io").StringIO(out), sep=";", decimal=",")
     assert list(back.columns[:7]) == ["sample", "note", *FEATURES]
     # inputs written with decimal commas read back to the same numbers (pandas 2/3 reader)

@@ -67,8 +67,9 @@ def test_envelope_flags(served, demo_csv):
     body = predict(served, {"rows": [central.tolist(), too_hot, EMPTY_REGION_ROW]}).json()
     inside, hot, hole = (r["envelope"] for r in body["results"])
     assert inside == {"inside": True, "out_of_range": {}, "novelty": inside["novelty"],
-                      "novel": False}
-    assert hot["inside"] is False
+                      "novel": False, "t2": inside["t2"], "q": inside["q"],
+                      "target_out_of_range": {}, "flagged_by": []}
+    assert hot["inside"] is False and hot["flagged_by"][0] == "range"
     assert hot["out_of_range"] == {"oven_temp_c": {
         "value": 260.0, "min": float(data[:, 0].min()), "max": float(data[:, 0].max())}}
     # inside every per-feature range, but in the demo's never-run region

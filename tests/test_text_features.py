@@ -82,6 +82,7 @@ def test_one_hot_model_equals_the_scikit_learn_pipeline(trained, shifts):
                                reference(fresh), rtol=1e-9, atol=1e-9)
     _, env = model.score_rows(fresh[FEATURES].to_numpy(dtype=object).tolist())
     assert all(e["inside"] is False and e["new_category"] == {"shift": "weekend"} for e in env)
+    assert all("category" in e["flagged_by"] for e in env)
 
 
 def test_inspect_names_the_categories(trained, capsys):
@@ -106,6 +107,7 @@ def test_served_with_the_category_as_a_string(trained, shifts):
             is None
         assert second["envelope"]["inside"] is False
         assert second["envelope"]["new_category"] == {"shift": "weekend"}
+        assert second["envelope"]["flagged_by"][-1] == "category"
         assert "caution" in r.json()
         # a number where the category belongs, and text where a number belongs: 422
         for bad, feature in ((dict(row, shift=2), "shift"),

@@ -43,7 +43,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.intervals import half_width
+from service.intervals import CoverageUnavailable, bounded_half_width, half_width
 from trainer.solvers import Evidence, Predicted
 
 #: Nominal coverages reported on the holdout.
@@ -70,10 +70,21 @@ def conformal_half_width(abs_residuals: np.ndarray, coverage: float) -> np.ndarr
 
 def interval_coverage(abs_residuals: np.ndarray, actual: np.ndarray, predicted: np.ndarray,
                       levels=COVERAGE_LEVELS) -> list[dict]:
-    """Empirical coverage of ``predicted ± half-width`` on (m, t) points, per nominal level."""
+    """Empirical coverage of ``predicted ± half-width`` on (m, t) points, per nominal level.
+
+    A level the c residuals cannot give (the served model refuses it,
+    :func:`service.intervals.bounded_half_width`) is not measured: an unbounded interval
+    covers every row, and "100 %" would say nothing. Its entry has ``empirical`` and
+    ``half_width`` None and says why in ``unavailable``."""
     out = []
+    sorted_abs = np.sort(np.asarray(abs_residuals, dtype=np.float64), axis=0)
     for level in levels:
-        hw = conformal_half_width(abs_residuals, level)
+        try:
+            hw = bounded_half_width(sorted_abs, level, "the calibration")
+        except CoverageUnavailable as exc:
+            out.append({"nominal": float(level), "empirical": None, "half_width": None,
+                        "rows": int(np.shape(actual)[0]), "unavailable": str(exc)})
+            continue
         inside = np.abs(np.asarray(actual) - np.asarray(predicted)) <= hw[None, :]
         out.append({
             "nominal": float(level),

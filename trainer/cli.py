@@ -48,16 +48,16 @@ def cmd_train(args) -> int:
         drop_incomplete=args.drop_incomplete,
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
-        shared_kernel=args.shared_kernel,
-        cg_stop=args.cg_stop)
+        target_range=args.target_range, shared_kernel=args.shared_kernel,
+        cg_stop=args.cg_stop, group=args.group)
 
     def log(*a, **k):
         if not args.quiet:
             print(*map(visible, map(str, a)), file=sys.stderr, **k)
 
     summary = train(opts, log=log)
-    for warning in summary["warnings"]:  # even with --quiet: they concern the model itself
-        print(f"warning: {visible(warning)}", file=sys.stderr)
+    for w in summary["warnings"]:  # even with --quiet: they concern the model itself
+        print(f"warning: {visible(w['message'])} [{w['code']}]", file=sys.stderr)
     if args.json:
         print(json.dumps(summary, indent=2))
         return 0
@@ -245,11 +245,16 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--seed", type=int, default=0)
     t.add_argument("--release", action="store_true", help="make the new version live")
     t.add_argument("--no-report", action="store_true", help="skip report.html")
+    t.add_argument("--target-range", metavar="LO:HI", help="per --target, comma-separated "
+                   "(0: low only): served predictions and intervals are clipped to it")
     t.add_argument("--precision", choices=PRECISIONS, default="float64",
                    help="serving precision; float32 records its measured error (default float64)")
     t.add_argument("--time", metavar="COL",
                    help="timestamp column (ISO 8601 or a number): hold out the most recent "
                         "rows and tune by blocked cross-validation in time order")
+    t.add_argument("--group", metavar="COL",
+                   help="group column (a mix, batch or sample id; not a feature): every row "
+                        "of a group stays on one side of the holdout and of each tuning fold")
     t.add_argument("--time-format", metavar="FMT",
                    help="how the --time column is written, in strftime codes (e.g. "
                         "'%%d.%%m.%%Y %%H:%%M'; default: ISO 8601, a number, or day-first/"

@@ -25,6 +25,9 @@ from trainer.errors import UserError
 DEMO_DIR = Path(__file__).resolve().parents[1] / "demo_data"
 MODEL = "coating"
 TARGETS = ["hardness_s", "gloss_gu"]
+#: Pendulum seconds and gloss units are never negative; neither has a physical upper bound
+#: the demo could state, so only the lower one is given.
+TARGET_RANGE = "0:,0:"
 
 
 def _generator():
@@ -77,9 +80,11 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         csv_path = Path(tmp) / "coating_line.csv"
         gen.write_csv(csv_path, gen.generate())
         print(f"1/3 demo data: {csv_path.name}, 2000 rows of a coating line's process readings")
-        print("2/3 training (kernel parameters tuned by leave-one-out) ...", flush=True)
+        print("2/3 training (kernel parameters tuned by leave-one-out; hardness and gloss "
+              "cannot be negative: --target-range 0:,0:) ...", flush=True)
         summary = train(TrainOptions(data=str(csv_path), targets=TARGETS, name=MODEL,
-                                     release=True, store=store, quiet=True))
+                                     release=True, store=store, quiet=True,
+                                     target_range=TARGET_RANGE))
     print(f"    {MODEL} v{summary['version']} is live: {summary['kernel']}, "
           f"ridge {summary['ridge_text']}, {summary['seconds']} s")
     for t, m in summary["metrics"].get("holdout", {}).items():
@@ -92,11 +97,14 @@ def run_demo(store: str | None = None, bind: str | None = None, smoke: bool = Fa
         except RuntimeError as exc:
             raise UserError(str(exc)) from None
         inside = {"rows": [gen.TYPICAL_ROW], "coverage": 0.9}
-        outside = {"rows": [gen.EMPTY_REGION_ROW, dict(gen.TYPICAL_ROW, oven_temp_c=245.0)]}
+        outside = {"rows": [gen.EMPTY_REGION_ROW, dict(gen.TYPICAL_ROW, oven_temp_c=245.0)],
+                   "coverage": 0.9}
         print(f"3/3 serving on {base} (store {store})\n")
         print(f"# in a browser: {base}/  and  {base}/page/{MODEL}\n")
         for label, body in (("a typical operating point", inside),
-                            ("the never-run region and a too-hot oven", outside)):
+                            ("the never-run region and a too-hot oven: each envelope's "
+                             "flagged_by names the checks that flagged it, and "
+                             "interval_calibrated is false", outside)):
             print(f"# {label}:")
             print(f"curl -s -X POST {base}/models/{MODEL}/predict "
                   f"-H 'Content-Type: application/json' -d '{json.dumps(body)}'\n")

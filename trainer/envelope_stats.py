@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from service.envelope import NOVELTY_K, NOVELTY_QUANTILE, NeighbourIndex
+from trainer.pca_limits import fit_pca_domain
 from trainer.solvers import EnvelopeRows
 
 #: Largest reference set kept for the novelty score. It bounds the score's per-request cost
@@ -58,13 +59,32 @@ def envelope_stats(
     return {"ranges": ranges, "novelty": novelty}, np.ascontiguousarray(reference)
 
 
-def training_envelope(rows: EnvelopeRows, features, seed: int,
-                      span: dict | None) -> tuple[dict, np.ndarray]:
+def target_ranges(y: np.ndarray, targets: list[str]) -> dict:
+    """Each target's training range: a prediction outside it is flagged."""
+    y = np.asarray(y, dtype=np.float64).reshape(y.shape[0], -1)
+    return {t: {"min": float(y[:, j].min()), "max": float(y[:, j].max())}
+            for j, t in enumerate(targets)}
+
+
+def training_envelope(rows: EnvelopeRows, features, seed: int, span: dict | None,
+                      targets=()) -> tuple[dict, dict[str, np.ndarray]]:
     """The job's envelope stage: :func:`envelope_stats` of the solver's training rows, the
-    ranges of every row when those are a sample, and the time span."""
+    ranges of every row when those are a sample, the time span, the targets' ranges and
+    the PCA check (:mod:`trainer.pca_limits`). Returns (manifest part, bundle arrays:
+    ``novelty_reference`` and, when fitted, the PCA arrays)."""
     env, reference = envelope_stats(rows.x_raw, rows.x_s, list(features), seed)
-    if rows.ranges is not None:
+    sample = rows.ranges is not None
+    if sample:
         env["ranges"], env["ranges_from"] = rows.ranges, rows.ranges_from
     if span:
         env["time_span"] = span
-    return env, reference
+    n = rows.x_s.shape[0]
+    where = (f"the {n} training rows of the uniform sample" if sample
+             else f"all {n} training rows")
+    if rows.y is not None and rows.y.shape[0] and targets:
+        env["target_ranges"] = target_ranges(rows.y, list(targets))
+        env["target_ranges_from"] = where
+    pca, arrays = fit_pca_domain(rows.x_s, where)
+    if pca is not None:
+        env["pca"] = pca
+    return env, {"novelty_reference": reference, **arrays}

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import time
 
-from trainer import calibration, envelope_stats, manifest, metrics, publish
+from trainer import baselines, calibration, cautions, envelope_stats, manifest, metrics, publish
 from trainer.plan import TrainOptions, resolve
 from trainer.precision import precision_check
 from trainer.solvers import Solver
@@ -41,18 +41,20 @@ def train(opts: TrainOptions, log=print) -> dict:
     plan, store = resolve(opts)
     solver = solver_for(plan.method.name)
     rows = solver.read(plan, log)
+    # only rows held in memory carry groups (the plan refuses --group for Nyström)
     split = split_rows(rows.count, rows.times, plan.splits.holdout, plan.splits.seed,
-                       solver.rows_in_memory)
+                       solver.rows_in_memory, getattr(rows, "groups", None))
     tuned = solver.tune(plan, rows, split, log)
-    want_loo = solver.offers_loo and calibration.uses_jackknife(rows.count, split.by_time)
+    want_loo = solver.offers_loo and calibration.uses_jackknife(
+        rows.count, split.by_time or getattr(split, "groups", None) is not None)
     fitted = solver.fit(plan, rows, split, tuned, want_loo, log)
     scores = metrics.held_out_metrics(plan.columns.targets, fitted.evidence)
     calib, intervals = calibration.calibrate(fitted.evidence, split.by_time)
     span = manifest.time_span(plan.columns.time, rows.times, rows.clock,
                               plan.source.time_rule)
-    envelope, reference = envelope_stats.training_envelope(
+    envelope, envelope_arrays = envelope_stats.training_envelope(
         fitted.envelope, rows.encoding.columns if rows.encoding else plan.columns.features,
-        plan.splits.seed, span)
+        plan.splits.seed, span, plan.columns.targets)
     check_x, check_y = fitted.check_rows
     specs = [s.spec for s in fitted.settings(list(plan.columns.targets))]
     check = precision_check(plan.output.precision, specs, fitted.x_train, fitted.dual,
@@ -60,8 +62,14 @@ def train(opts: TrainOptions, log=print) -> dict:
     bundle = manifest.build_manifest(plan, rows, split, fitted, metrics=scores,
                                      envelope=envelope, intervals=intervals, check=check,
                                      span=span)
-    arrays = publish.bundle_arrays(specs, fitted.x_train, fitted.dual, reference, calib)
+    train_mean = (fitted.evidence.train_mean if fitted.evidence.train_mean is not None
+                  else fitted.intercept)
+    bundle["baselines"] = baselines.holdout_baselines(list(plan.columns.targets),
+                                                      fitted.evidence, train_mean, split.by_time)
+    bundle["warnings"] = cautions.collect(bundle, fitted.warnings)
+    arrays = publish.bundle_arrays(specs, fitted.x_train, fitted.dual, envelope_arrays,
+                                   calib)
     report_args = (fitted.tuning, publish.report_points(fitted.evidence.holdout,
                                                         plan.splits.seed), calib)
     published = publish.publish(store, plan.output, bundle, arrays, report_args)
-    return publish.summary(plan, store, published, fitted, scores, rows.counts, check, t0)
+    return publish.summary(plan, store, published, fitted, bundle, rows.counts, t0)

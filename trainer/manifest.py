@@ -78,12 +78,24 @@ def build_manifest(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,
         "metrics": metrics,
         "envelope": envelope,
         "intervals": intervals,
+        "target_bounds": target_bounds_section(plan.output.bounds),
         "precision": plan.output.precision,
         "precision_check": check,
         "libraries": library_versions(),
         # text features' categories in one-hot column order (service.categories)
         **({"categories": rows.encoding.categories} if rows.encoding else {}),
     }
+
+
+def target_bounds_section(bounds: dict | None) -> dict | None:
+    """The manifest's ``target_bounds``: what ``--target-range`` gave and what the service
+    does with it (:mod:`service.target_bounds`); None without it."""
+    if bounds is None:
+        return None
+    return {"bounds": bounds,
+            "rule": "the service clips each prediction and both interval ends to [low, high] "
+                    "per target (a missing bound does not clip); training metrics and "
+                    "calibration are of the unclipped model"}
 
 
 def training_section(plan: Plan, rows: Rows, split: HoldoutSplit | PartSplit,

@@ -12,7 +12,9 @@ from dataclasses import dataclass
 
 from service.kernels import KERNEL_NAMES, KERNEL_PARAMS, KernelSpec, default_spec
 from service.store import Store
+from service.target_bounds import parse_target_range
 from trainer.errors import UserError
+from trainer.memory import exact_shortfall
 from trainer.read import columns
 from trainer.read.source import Source
 
@@ -53,8 +55,10 @@ class TrainOptions:
     landmark_scheme: str | None = None
     cluster: str | None = None
     solver: str = "auto"  # Nyström: direct, cg or auto (trainer.nystrom.cg_fit.choose_solver)
+    target_range: str | None = None  # "LO:HI[,LO:HI…]", one per target (service.target_bounds)
     shared_kernel: bool = False  # several targets: one kernel and ridge for all, not each its own
     cg_stop: str = "validation"  # CG: validation (and residual) rule, or residual alone
+    group: str | None = None  # rows sharing this column's value stay on one side of a split
 
 
 @dataclass(frozen=True)
@@ -66,6 +70,7 @@ class Columns:
     time: str | None
     drop_incomplete: bool
     text: tuple[str, ...] = ()  # features whose cells are text: encoded one-hot (exact only)
+    group: str | None = None  # --group: holdout and tuning folds keep each group whole
 
 
 @dataclass(frozen=True)
@@ -128,6 +133,7 @@ class Output:
     report: bool
     precision: str
     quiet: bool
+    bounds: dict | None = None  # per target {"low", "high"} from --target-range
 
 
 @dataclass(frozen=True)
@@ -167,8 +173,16 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError("--solver cg solves the Nyström system; use --method nystrom")
     if opts.method not in METHODS:
         raise UserError(f"--method must be exact, nystrom or auto, not {opts.method!r}")
+    if opts.group and opts.time:
+        raise UserError("--group and --time together: the time holdout already keeps the "
+                        "latest stretch apart; give one of them")
+    if opts.group and (opts.method == "nystrom" or opts.cluster or opts.landmarks
+                       or opts.solver == "cg"):
+        raise UserError("--group needs every row in memory: it works with the exact method "
+                        "only (--method exact or auto)")
     if opts.time_format is not None and opts.time is None:
         raise UserError("--time-format says how the --time column is written; give --time COL")
+    target_bounds(opts)  # refused before any reading
     return store
 
 
@@ -176,9 +190,14 @@ def choose_method(opts: TrainOptions, src: Source) -> tuple[str, str]:
     """(method, reason): exact KRR up to :data:`AUTO_EXACT_MAX_ROWS` usable rows, else Nyström.
 
     ``auto`` counts the rows that have every target (one streamed pass over the target
-    columns only), since sparse lab values can make a large export a small training set.
+    columns only), since sparse lab values can make a large export a small training set,
+    and fits exactly only where the kernel matrix fits in memory (:mod:`trainer.memory`);
+    ``exact`` is refused, right after that count, where it does not.
     """
-    if opts.method == "exact":
+    if opts.method == "exact":  # refused at once when the kernel matrix cannot fit
+        short = exact_shortfall(columns.count_target_rows(src, opts.targets))
+        if short:
+            raise UserError(f"--method exact: {short}; use --method nystrom")
         return "exact", "asked for with --method exact"
     if opts.method == "nystrom" or opts.cluster or opts.landmarks or opts.solver == "cg":
         return "nystrom", "asked for with " + ("--method nystrom" if opts.method == "nystrom"
@@ -186,6 +205,15 @@ def choose_method(opts: TrainOptions, src: Source) -> tuple[str, str]:
                                                else "--landmarks" if opts.landmarks
                                                else "--solver cg")
     rows = columns.count_target_rows(src, opts.targets)
+    short = exact_shortfall(rows) if rows <= AUTO_EXACT_MAX_ROWS else None
+    if short:
+        if opts.group:
+            raise UserError(f"--group needs the exact method, but {short}")
+        return "nystrom", f"{short} (--method auto)"
+    if opts.group and rows > AUTO_EXACT_MAX_ROWS:
+        raise UserError(f"--group needs the exact method, and {rows} rows with a target > "
+                        f"{AUTO_EXACT_MAX_ROWS} would go to Nyström; give --method exact "
+                        "if they fit in memory")
     if rows <= AUTO_EXACT_MAX_ROWS:
         return "exact", (f"{rows} rows with a target ≤ {AUTO_EXACT_MAX_ROWS}: exact KRR "
                          "(--method auto)")
@@ -198,7 +226,7 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
     or, for the data's cells, by the reading stage."""
     store = check_options(opts)
     src = Source(opts.data, opts.sep, opts.decimal)
-    features = columns.feature_names(src, opts.targets, opts.features, opts.time)
+    features = columns.feature_names(src, opts.targets, opts.features, opts.time, opts.group)
     if opts.time:
         src.settle_time(opts.time, opts.time_format)
     text = tuple(columns.text_features(src, features)) if opts.features else ()
@@ -210,11 +238,22 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
     return Plan(
         source=src,
         columns=Columns(tuple(features), tuple(opts.targets), opts.time,
-                        opts.drop_incomplete, text),
+                        opts.drop_incomplete, text, opts.group),
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
                       opts.solver, opts.cg_stop),
         splits=Splits(opts.holdout, opts.seed),
         parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge,
                               opts.shared_kernel),
-        output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet),
+        output=Output(opts.name, opts.release, opts.report, opts.precision, opts.quiet,
+                      target_bounds(opts)),
     ), store
+
+
+def target_bounds(opts: TrainOptions) -> dict | None:
+    """The bounds ``--target-range`` gives, per target; None without it."""
+    if opts.target_range is None:
+        return None
+    try:
+        return parse_target_range(opts.target_range, list(opts.targets))
+    except ValueError as exc:
+        raise UserError(str(exc)) from None

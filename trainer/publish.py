@@ -11,7 +11,6 @@ import numpy as np
 from service.model import verifier
 from service.store import Store
 from service.target_kernels import kernel_text, ridge_text, shared_entries
-from trainer import cautions
 from trainer.plan import Output, Plan
 from trainer.solvers import Fitted, Predicted
 
@@ -19,16 +18,18 @@ from trainer.solvers import Fitted, Predicted
 PLOT_ROWS = 5000
 
 
-def bundle_arrays(specs, x_train: np.ndarray, dual: np.ndarray, reference: np.ndarray,
+def bundle_arrays(specs, x_train: np.ndarray, dual: np.ndarray,
+                  envelope: dict[str, np.ndarray],
                   calib: np.ndarray | None) -> dict[str, np.ndarray]:
     """The arrays a bundle stores, for either solver (``x_train``: training or landmark rows,
-    standardized; ``calib``: absolute calibration residuals, stored sorted)."""
+    standardized; ``envelope``: the envelope's arrays, the novelty reference and the PCA
+    model when fitted; ``calib``: absolute calibration residuals, stored sorted)."""
     # The laplacian's L1 loop reads X one feature at a time: store it column-major, the
     # layout the engine serves from, so a loaded model needs no second, transposed copy.
     # ``specs``: every target's kernel (the others read either layout).
     x_store = (np.asfortranarray(x_train) if any(s.uses == "l1" for s in specs)
                else x_train)
-    arrays = {"x_train": x_store, "dual": dual, "novelty_reference": reference}
+    arrays = {"x_train": x_store, "dual": dual, **envelope}
     if calib is not None:
         arrays["abs_residuals"] = np.sort(calib, axis=0)
     return arrays
@@ -73,12 +74,13 @@ def publish(store: Store, out: Output, manifest: dict, arrays: dict,
                                                "report.html") if extra is not None else None)
 
 
-def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, metrics: dict,
-            counts: dict, check: dict | None, t0: float) -> dict:
+def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, manifest: dict,
+            counts: dict, t0: float) -> dict:
     """The train summary (printed by ``kridge train``, returned by :func:`trainer.job.train`).
 
     ``kernel`` and ``ridge_text`` name each target's where they differ; ``ridge`` is None
     when the targets' ridges differ."""
+    metrics, check = manifest["metrics"], manifest["precision_check"]
     settings = fitted.settings(list(plan.columns.targets))
     shared = shared_entries(settings)
     return {
@@ -101,5 +103,6 @@ def summary(plan: Plan, store: Store, published: Published, fitted: Fitted, metr
         "report": published.report,
         "seconds": round(time.perf_counter() - t0, 2),
         "store": str(store.root),
-        "warnings": list(fitted.warnings) + cautions.poor_holdout(metrics),
+        "baselines": manifest["baselines"],
+        "warnings": manifest["warnings"],
     }

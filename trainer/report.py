@@ -11,7 +11,6 @@ Names from the data are shown literally: in plots through
 from __future__ import annotations
 
 import base64
-import html
 import io
 import math
 from pathlib import Path
@@ -19,11 +18,17 @@ from pathlib import Path
 import numpy as np
 
 from service.cautions import BEFORE_ACTING
+from service.intervals import measured_coverage
 from service.target_kernels import shared_entries, target_kernels
 from service.text_safety import html_name, plot_label
 from trainer.calibration import COVERAGE_LEVELS, interval_coverage
-from trainer.cautions import R2_POOR, poor_holdout
-from trainer.show import ERROR_KINDS, fmt
+from trainer.cautions import CODE_TITLES
+from trainer.report_envelope import envelope_section
+from trainer.report_tables import Raw as _Raw
+from trainer.report_tables import esc as _esc
+from trainer.report_tables import num as _num
+from trainer.report_tables import table as _table
+from trainer.show import ERROR_KINDS
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem;
@@ -35,41 +40,11 @@ img{max-width:100%}.note{color:#555;font-size:.9rem}
 """
 
 
-def _esc(value) -> str:
-    return html.escape(str(value))
-
-
-def _num(value, digits: int = 4) -> str:
-    if value is None:
-        return "–"
-    if isinstance(value, float):
-        if not math.isfinite(value):
-            return "∞" if value > 0 else "–"
-        return fmt(value, digits)
-    return _esc(value)
-
-
-def _table(headers: list[str], rows: list[list], left: int = 1) -> str:
-    """HTML table; the first ``left`` columns are left-aligned text."""
-    def cell(tag, i, v):
-        cls = ' class="l"' if i < left else ""
-        return f"<{tag}{cls}>{v if isinstance(v, _Raw) else _num(v)}</{tag}>"
-
-    head = "".join(cell("th", i, _Raw(_esc(h))) for i, h in enumerate(headers))
-    body = "".join("<tr>" + "".join(cell("td", i, v) for i, v in enumerate(r)) + "</tr>"
-                   for r in rows)
-    return f"<table><tr>{head}</tr>{body}</table>"
-
-
 def _span_text(span: dict | None) -> str:
     """The time span as HTML (the column name isolated)."""
     if not span:
         return "– (no --time column: random holdout)"
     return html_name(span["column"]) + f": {span['start']} → {span['end']}"  # str part escaped
-
-
-class _Raw(str):
-    """Already-escaped HTML."""
 
 
 def _png(fig) -> str:
@@ -199,16 +174,20 @@ def _metrics_rows(metrics: dict) -> list[list]:
 def _cautions(manifest: dict) -> str:
     """The caution section: poor holdout scores, extrapolation flags, what the intervals
     promise, and review before acting."""
-    items = [f"<li><b>Poor holdout score.</b> {_esc(w)}.</li>"
-             for w in poor_holdout(manifest.get("metrics", {}))]
+    items = [f"<li><b>{_esc(CODE_TITLES.get(w['code'], 'Warning'))}.</b> {_esc(w['message'])}"
+             f" <code>{_esc(w['code'])}</code></li>" for w in manifest.get("warnings") or []]
     if not (manifest.get("metrics") or {}).get("holdout"):
         items.append("<li><b>No holdout.</b> Nothing scored this model on rows it did not "
                      "see; its errors on new rows are unknown.</li>")
     items.append("<li><b>Extrapolation.</b> Each prediction carries envelope flags: "
                  "<code>out_of_range</code> names the features outside their training "
-                 "[min, max], <code>novel</code> marks inputs far from every training row "
-                 "(see Training envelope below). A flagged prediction is an extrapolation "
-                 "and may be far off.</li>")
+                 "[min, max], <code>novel</code> marks inputs far from every training row, "
+                 "<code>t2</code> and <code>q</code> above 1 mark a row whose combination or "
+                 "shape the training rows never had, <code>target_out_of_range</code> a "
+                 "prediction outside its target's training range; <code>flagged_by</code> "
+                 "names them (see Training envelope below). A flagged prediction is an "
+                 "extrapolation and may be far off, and its interval is not calibrated "
+                 "there.</li>")
     intervals = manifest.get("intervals") or {}
     if intervals.get("name") == "jackknife" or str(intervals.get("method", "")).startswith(
             "jackknife"):
@@ -217,8 +196,9 @@ def _cautions(manifest: dict) -> str:
                      "intervals below), not the nominal level.</li>")
     items.append(f"<li><b>Before acting.</b> {_esc(BEFORE_ACTING)}</li>")
     return ("<h2>Cautions</h2><ul>" + "".join(items) + "</ul>"
-            f"<p class=note>A holdout R² below {R2_POOR} is flagged: the model then explains "
-            "less than half of the target's variance on unseen rows.</p>")
+            "<p class=note>The holdout is judged against the training mean (and, for a time "
+            "holdout, the last known value): a warning above names the baseline a target "
+            "does not beat.</p>")
 
 
 def _head(manifest: dict) -> list[str]:
@@ -336,8 +316,7 @@ def _intervals_section(manifest: dict, points: dict | None,
         note = ("half-widths from the stored calibration residuals (these include the "
                 "holdout rows, so the check is optimistic)")
     if cov:
-        rows = [[_Raw(html_name(t)), c["nominal"], c["empirical"][j], c["half_width"][j],
-                 c["rows"]] for c in cov for j, t in enumerate(targets)]
+        rows = [_coverage_cells(t, j, c) for c in cov for j, t in enumerate(targets)]
         out += [_table(["target", "nominal", "holdout coverage", "half-width", "rows"], rows),
                 f"<p class=note>{_esc(note)}</p>"]
     if calib is not None:
@@ -346,27 +325,16 @@ def _intervals_section(manifest: dict, points: dict | None,
     return out
 
 
-def _envelope_section(manifest: dict) -> list[str]:
-    env = manifest.get("envelope", {})
-    std = manifest.get("standardization", {})
-    rows = []
-    for j, f in enumerate(manifest["features"]):
-        r = env.get("ranges", {}).get(f, {})
-        rows.append([_Raw(html_name(f)), r.get("min"), r.get("max"),
-                     (std.get("mean") or [None] * (j + 1))[j],
-                     (std.get("scale") or [None] * (j + 1))[j]])
-    out = ["<h2>Training envelope</h2>",
-           _table(["feature", "min", "max", "mean", "scale (SD)"], rows)]
-    nov = env.get("novelty", {})
-    if nov:
-        out.append(_table(["", ""], [
-            [_Raw("novelty method"), _Raw(_esc(nov.get("method", "")))],
-            [_Raw("k"), nov.get("k")],
-            [_Raw("threshold distance"), nov.get("threshold_distance")],
-            [_Raw("calibration"), _Raw(_esc(nov.get("calibration", "")))],
-            [_Raw("training rows flagged"), nov.get("training_rows_flagged")],
-        ], left=2))
-    return out
+def _coverage_cells(target: str, j: int, level: dict) -> list:
+    """One row of the coverage table; a level the residuals cannot give (unbounded
+    half-width) says so instead of a coverage of 100 %."""
+    measured = measured_coverage(level)
+    if measured is None:
+        gap = _Raw("not available: too few residuals")
+        return [_Raw(html_name(target)), level["nominal"], gap, _Raw("unbounded"),
+                level["rows"]]
+    return [_Raw(html_name(target)), level["nominal"], measured[j], level["half_width"][j],
+            level["rows"]]
 
 
 def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
@@ -377,7 +345,7 @@ def render(manifest: dict, tuning: dict | None, holdout_points: dict | None,
     if holdout_points:
         parts += _holdout_section(manifest, holdout_points)
     parts += _intervals_section(manifest, holdout_points, calib)
-    parts += _envelope_section(manifest)
+    parts += envelope_section(manifest)
     parts.append("</body></html>")
     return "\n".join(parts)
 

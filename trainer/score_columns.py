@@ -23,8 +23,13 @@ from decimal import Decimal
 
 from service.text_safety import csv_cell
 
-#: The envelope's columns, in order, after the predictions (and interval bounds).
-ENVELOPE_COLUMNS = ("inside", "novelty", "out_of_range")
+#: The envelope's columns, in order, after the predictions (and interval bounds): ``t2`` and
+#: ``q`` empty for versions without the shape check, ``target_out_of_range`` and
+#: ``flagged_by`` names joined by ``;``.
+ENVELOPE_COLUMNS = ("inside", "novelty", "out_of_range", "t2", "q", "target_out_of_range",
+                    "flagged_by")
+#: With a coverage, after the envelope: whether the row's interval is calibrated (inside).
+CALIBRATED = "interval_calibrated"
 
 _NUMBER = {".": re.compile(r"^[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?$"),
            ",": re.compile(r"^[+-]?(?:\d+(?:,\d*)?|,\d+)(?:[eE][+-]?\d+)?$")}
@@ -76,12 +81,20 @@ def quoted(text: str) -> str:
     return '"' + text.replace('"', '""') + '"'
 
 
-def envelope_cells(dialect: Dialect, env: dict) -> list[str]:
-    """The :data:`ENVELOPE_COLUMNS` cells of one row's envelope report; a text feature
-    whose category training never saw is named in ``out_of_range`` as ``feature=value``."""
+def envelope_cells(dialect: Dialect, env: dict, intervals: bool = False) -> list[str]:
+    """The :data:`ENVELOPE_COLUMNS` cells of one row's envelope report (and, with
+    ``intervals``, the :data:`CALIBRATED` cell); a text feature whose category training never
+    saw is named in ``out_of_range`` as ``feature=value``; a check the version lacks is an
+    empty cell."""
     named = [*env["out_of_range"], *(f"{f}={v}" for f, v in env.get("new_category", {}).items())]
-    return [dialect.text("true" if env["inside"] else "false"), dialect.number(env["novelty"]),
-            quoted(";".join(csv_cell(f) for f in named))]
+    inside = dialect.text("true" if env["inside"] else "false")
+    cells = [inside, dialect.number(env["novelty"]),
+             quoted(";".join(csv_cell(f) for f in named)),
+             dialect.number(env["t2"]) if "t2" in env else "",
+             dialect.number(env["q"]) if "q" in env else "",
+             quoted(";".join(csv_cell(t) for t in env.get("target_out_of_range") or ())),
+             quoted(";".join(env["flagged_by"]))]
+    return cells + [inside] if intervals else cells
 
 
 def skipped_envelope_cells() -> list[str]:

@@ -30,7 +30,7 @@ from service.text_safety import csv_cell
 from trainer.errors import UserError
 from trainer.read.cells import is_missing
 from trainer.read.source import BLOCK_BYTES, Source
-from trainer.score_columns import ENVELOPE_COLUMNS, Dialect, envelope_cells, quoted
+from trainer.score_columns import CALIBRATED, ENVELOPE_COLUMNS, Dialect, envelope_cells, quoted
 
 #: The column that says why a row has no results (with ``drop_incomplete``).
 SKIPPED = "skipped"
@@ -92,7 +92,7 @@ def result_columns(model: Model, half) -> list[str]:
     if half is not None:
         for t in model.targets:
             names += [f"{t}_lower", f"{t}_upper"]
-    return names + list(ENVELOPE_COLUMNS)
+    return names + list(ENVELOPE_COLUMNS) + ([CALIBRATED] if half is not None else [])
 
 
 def _half_width(model: Model, coverage: float | None):
@@ -201,14 +201,15 @@ def _result_cells(model: Model, dialect: Dialect, x: np.ndarray, half
     """Prediction, bound and envelope cells of complete rows, and how many are outside."""
     if not x.shape[0]:
         return [], 0
-    y, env = model.score_rows(x.tolist()) if model.encoding.any else model.score(x)
+    y, env, lower, upper = (model.answer_rows(x.tolist(), half) if model.encoding.any
+                            else model.answer(x, half))
     numbers = y
-    if half is not None:
+    if half is not None:  # ends clipped to the version's target bounds, if it has them
         bounds = np.empty((y.shape[0], 2 * y.shape[1]))
-        bounds[:, 0::2] = y - half
-        bounds[:, 1::2] = y + half
+        bounds[:, 0::2] = lower
+        bounds[:, 1::2] = upper
         numbers = np.hstack([y, bounds])
-    rows = [[dialect.number(v) for v in row] + envelope_cells(dialect, e)
+    rows = [[dialect.number(v) for v in row] + envelope_cells(dialect, e, half is not None)
             for row, e in zip(numbers.tolist(), env, strict=True)]
     return rows, sum(not e["inside"] for e in env)
 

@@ -9,9 +9,40 @@ from __future__ import annotations
 
 import sys
 
+from service.intervals import measured_coverage
 from service.target_kernels import kernel_text, ridge_text, target_kernels
 from service.text_safety import visible
 from service.version_facts import features_hash
+
+
+def coverage_text(level: dict) -> str:
+    """One level's measured coverage, or why there is none (too few residuals)."""
+    measured = measured_coverage(level)
+    if measured is None:
+        return "not available: too few calibration residuals for this coverage"
+    return ", ".join(f"{v:.1%}" for v in measured)
+
+
+def envelope_lines(m: dict) -> list[tuple[str, str]]:
+    """``kridge inspect``'s lines for the PCA shape check and the targets' ranges/bounds."""
+    env, lines = m.get("envelope") or {}, []
+    pca = env.get("pca")
+    if pca:
+        q = (f"Q limit {fmt(pca['q_limit'])}" if pca.get("q_limit") is not None
+             else "no Q (nothing left off the components)")
+        lines.append(("shape check", f"T² and Q on {pca['components']} components "
+                      f"({pca['explained_variance']:.1%} of the variance); at {pca['level']}: "
+                      f"T² limit {fmt(pca['t2_limit'])}, {q}"))
+    ranges = env.get("target_ranges")
+    if ranges:
+        lines.append(("target ranges", ", ".join(
+            f"{t} {fmt(r['min'])} … {fmt(r['max'])}" for t, r in ranges.items())))
+    bounds = (m.get("target_bounds") or {}).get("bounds")
+    if bounds:
+        lines.append(("clipped to", ", ".join(
+            f"{t} {'−∞' if b['low'] is None else fmt(b['low'])} … "
+            f"{'+∞' if b['high'] is None else fmt(b['high'])}" for t, b in bounds.items())))
+    return lines
 
 
 def table(headers: list[str], rows: list[list], out=None) -> None:
@@ -127,14 +158,24 @@ def manifest_summary(m: dict, live: int | None) -> list[tuple[str, str]]:
         lines.append(("intervals", m["intervals"]["method"]))
         cov = m["intervals"].get("holdout_coverage")
         lines.append(("holdout coverage", "; ".join(
-            f"{c['nominal']:.0%} → " + ", ".join(f"{v:.1%}" for v in c["empirical"])
-            for c in cov) if cov else "not measured"))
+            f"{c['nominal']:.0%} → " + coverage_text(c) for c in cov) if cov
+            else "not measured"))
     lines.append(("novelty", f"k={nov.get('k')}, threshold distance "
                              f"{fmt(nov.get('threshold_distance', float('nan')))} "
                              f"({nov.get('calibration', '')})"))
+    lines += envelope_lines(m)
     lines.append(("precision", precision_line(m.get("precision", "float64"),
                                               m.get("precision_check"))))
+    lines += warning_lines(m)
     return lines
+
+
+def warning_lines(m: dict) -> list[tuple[str, str]]:
+    """One ``warning`` line per entry of the manifest's ``warnings`` (code in brackets)."""
+    if "warnings" not in m:
+        return [("warnings", "not recorded (a manifest from before warnings were stored)")]
+    return [("warning", f"{w['message']} [{w['code']}]") for w in m["warnings"]] or [
+        ("warnings", "none")]
 
 
 def print_pairs(pairs: list[tuple[str, str]], out=None) -> None:

@@ -94,17 +94,24 @@ class Evidence:
     # held out at all, even with no rows: then nothing calibrates, not the holdout)
     loo: Predicted | None = None  # the served model's exact leave-one-out predictions
     scorer_loo: np.ndarray | None = None  # exact LOO residuals of the holdout's model
+    # the holdout's baselines (trainer.baselines): the target mean of the rows the holdout's
+    # model was fitted on (None: the served model's intercept, fitted on those rows), and
+    # with --time the target of the latest such row (None: taken from the held-out parts)
+    train_mean: np.ndarray | None = None
+    last_known: np.ndarray | None = None
 
 
 @dataclass(frozen=True)
 class EnvelopeRows:
-    """Training rows the novelty reference is drawn from; ``ranges`` (from every row) when
-    they are a sample."""
+    """Training rows the novelty reference and the PCA check are drawn from; ``ranges``
+    (from every row) when they are a sample; ``y``: those rows' targets, (rows, t), whose
+    ranges the envelope keeps."""
 
     x_raw: np.ndarray
     x_s: np.ndarray
     ranges: dict | None = None
     ranges_from: str | None = None
+    y: np.ndarray | None = None
 
 
 @dataclass

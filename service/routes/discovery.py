@@ -60,6 +60,9 @@ def describe(name: str):
         training_rows=man.get("training", {}).get("rows"),
         metrics=man.get("metrics"), ranges=man["envelope"]["ranges"],
         novelty=man["envelope"]["novelty"],
+        shape_check=man["envelope"].get("pca"),
+        target_ranges=man["envelope"].get("target_ranges"),
+        target_bounds=(man.get("target_bounds") or {}).get("bounds"),
         intervals=m.has_intervals,
     ))
 

@@ -19,6 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from trainer.data_checks import duplicate_rows
 from trainer.exact.fit import fit_exact, fit_exact_each
 from trainer.plan import Plan
 from trainer.read import columns
@@ -32,6 +33,15 @@ class RowsInMemory(Rows):
 
     x: np.ndarray
     y: np.ndarray
+    groups: np.ndarray | None = None  # (n,) group codes with --group
+    group_names: list[str] | None = None
+
+
+def group_record(column: str, groups: np.ndarray, holdout: np.ndarray) -> dict:
+    """The manifest's ``training.group``: the column, how many groups, how many held out."""
+    return {"column": column, "groups": int(np.unique(groups).size),
+            "holdout_groups": int(np.unique(groups[holdout]).size),
+            "how": "every row of a group on one side of the holdout and of each tuning fold"}
 
 
 class ExactSolver:
@@ -44,13 +54,14 @@ class ExactSolver:
     def read(self, plan: Plan, log: Log) -> RowsInMemory:
         c = plan.columns
         d = columns.read_rows(plan.source, c.targets, c.features, c.time, c.drop_incomplete,
-                              c.text)
+                              c.text, c.group)
         x, y, t = d.x, d.y, d.time
         if t is not None:  # time order: the holdout is the latest stretch, folds run forward
             order = np.argsort(t, kind="stable")
             x, y, t = x[order], y[order], t[order]
         return RowsInMemory(x.shape[0], d.counts, t, d.time_is_clock, x, y,
-                            encoding=d.encoding)
+                            encoding=d.encoding, groups=d.groups,
+                            group_names=d.group_names)
 
     def tune(self, plan: Plan, rows: RowsInMemory, split: HoldoutSplit, log: Log) -> Tuned:
         p = plan.parameters
@@ -64,7 +75,8 @@ class ExactSolver:
                             kernel=p.kernel,
                             given=search.Given(p.gamma, p.degree, p.coef0, p.ridge),
                             seed=plan.splits.seed, quiet=plan.output.quiet, log=log,
-                            time_ordered=split.by_time, shared=p.shared)
+                            time_ordered=split.by_time, shared=p.shared,
+                            groups=None if rows.groups is None else rows.groups[split.train])
 
     def fit(self, plan: Plan, rows: RowsInMemory, split: HoldoutSplit, tuned: Tuned,
             want_loo: bool, log: Log) -> Fitted:
@@ -77,12 +89,13 @@ class ExactSolver:
             return fit_exact_each(xa, ya, pairs, want_loo=want_loo)
 
         tr, ho = split.train, split.holdout
-        holdout = scorer_loo = None
+        holdout = scorer_loo = last = None
         if ho.size:
             part = fit(x[tr], y[tr])
             holdout = Predicted(y[ho], part.predict(x[ho]),
                                 rows.times[ho] if rows.times is not None else None)
             scorer_loo = part.loo_residuals
+            last = y[tr[-1]] if split.by_time else None  # rows are in time order
         t_fit = time.perf_counter()
         final = fit(x, y)
         fit_seconds = time.perf_counter() - t_fit
@@ -94,8 +107,12 @@ class ExactSolver:
             standardization={"mean": final.scaler.mean.tolist(),
                              "scale": final.scaler.scale.tolist(), "ddof": 0},
             rows=rows.count, fit_seconds=fit_seconds,
-            evidence=Evidence(holdout=holdout, loo=loo, scorer_loo=scorer_loo),
-            envelope=EnvelopeRows(x, final.x_s), check_rows=(final.x_s, y),
+            evidence=Evidence(holdout=holdout, loo=loo, scorer_loo=scorer_loo,
+                              train_mean=y[tr].mean(axis=0), last_known=last),
+            envelope=EnvelopeRows(x, final.x_s, y=y), check_rows=(final.x_s, y),
             training={"solver": "cholesky (scipy.linalg.cho_factor)",
-                      "final_fit": "refitted on all rows with the chosen parameters"},
+                      "final_fit": "refitted on all rows with the chosen parameters",
+                      "duplicates": duplicate_rows(x, tr, ho),
+                      **({"group": group_record(plan.columns.group, rows.groups, ho)}
+                         if rows.groups is not None else {})},
             tuning=tuned.account, described="exact", per_target=pairs)

@@ -283,7 +283,8 @@ class NystromSolver:
                              "how": "streamed over every usable row (Chan et al. 1983)"},
             rows=train_rows, fit_seconds=fit_seconds, evidence=evidence,
             envelope=EnvelopeRows(tuned.sample.x_raw, tuned.sample.x_s, ranges,
-                                  f"all {sc.count} training-file rows used"),
+                                  f"all {sc.count} training-file rows used",
+                                  y=tuned.sample.y),
             check_rows=(rows.sample_s()[:5000], sc.sample[:, len(features):]),
             training={"landmarks": landmark_info, "parts": parts,
                       "solver": self.solver_text if self.solve_record["solver"] != "cg"

@@ -60,6 +60,8 @@ class TrainingData:
     time_column: str | None = None
     time_is_clock: bool = False  # the time column held ISO 8601 stamps (not plain numbers)
     encoding: Categories | None = None  # text features: x holds their one-hot columns
+    groups: np.ndarray | None = None  # (n,) int: the --group label of each row, as a code
+    group_names: list[str] | None = None  # the labels, in code order
 
 
 def _refuse_missing(src: Source, chunk: Chunk, values: np.ndarray, names: list[str],
@@ -144,21 +146,27 @@ def row_counts(read: int, with_target: int, dropped: int, used: int,
 
 
 def feature_names(src: Source, targets: list[str], features: list[str] | None,
-           time: str | None) -> list[str]:
+           time: str | None, group: str | None = None) -> list[str]:
     """Resolve and check feature names; the default is every other numeric column.
 
-    Every name used (targets, features, time) must pass :func:`service.text_safety.name_refusal`.
+    Every name used (targets, features, time, group) must pass
+    :func:`service.text_safety.name_refusal`.
     """
-    for group, names in (("target", targets), ("feature", features or [])):
+    for role, names in (("target", targets), ("feature", features or [])):
         if len(set(names)) != len(names):
-            raise UserError(f"{group} columns list a name twice: {', '.join(names)}")
-        src.check_columns(names, f"{group} column")
+            raise UserError(f"{role} columns list a name twice: {', '.join(names)}")
+        src.check_columns(names, f"{role} column")
     if time is not None:
         src.check_columns([time], "time column")
         if time in targets or (features and time in features):
             raise UserError(f"column {time!r} cannot be the time column and a feature or target")
+    if group is not None:
+        src.check_columns([group], "group column")
+        if group in targets or (features and group in features) or group == time:
+            raise UserError(f"column {group!r} cannot be the group column and a feature, "
+                            "target or the time column")
     if features is None:
-        features = [c for c in src.header if c not in targets and c != time]
+        features = [c for c in src.header if c not in targets and c not in (time, group)]
         odd = src.numeric_probe(features)
         if odd:
             raise UserError(
@@ -171,7 +179,8 @@ def feature_names(src: Source, targets: list[str], features: list[str] | None,
         raise UserError(f"column(s) {', '.join(sorted(overlap))} cannot be feature and target")
     if not features:
         raise UserError(f"{src.path}: no feature columns left besides the target(s)")
-    refusal = name_refusal([*targets, *features, *([time] if time else [])], src.header)
+    refusal = name_refusal([*targets, *features, *([time] if time else []),
+                            *([group] if group else [])], src.header)
     if refusal:
         raise UserError(f"{src.path}: {refusal}")
     return features
@@ -190,8 +199,22 @@ def load_training(path, targets: list[str], features: list[str] | None = None,
                      text_features(src, names) if features else ())
 
 
+def group_codes(src: Source, column: str, kept: np.ndarray) -> tuple[np.ndarray, list[str]]:
+    """(code per kept row, labels in code order) of the ``--group`` column; an empty cell in
+    a kept row is refused with its data row."""
+    cells = src.labels(column)
+    mine = [cells[i] for i in kept]
+    empty = [i for i, c in zip(kept, mine, strict=True) if c is None or not str(c).strip()]
+    if empty:
+        raise UserError(f"{src.path}: data row {empty[0] + 1}, column {column!r}: empty group "
+                        "cell (every row used needs its group)")
+    names, codes = np.unique(np.array(mine, dtype=object).astype(str), return_inverse=True)
+    return codes.astype(np.int64), names.tolist()
+
+
 def read_rows(src: Source, targets: list[str], features: list[str], time: str | None,
-              drop_incomplete: bool, text: list[str] | tuple = ()) -> TrainingData:
+              drop_incomplete: bool, text: list[str] | tuple = (),
+              group: str | None = None) -> TrainingData:
     """Read the rows to fit on: rows with every target present, complete features
     (``features`` already resolved by :func:`feature_names`). The ``text`` features are
     encoded one-hot (:mod:`trainer.read.categorical`): ``x`` then holds the encoded columns.
@@ -203,7 +226,7 @@ def read_rows(src: Source, targets: list[str], features: list[str], time: str | 
     """
     targets, features = list(targets), list(features)
     d = len(features)
-    xs, ys, ts = [], [], []
+    xs, ys, ts, kept = [], [], [], []
     read = with_target = dropped = 0
     book = CodeBook(features, text) if text else None
     numbers = book.numbers if book else features
@@ -217,6 +240,7 @@ def read_rows(src: Source, targets: list[str], features: list[str], time: str | 
         ys.append(v[keep, d:])
         if chunk.time is not None:
             ts.append(chunk.time[keep])
+        kept.append(read + np.flatnonzero(keep))
         read += m
         with_target += int(has_target.sum())
         dropped += int(bad.sum())
@@ -238,8 +262,9 @@ def read_rows(src: Source, targets: list[str], features: list[str], time: str | 
     encoding = None
     if book is not None:
         x, encoding = book.encode(x, src.path)
+    codes, names = (group_codes(src, group, np.concatenate(kept)) if group else (None, None))
     return TrainingData(features, list(targets), x, y, t, src.sha256, str(src.path), counts,
-                        src.dialect(), time, clock, encoding)
+                        src.dialect(), time, clock, encoding, codes, names)
 
 
 def text_features(src: Source, features: list[str]) -> list[str]:

@@ -167,6 +167,16 @@ class Source:
             first_row += chunk.values.shape[0]
             yield chunk
 
+    def labels(self, column: str) -> list[str | None]:
+        """Every data row's cell of ``column`` as text, in file order (None: empty);
+        :mod:`trainer.read.labels`."""
+        from trainer.read import labels
+
+        self.check_columns([column], "group column")
+        reader = {"csv": labels.csv_labels, "parquet": labels.parquet_labels,
+                  "excel": labels.excel_labels}[self.kind]
+        return reader(self._file, column)
+
     def numeric_probe(self, columns: list[str]) -> list[str]:
         """Names among ``columns`` whose first block holds mostly cells that are not numbers
         (Parquet: whose type is not numeric)."""

@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
+
 from service.kernels import KERNEL_PARAMS
 from trainer.exact.candidates import Curve
 from trainer.tuning.full_size import RIDGE_TOL
@@ -49,14 +51,49 @@ def per_kernel(kernels: list[str], entries, curves: list[Curve], rows: int,
     return out
 
 
-def _at_edge(full, best: Curve, ridge: float, given_ridge: bool) -> bool:
-    """The chosen ridge sits at an end of the range searched."""
+def _same_family(a, b) -> bool:
+    """Two kernel settings that differ at most in their width γ."""
+    pa, pb = dict(a.params()), dict(b.params())
+    pa.pop("gamma", None), pb.pop("gamma", None)
+    return a.name == b.name and pa == pb
+
+
+def _ridge_edge(full, scored: list[Curve], best: Curve, ridge: float,
+                given_ridge: bool) -> dict | None:
+    """{side, range} when the chosen ridge sits at an end of the range searched, else None.
+
+    Searched whole: the ridge lies below the grid's second value or above its next-to-last
+    (the grid's best was an end point, whatever the finer grid around it found). Settled on
+    all rows: within the line search's tolerance of the grid's limits.
+    """
     if given_ridge:
-        return False
+        return None
     if full is None:
-        return best.ridges.size == RIDGE_GRID_SIZE and best.best in (0, best.ridges.size - 1)
-    lo, hi = full.ridge_limits(best.spec)
-    return min(math.log(ridge) - lo, hi - math.log(ridge)) < RIDGE_TOL
+        grid = np.unique(np.concatenate([c.ridges for c in scored if c.spec == best.spec]))
+        if grid.size < 3:
+            return None
+        lo, hi = float(grid[0]), float(grid[-1])
+        side = "lower" if ridge < grid[1] else "upper" if ridge > grid[-2] else None
+    else:
+        lo, hi = (math.exp(v) for v in full.ridge_limits(best.spec))
+        u = math.log(ridge)
+        side = ("lower" if u - math.log(lo) < RIDGE_TOL else
+                "upper" if math.log(hi) - u < RIDGE_TOL else None)
+    return {"side": side, "range": [lo, hi]} if side else None
+
+
+def _width_edge(scored: list[Curve], best: Curve, searched: bool) -> dict | None:
+    """{side, value, range, scored} when the chosen γ is the smallest or largest width
+    scored for its kernel setting (coarse grid, extensions, bisections, line searches)."""
+    gamma = getattr(best.spec, "gamma", None)
+    if not searched or gamma is None:
+        return None
+    tried = sorted({c.spec.gamma for c in scored if _same_family(c.spec, best.spec)})
+    if len(tried) < 3:
+        return None
+    side = "lower" if gamma <= tried[0] else "upper" if gamma >= tried[-1] else None
+    return ({"side": side, "value": float(gamma), "range": [tried[0], tried[-1]],
+             "scored": len(tried)} if side else None)
 
 
 def _method(what: str, cv: bool, coarse: Problem | None, n: int) -> str:
@@ -95,6 +132,8 @@ def account(problem: Problem, coarse: Problem | None, entries, full, best: Curve
                f"{len(coarse_curves) + (len(curves) if full else 0)} settings scored, "
                f"{len(raced)} raced out; {error} RMSE {rmse_txt}; {seconds:.1f} s)")
     coarse_rows = coarse.x_s.shape[0] if coarse is not None else n
+    scored = coarse_curves + (curves if full is not None else [])
+    ridge_edge = _ridge_edge(full, scored, best, ridge, given.ridge is not None)
     return {
         "method": _method(what, problem.folds is not None, coarse, n),
         "criterion": crit_txt,
@@ -116,7 +155,8 @@ def account(problem: Problem, coarse: Problem | None, entries, full, best: Curve
         },
         "chosen": {"kernel": spec.name, "params": spec.params(), "ridge": ridge,
                    "score": best.best_score, "rmse": chosen_rmse, "rows": n,
-                   "ridge_at_grid_edge": _at_edge(full, best, ridge, given.ridge is not None)},
+                   "ridge_at_grid_edge": ridge_edge is not None, "ridge_edge": ridge_edge,
+                   "width_edge": _width_edge(scored, best, "gamma" in searched)},
         "per_kernel": per_kernel(kernels, entries, curves, n, coarse_rows),
         "curves": [c.as_json() for c in curves],
         "coarse_curves": [c.as_json() for c in coarse_curves] if full is not None else None,

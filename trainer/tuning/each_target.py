@@ -27,14 +27,14 @@ _SUMMED = ("decompositions", "factorizations", "numerical_failures")
 
 def tune_targets(x_tr: np.ndarray, y_tr: np.ndarray, targets: list[str], *, kernel: str,
                  given: search.Given, seed: int, quiet: bool, log, time_ordered: bool,
-                 shared: bool = False) -> Tuned:
+                 shared: bool = False, groups=None) -> Tuned:
     """The omitted parameters, per target unless ``shared`` or a single target.
 
     Parameters are those of :func:`trainer.tuning.search.tune`; ``targets`` names the
     columns of ``y_tr`` (n, t).
     """
     options = {"kernel": kernel, "given": given, "seed": seed, "quiet": quiet, "log": log,
-               "time_ordered": time_ordered}
+               "time_ordered": time_ordered, "groups": groups}
     if shared or y_tr.shape[1] == 1:
         one = search.tune(x_tr, y_tr, **options)
         return Tuned(one.spec, one.ridge, one.account)

@@ -73,9 +73,9 @@ class Entry:
 
 def coarse_problem(problem: Problem, seed: int) -> Problem | None:
     """The subsample the coarse stage runs on, or None when the problem is small enough to
-    be searched whole (or is scored on time folds, which keep their own scheme)."""
+    be searched whole (or is scored on time or group folds, which keep their own scheme)."""
     n = problem.x_s.shape[0]
-    if n <= COARSE_ROWS or problem.raw is not None:
+    if n <= COARSE_ROWS or problem.raw is not None or problem.grouped:
         return None
     keep = np.sort(np.random.default_rng(seed).choice(n, COARSE_ROWS, replace=False))
     y = problem.y_c[keep]

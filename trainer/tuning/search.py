@@ -114,7 +114,7 @@ def _refine_ridge(problem: Problem, curve: Curve) -> Curve:
 
 def tune(x_tr: np.ndarray, y_tr: np.ndarray, *, kernel: str = "rbf",
          given: Given = Given(), seed: int = 0, quiet: bool = False, log=print,
-         time_ordered: bool = False) -> Tuned:
+         time_ordered: bool = False, groups: np.ndarray | None = None) -> Tuned:
     """Choose the omitted kernel parameters and ridge on the training rows.
 
     Parameters
@@ -128,6 +128,8 @@ def tune(x_tr: np.ndarray, y_tr: np.ndarray, *, kernel: str = "rbf",
     log : one-line progress messages.
     time_ordered : rows are in time order: blocked cross-validation in time order
         replaces leave-one-out, which is optimistic on an autocorrelated series.
+    groups : (n,) group codes (``--group``): k-fold over whole groups replaces
+        leave-one-out, which would score a row with its copies in the fit.
     """
     t0 = time.perf_counter()
     n = x_tr.shape[0]
@@ -136,7 +138,7 @@ def tune(x_tr: np.ndarray, y_tr: np.ndarray, *, kernel: str = "rbf",
     if given.ridge is not None and not given.ridge > 0:
         raise UserError(f"ridge must be positive for tuning, got {given.ridge}")
     kernels = list(AUTO_KERNELS) if kernel == "auto" else [kernel]
-    problem, info = standardized_problem(x_tr, y_tr, given.ridge, seed, time_ordered)
+    problem, info = standardized_problem(x_tr, y_tr, given.ridge, seed, time_ordered, groups)
     entries = _entries(kernels, given)
     coarse = race.coarse_problem(problem, seed)
     first = coarse or problem

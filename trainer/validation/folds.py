@@ -7,6 +7,8 @@ Three schemes, chosen by the data:
   k-fold cross-validation on a random subsample of :data:`FALLBACK_ROWS` rows, whose cost
   per scored point (one factorization per fold) matches leave-one-out's at the limit, so
   the time of a search rises up to the limit and stays there (no step either way);
+* rows in groups (``--group``): k-fold over whole groups (:func:`group_folds`), since
+  leave-one-out would score a row with its own copies (a mix measured twice) in the fit;
 * rows in time order (``--time``): forward-chaining folds (:func:`time_series_folds`), since
   leave-one-out is optimistic on an autocorrelated series (a row's neighbours in time are
   near-copies of it). Each such fold standardizes its features and centres its targets on
@@ -59,6 +61,7 @@ class Problem:
     folds: list[tuple[np.ndarray, np.ndarray]] | None = None  # k-fold: (train, validation)
     #: time folds: the raw rows, so that each fold standardizes on its own training rows
     raw: tuple[np.ndarray, np.ndarray] | None = None
+    grouped: bool = False  # folds keep groups whole: no leave-one-out stage may run
     evaluated: int = 0  # eigendecompositions run
     factorizations: int = 0  # Cholesky factorizations run (trainer.exact.cholesky_score)
     seconds: float = 0.0
@@ -124,8 +127,33 @@ def time_series_folds(n: int, n_splits: int = TIME_FOLDS,
     return out
 
 
+def group_folds(groups: np.ndarray, n_splits: int = FALLBACK_FOLDS
+                ) -> list[tuple[np.ndarray, np.ndarray]]:
+    """k folds over whole groups: (training rows, validation rows), every group in exactly
+    one validation fold, k = min(``n_splits``, groups).
+
+    Groups go, largest first, to the fold with the fewest rows so far (the balancing of
+    scikit-learn's ``GroupKFold``), so fold sizes stay close even when groups are unequal.
+    """
+    labels, codes, sizes = np.unique(groups, return_inverse=True, return_counts=True)
+    k = min(n_splits, labels.size)
+    if k < 2:
+        raise UserError(f"{labels.size} group(s) in the training part are too few for grouped "
+                        "folds; give --gamma and --ridge, or more groups")
+    fold_of_group = np.empty(labels.size, dtype=np.int64)
+    load = np.zeros(k, dtype=np.int64)
+    for g in np.argsort(-sizes, kind="stable"):
+        f = int(np.argmin(load))
+        fold_of_group[g] = f
+        load[f] += sizes[g]
+    fold = fold_of_group[codes]
+    rows = np.arange(groups.size)
+    return [(rows[fold != f], rows[fold == f]) for f in range(k)]
+
+
 def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float | None,
-                         seed: int, time_ordered: bool = False) -> tuple[Problem, dict]:
+                         seed: int, time_ordered: bool = False,
+                         groups: np.ndarray | None = None) -> tuple[Problem, dict]:
     """The problem tuning scores candidates on, and a JSON-ready account of the scheme
     (``fallback``: False or why a subsample was used; ``time_folds`` in time order)."""
     n = x_tr.shape[0]
@@ -135,6 +163,8 @@ def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float 
     var[var <= 0] = 1.0
     info: dict = {"fallback": False}
     folds = raw = None
+    if groups is not None:
+        return _grouped_problem(x_s, y_c, 1.0 / var, ridge_fixed, seed, groups, info)
     if time_ordered:
         raw = (x_tr, y_tr)
         if n > EXACT_MAX_ROWS:  # every k-th row keeps the time order and the whole span
@@ -170,8 +200,30 @@ def standardized_problem(x_tr: np.ndarray, y_tr: np.ndarray, ridge_fixed: float 
     return Problem(x_s, y_c, 1.0 / var, ridge_fixed, folds, raw), info
 
 
+def _grouped_problem(x_s, y_c, inv_var, ridge_fixed, seed: int, groups: np.ndarray,
+                     info: dict) -> tuple[Problem, dict]:
+    """Grouped folds on the tuning rows (above :data:`EXACT_MAX_ROWS`, on a seeded random
+    :data:`FALLBACK_ROWS` of them, as the k-fold fallback)."""
+    n = x_s.shape[0]
+    if n > EXACT_MAX_ROWS:
+        keep = np.sort(np.random.default_rng(seed).choice(n, size=FALLBACK_ROWS, replace=False))
+        x_s, y_c, groups = x_s[keep], y_c[keep] - y_c[keep].mean(axis=0), groups[keep]
+        info["fallback"] = {"reason": f"{n} training rows > {EXACT_MAX_ROWS}: grouped folds "
+                                      f"on a {FALLBACK_ROWS}-row subsample",
+                            "subsample_rows": FALLBACK_ROWS, "folds": FALLBACK_FOLDS}
+    folds = group_folds(groups)
+    info["group_folds"] = {
+        "folds": len(folds), "groups": int(np.unique(groups).size),
+        "validation_rows": [int(v.size) for _, v in folds],
+        "how": "k-fold over whole groups, largest groups first into the fold with the "
+               "fewest rows (GroupKFold's balancing)"}
+    return Problem(x_s, y_c, inv_var, ridge_fixed, folds, grouped=True), info
+
+
 def error_method(info: dict) -> str:
     """The short name of the validation scheme, carried by every error it produced."""
+    if "group_folds" in info:
+        return "group-fold"
     if "time_folds" in info:
         return "time-fold"
     return "k-fold" if info["fallback"] else "LOO"
@@ -179,6 +231,11 @@ def error_method(info: dict) -> str:
 
 def scheme_text(info: dict) -> str:
     """The validation scheme in words, for the log and the manifest."""
+    if "group_folds" in info:
+        gf = info["group_folds"]
+        return (f"{gf['folds']}-fold cross-validation over whole groups ({gf['groups']} "
+                "groups)" + (f" on a {info['fallback']['subsample_rows']}-row subsample"
+                             if info["fallback"] else ""))
     if "time_folds" in info:
         tf = info["time_folds"]
         return (f"blocked cross-validation in time order ({tf['folds']} forward-chaining folds "

@@ -11,6 +11,7 @@ taken from the sample are training-part rows.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -36,6 +37,26 @@ def split_holdout(n: int, fraction: float, seed: int,
         return np.arange(n - n_hold), np.arange(n - n_hold, n)
     perm = np.random.default_rng(seed).permutation(n)
     return np.sort(perm[n_hold:]), np.sort(perm[:n_hold])
+
+
+def split_groups(groups: np.ndarray, fraction: float, seed: int
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """(train indices, holdout indices) keeping every group whole: a seeded random
+    ⌈fraction · G⌉ of the G groups are held out, all their rows with them (the count of
+    scikit-learn's ``GroupShuffleSplit(test_size=fraction)``)."""
+    if not 0 <= fraction < 1:
+        raise UserError(f"--holdout must be in [0, 1), got {fraction}")
+    labels = np.unique(groups)
+    n_hold = math.ceil(fraction * labels.size) if fraction > 0 else 0
+    if fraction > 0 and labels.size - n_hold < 2:
+        raise UserError(f"{labels.size} groups are too few for a grouped holdout of "
+                        f"{fraction}; use --holdout 0")
+    held = np.random.default_rng([seed, 11]).permutation(labels)[:n_hold]
+    out = np.isin(groups, held)
+    if fraction > 0 and int((~out).sum()) < MIN_ROWS:
+        raise UserError(f"{int((~out).sum())} training rows left by a grouped holdout of "
+                        f"{fraction}; use --holdout 0")
+    return np.flatnonzero(~out), np.flatnonzero(out)
 
 
 def part_fractions(rows: int, holdout: float) -> tuple[float, float, float]:
@@ -81,9 +102,12 @@ class HoldoutSplit:
     train: np.ndarray
     holdout: np.ndarray
     by_time: bool
+    groups: np.ndarray | None = None  # every row's group code (--group), else None
 
     @property
     def kind(self) -> str:
+        if self.groups is not None:
+            return "seeded random draw of whole groups"
         return "the most recent rows in time" if self.by_time else "seeded random draw"
 
 
@@ -121,9 +145,13 @@ class PartSplit:
 
 
 def split_rows(count: int, times: np.ndarray | None, holdout: float, seed: int,
-               in_memory: bool) -> HoldoutSplit | PartSplit:
+               in_memory: bool, groups: np.ndarray | None = None) -> HoldoutSplit | PartSplit:
     """The split stage: ``count`` usable rows (``times``: theirs, in row order, with
-    ``--time``) into the parts the solver holds out."""
+    ``--time``; ``groups``: their group codes with ``--group``) into the parts the solver
+    holds out."""
+    if groups is not None:
+        train, held = split_groups(groups, holdout, seed)
+        return HoldoutSplit(train, held, False, groups)
     if in_memory:
         train, held = split_holdout(count, holdout, seed, most_recent=times is not None)
         return HoldoutSplit(train, held, times is not None)
