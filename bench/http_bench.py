@@ -149,8 +149,9 @@ def ensure_wrk(install: bool) -> bool:
 
 
 def measure(tree: Path, app: str, store: Path, body: bytes, args, use_wrk: bool,
-            env: dict | None = None) -> dict:
-    """One server's single-row figures: requests/s, p50, p99 and worker CPU per request."""
+            env: dict | None = None, probe=None) -> dict:
+    """One server's single-row figures: requests/s, p50, p99 and worker CPU per request;
+    ``probe(g)``, when given, adds what it returns (read from the server before it stops)."""
     # the tree's service and gunicorn config come first on the path
     with Gunicorn.on_free_port(store, args.workers, cwd=str(tree), app=app,
                                env={"BENCH_MODEL": "bench", "PYTHONPATH": str(tree),
@@ -170,6 +171,8 @@ def measure(tree: Path, app: str, store: Path, body: bytes, args, use_wrk: bool,
         # server CPU per request: what the handler costs, whatever the client's share
         res["cpu_us"] = ((workers_cpu(g.proc.pid)[1] - cpu0)
                          / max(res["rps"] * args.seconds, 1) * 1e6)
+        if probe is not None:
+            res.update(probe(g))
     return res
 
 

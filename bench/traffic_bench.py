@@ -12,7 +12,9 @@ rounds under the same single-row load (wrk when installed):
 Printed: each configuration's best figures and the ratios to "off", round by round and as
 the median of the rounds. The shadow doubles the CPU per request, so at saturation (more
 clients than cores) requests/s falls; its effect on the caller's latency is what the p50 and
-p99 ratios at a load below saturation show (``--clients 1``).
+p99 ratios at a load below saturation show (``--clients 1``). The shadow works only while
+a worker is idle (service/idle.py), so each shadow run also prints how many requests it
+scored and how many the full queue left unscored.
 
     python bench/http_bench.py --traffic [--seconds 8] [--rounds 3] [--clients 1|4]
 """
@@ -20,8 +22,10 @@ p99 ratios at a load below saturation show (``--clients 1``).
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
+import urllib.request
 
 import numpy as np
 
@@ -58,6 +62,19 @@ def shadow_version(store) -> int:
     return shadow_version(store)
 
 
+def shadow_counts(g) -> dict:
+    """Requests the shadow scored (one row each) and dropped, all workers, from /metrics."""
+    with urllib.request.urlopen(g.base + "/metrics", timeout=30) as r:
+        text = r.read().decode()
+
+    def total(name: str) -> float:
+        return sum(float(m.group(1)) for m in re.finditer(
+            rf'^{name}{{model="bench"}} (\S+)$', text, re.M))
+
+    return {"shadowed": total("kridge_shadow_rows_total"),
+            "dropped": total("kridge_shadow_dropped_total")}
+
+
 def run_traffic(args) -> None:
     print(header("traffic bench: drift sampling and a shadow version, on and off"))
     WORK.mkdir(parents=True, exist_ok=True)
@@ -79,12 +96,16 @@ def run_traffic(args) -> None:
                 if label == "shadow":
                     st.set_shadow("bench", version)
                 try:
-                    res = measure(ROOT, "service.wsgi:app", store, body, args, use_wrk, env)
+                    res = measure(ROOT, "service.wsgi:app", store, body, args, use_wrk, env,
+                                  shadow_counts if label == "shadow" else None)
                 finally:
                     st.end_shadow("bench")
                 print(f"  round {rnd + 1} {label:7s} {res['rps']:8.0f} req/s  p50 "
                       f"{res['p50_ms']:6.2f} ms  p99 {res['p99_ms']:6.2f} ms  worker CPU "
-                      f"{res['cpu_us']:5.0f} µs/req  errors {res['errors']}", flush=True)
+                      f"{res['cpu_us']:5.0f} µs/req  errors {res['errors']}"
+                      + (f"  shadowed {res['shadowed']:.0f}, not shadowed (queue full) "
+                         f"{res['dropped']:.0f} requests" if "shadowed" in res else ""),
+                      flush=True)
                 seen[label].append(res)
     finally:
         st.end_shadow("bench")

@@ -11,10 +11,13 @@ The request path only puts (model, request rows, live results, request id, time)
 bounded queue (:meth:`ShadowRunner.offer`); when the queue is full the request is not
 shadowed and ``kridge_shadow_dropped`` counts it. One thread per worker takes the queue,
 predicts the rows with the shadow under the worker's compute slot, in pieces of at most
-:data:`PIECE_ROWS` rows (so that a request waits for one piece at most, and one
-computation per worker runs at a time: workers × engine threads ≤ cores, as without a
-shadow), observes |shadow − live| per row and target, and, when ``KRIDGE_SHADOW_PAIRS``
-names a file, appends one JSON line per row (:func:`pair_lines`).
+:data:`PIECE_ROWS` rows (one computation per worker runs at a time: workers × engine
+threads ≤ cores, as without a shadow). It takes the slot only in idle time: no predict
+request in flight and none started in the last :data:`service.idle.QUIET_SECONDS`
+(:func:`idle_slot`), so under steady traffic the queue fills and drops instead of the
+callers waiting; a request that comes meanwhile waits for one piece at most. It observes
+|shadow − live| per row and target, and, when ``KRIDGE_SHADOW_PAIRS`` names a file,
+appends one JSON line per row (:func:`pair_lines`).
 """
 
 from __future__ import annotations
@@ -22,13 +25,14 @@ from __future__ import annotations
 import logging
 import os
 import queue
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
 
 import numpy as np
 import orjson
 
-from service import traffic_metrics
+from service import idle, traffic_metrics
 from service.answers import COMPUTE_SLOT
 from service.live_models import fault_kind
 from service.model import Model
@@ -95,6 +99,22 @@ def pair_lines(item: Pending, x: np.ndarray, live: np.ndarray, shadow: np.ndarra
             "shadow": shadow[i].tolist() if multi else float(shadow[i, 0]),
         }))
     return b"\n".join(out) + b"\n"
+
+
+@contextmanager
+def idle_slot():
+    """Hold the compute slot, taken only while no request is in flight or just came
+    (:mod:`service.idle`); let go and wait again when one arrived while taking it."""
+    while True:
+        idle.wait_until_idle()
+        COMPUTE_SLOT.acquire()
+        if not idle.busy():
+            break
+        COMPUTE_SLOT.release()
+    try:
+        yield
+    finally:
+        COMPUTE_SLOT.release()
 
 
 class ShadowRunner:
@@ -205,11 +225,10 @@ class ShadowRunner:
         xs = x[:, cols] if cols != list(range(len(feats))) else x
         parts = []
         for start in range(0, xs.shape[0], PIECE_ROWS):
-            # one computation per worker at a time (module doc); no pause between pieces as
-            # the drift test makes (time.sleep(0) costs ~0.6 ms of wall time on a busy
-            # machine): most requests are one piece, and the queue wait lets go anyway
-            with COMPUTE_SLOT:
-                piece = xs[start:start + PIECE_ROWS]
+            # one computation per worker at a time, and only while no request waits for
+            # it (module doc): a request queues behind one piece at most
+            piece = xs[start:start + PIECE_ROWS]
+            with idle_slot():
                 parts.append(shadow.predict(piece).reshape(piece.shape[0], -1) if text
                              else shadow.engine.predict(piece, raw=True))
         predicted = np.vstack(parts)

@@ -52,6 +52,11 @@ def add_arguments(sp: argparse.ArgumentParser) -> None:
     sp.add_argument("--seed", type=int, default=0, help="seed of the drift test")
     sp.add_argument("--drop-incomplete", action="store_true",
                     help="leave out (and count) lab rows with a missing input")
+    sp.add_argument("--pairs", metavar="FILE", help="score the live and shadow predictions "
+                    "as served, from this pairs file (KRIDGE_SHADOW_PAIRS), joined to the "
+                    "data's lab values on --id; --versions LIVE,SHADOW picks one pair")
+    sp.add_argument("--id", metavar="COL", dest="id_column", help="with --pairs: the data's "
+                    "row id column, matched to the ids the requests carried")
     sp.add_argument("--sep", help="CSV separator (default: detected)")
     sp.add_argument("--decimal", choices=(".", ","), help="CSV decimal mark (default: detected)")
 
@@ -80,6 +85,18 @@ def cmd_compare(args) -> int:
     from trainer.compare_text import as_text
 
     level = _level(args.require_better)
+    if (args.pairs is None) != (args.id_column is None):
+        raise UserError("--pairs and --id go together: the pairs file and the data's row id "
+                        "column it is joined on")
+    if args.pairs is not None:
+        from trainer.compare_pairs import as_text as pairs_text
+        from trainer.compare_pairs_cmd import compare_pairs
+
+        doc, gate = compare_pairs(args, level)
+        doc = _finite(doc)
+        print(json.dumps(doc, indent=2, allow_nan=False) if args.json else
+              "\n".join([pairs_text(doc), *([gate["reason"]] if gate else []), doc["caution"]]))
+        return EXIT_NOT_BETTER if gate is not None and not gate["passed"] else 0
     if args.permutations is not None and args.permutations < 1:
         raise UserError(f"--permutations must be at least 1, not {args.permutations}")
     if (args.window is not None or args.time_format is not None) and args.time is None:

@@ -21,7 +21,7 @@ from time import perf_counter
 import orjson
 from flask import Blueprint, Response, request
 
-from service import metrics, traffic
+from service import idle, metrics, traffic
 from service.access_log import LABELS, ROUTE, ROWS
 from service.answers import COMPUTE_SLOT, parse_body, predict_response
 from service.app_state import AppState, state
@@ -71,15 +71,19 @@ def answer(name: str, model: Model, raw: bytes, max_rows: int, t_start: float,
     count in ``environ``."""
     version = str(model.version)
     environ[LABELS] = labels = (name, version)
-    with COMPUTE_SLOT:  # one request of this worker at a time; the socket work is outside
-        req = parse_body(raw, max_rows, model.features, model.encoding.any)
-        t_parsed = perf_counter()
-        body, compute = predict_response(model, req, t_start, t_parsed)
-        results = body["results"]
-        environ[ROWS] = len(results)
-        t = body["timing_ms"]
-        t["total"] = total = round((perf_counter() - t_start) * 1e3, 4)
-        payload = orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY)
+    idle.started()  # the shadow keeps off the slot while requests come (service/idle.py)
+    try:
+        with COMPUTE_SLOT:  # one request of this worker at a time; the socket work is outside
+            req = parse_body(raw, max_rows, model.features, model.encoding.any)
+            t_parsed = perf_counter()
+            body, compute = predict_response(model, req, t_start, t_parsed)
+            results = body["results"]
+            environ[ROWS] = len(results)
+            t = body["timing_ms"]
+            t["total"] = total = round((perf_counter() - t_start) * 1e3, 4)
+            payload = orjson.dumps(body, option=orjson.OPT_SERIALIZE_NUMPY)
+    finally:
+        idle.finished()
     metrics.count_request(labels, results, compute, total / 1e3)  # last: nothing can fail
     traffic.after_answer(name, model, req, results, environ)  # drift window, shadow queue
     # wire order; with Content-Type in the list werkzeug skips its mimetype work
