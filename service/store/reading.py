@@ -123,6 +123,16 @@ class StoreReader:
             raise NotFound(f"no model named {name!r}")
         return found
 
+    def existing_version(self, name: str, version, check=None) -> int:
+        """``version`` as a number when ``name`` has it (NotFound otherwise), after
+        ``check(version)`` (e.g. verify), which may refuse it."""
+        version = check_version(version)
+        if version not in self.versions(name):
+            raise NotFound(f"model {name!r} has no version {version}")
+        if check is not None:
+            check(version)
+        return version
+
     def version_numbers(self, name: str) -> list[int]:
         """Version numbers present, ascending; [] when none (or no such folder)."""
         return sorted(int(n) for n in self._version_names(self.model_dir(name) / "versions"))

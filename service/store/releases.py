@@ -11,9 +11,7 @@ from pathlib import Path
 
 from service.store.names import (
     Conflict,
-    NotFound,
     StoreError,
-    check_version,
     now_iso,
 )
 from service.store.pointers import replace_pointer
@@ -47,11 +45,7 @@ class Releases(StoreReader):
         pointer, and a damaged history gets a record from which rollback starts anew; the
         history record says what was repaired.
         """
-        version = check_version(version)
-        if version not in self.versions(name):
-            raise NotFound(f"model {name!r} has no version {version}")
-        if check is not None:
-            check(version)
+        version = self.existing_version(name, version, check)
         with self._locked(name) as mdir:
             notes, restart = [], False
             try:

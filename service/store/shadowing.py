@@ -16,10 +16,8 @@ from pathlib import Path
 
 from service.store.files import append_line, fsync_dir
 from service.store.names import (
-    NotFound,
     StoreError,
     Unwritable,
-    check_version,
     now_iso,
     os_reason,
 )
@@ -44,11 +42,7 @@ class Shadowing(StoreReader):
     def set_shadow(self, name: str, version: int, check=None) -> dict:
         """Name ``version`` the shadow of ``name`` (``check(version)`` may refuse it first);
         returns the history record."""
-        version = check_version(version)
-        if version not in self.versions(name):
-            raise NotFound(f"model {name!r} has no version {version}")
-        if check is not None:
-            check(version)
+        version = self.existing_version(name, version, check)
         with self._locked(name) as mdir:
             try:
                 previous = self.shadow_version(name)
