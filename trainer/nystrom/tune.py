@@ -126,6 +126,19 @@ def _fine_problem(problem: SampleProblem, rng: np.random.Generator) -> SamplePro
     return replace(problem, landmarks=problem.landmarks[pick], evaluated=0)
 
 
+def _searched_on(problem: SampleProblem, fine: SampleProblem, two_stage: bool) -> str:
+    """The tuning account's words for what the sample search scored on."""
+    m = problem.landmarks.shape[0]
+    what = (f"validation error on a sample ({problem.x_s.shape[0]} fit rows, "
+            f"{problem.x_val.shape[0]} validation rows, the same {m} landmarks)")
+    if two_stage:
+        what += (f", widths searched with a uniform subset of {COARSE_LANDMARKS} landmarks "
+                 f"and refined in steps of ×{FINE_STEP:.3g} with "
+                 + (f"all {m}" if fine is problem else
+                    f"a uniform subset of {FINE_MAX_LANDMARKS} of the {m}"))
+    return what
+
+
 def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
                    rng: np.random.Generator | None = None) -> tuple[KernelSpec, float, dict]:
     """Kernel parameters and a first ridge on the sample (same width range as exact tuning).
@@ -178,13 +191,7 @@ def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
     ridge = float(best.ridges[best.best])
     seconds = time.perf_counter() - t0
     evaluated = coarse.evaluated + (fine.evaluated if two_stage else 0)
-    what = (f"validation error on a sample ({problem.x_s.shape[0]} fit rows, "
-            f"{problem.x_val.shape[0]} validation rows, the same {m} landmarks)")
-    if two_stage:
-        what += (f", widths searched with a uniform subset of {COARSE_LANDMARKS} landmarks "
-                 f"and refined in steps of ×{FINE_STEP:.3g} with "
-                 + (f"all {m}" if fine is problem else
-                    f"a uniform subset of {FINE_MAX_LANDMARKS} of the {m}"))
+    what = _searched_on(problem, fine, two_stage)
     rmse = ", ".join(f"{v:.4g}" for v in best.rmse[best.best])
     summary = (f"{best.spec.describe()}, ridge={ridge:.4g} chosen by {what} "
                f"({evaluated} decompositions; validation RMSE {rmse}; {seconds:.1f} s)"
@@ -209,7 +216,6 @@ def tune_on_sample(given: Parameters, seed: int, problem: SampleProblem, log,
         "fallback": False,
     }
     return best.spec, ridge, info
-
 
 
 def final_ridge(path: numerics.RidgePath, spec: KernelSpec, landmarks: np.ndarray,
