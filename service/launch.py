@@ -83,6 +83,9 @@ class Gunicorn:
         return int(self.bind.rpartition(":")[2])
 
     def start(self) -> Gunicorn:
+        """Start gunicorn; a second call while it runs starts nothing (one child, one stop)."""
+        if self.proc is not None and self.proc.poll() is None:
+            return self
         err = None if self.output is None else subprocess.STDOUT
         self.proc = subprocess.Popen(self.argv, env=self.env, cwd=self.cwd, stdout=self.output,
                                      stderr=err)

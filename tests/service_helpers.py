@@ -33,6 +33,8 @@ class Gunicorn(launch.Gunicorn):
                          cwd=str(ROOT))
 
     def start(self) -> Gunicorn:
+        if self.proc is not None and self.proc.poll() is None:
+            return self  # already running: one child, one log file
         # closed in __exit__: the file outlives this call
         self.output = open(Path(self.env.get("KRIDGE_TEST_LOG", os.devnull)), "w")  # noqa: SIM115
         return super().start()

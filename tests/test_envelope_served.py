@@ -83,7 +83,7 @@ def test_bad_target_range_exits_2_with_one_line(trained, capsys, given, says):
 def test_served_answer_carries_the_grown_envelope(trained):
     store, x, _ = trained
     rows = [x[5].tolist(), reversed_row(x, 5).tolist(), _low_fat(x).tolist()]
-    with Gunicorn(store, workers=1).start() as g:
+    with Gunicorn(store, workers=1) as g:
         r = g.post("/models/nir/predict", json={"rows": rows, "coverage": 0.9})
         assert r.status_code == 200, r.text
         body = r.json()
@@ -124,7 +124,7 @@ def test_kridge_predict_writes_the_envelope_columns(trained, capsys, tmp_path):
 def test_old_bundle_serves_without_the_new_checks(tmp_path):
     store = tmp_path / "store"
     shutil.copytree(FIXTURE, store)
-    with Gunicorn(store, workers=1).start() as g:
+    with Gunicorn(store, workers=1) as g:
         r = g.post("/models/coat/predict",
                    json={"rows": [[190.0, 22.0, 60.0]], "coverage": 0.9})
         assert r.status_code == 200, r.text
