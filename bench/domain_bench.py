@@ -16,7 +16,6 @@ import contextlib
 import io
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
@@ -24,19 +23,13 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from bench.machine import add_json_option, header, save  # noqa: E402
+from bench.machine import add_json_option, fastest_call, header, save  # noqa: E402
 from bench.spectra_data import TARGETS, spectra, write_csv  # noqa: E402
 from service import load_model  # noqa: E402
 
 
 def best_of(call, repeats: int = 2000) -> float:
-    call()
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        call()
-        best = min(best, time.perf_counter() - t0)
-    return best
+    return fastest_call(call, repeats)
 
 
 def flag_rates(model, x: np.ndarray, fresh_rows: int = 20_000) -> dict:

@@ -13,6 +13,7 @@ import datetime as _dt
 import json
 import os
 import platform
+import time
 from pathlib import Path
 
 #: Environment variables that change which BLAS kernel runs or how many threads it uses.
@@ -43,6 +44,18 @@ def machine() -> dict:
         "blas": blas,
         "env": {k: os.environ.get(k) for k in BLAS_ENV},
     }
+
+
+def fastest_call(call, repeats: int) -> float:
+    """Seconds of the fastest of ``repeats`` calls of ``call`` (one warm-up call first): the
+    least disturbed run on a shared machine."""
+    call()
+    best = float("inf")
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        call()
+        best = min(best, time.perf_counter() - t0)
+    return best
 
 
 def header(title: str, info: dict | None = None) -> str:

@@ -7,23 +7,21 @@
 
 from __future__ import annotations
 
-import time
+import sys
+from pathlib import Path
 
 import numpy as np
 
-from service.engine import Engine
-from service.envelope import NOVELTY_K, NeighbourIndex
-from service.kernels import KernelSpec
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from bench.machine import fastest_call  # noqa: E402
+from service.engine import Engine  # noqa: E402
+from service.envelope import NOVELTY_K, NeighbourIndex  # noqa: E402
+from service.kernels import KernelSpec  # noqa: E402
 
 
 def best_of(call, repeats: int = 300) -> float:
-    call()
-    best = float("inf")
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        call()
-        best = min(best, time.perf_counter() - t0)
-    return best
+    return fastest_call(call, repeats)
 
 
 def main() -> None:
