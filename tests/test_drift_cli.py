@@ -76,7 +76,8 @@ def test_text_output_carries_the_caution(capsys, setup):
 
 
 def test_statistic_is_the_u_statistic_on_standardized_rows(capsys, setup):
-    # scikit-learn's rbf_kernel on the version's reference rows and the file's rows
+    # scikit-learn's rbf_kernel (1.9.1 here, from the [dev] extra) on the version's reference
+    # rows and the file's rows
     # standardized with the manifest's mean and scale: the unbiased estimator written out
     model = load_model(setup["store"], "m")
     new = model.standardize(np.loadtxt(setup["shifted"], delimiter=",", skiprows=1))
