@@ -220,8 +220,10 @@ def cg_runs(args, data: Path, store: Path, x_test: np.ndarray, y_test: np.ndarra
         print(f"nystrom {solver} with {m} landmarks: {res['wall_seconds']:.0f} s "
               f"({res['load']}); fit {train_rec['fit_seconds']:.0f} s {solve}", flush=True)
     if not args.direct_too:
-        print(direct_estimate(store, f"cg-{m}", data, 20_000, int(0.8 * args.rows)),
-              flush=True)
+        from service.store import Store
+
+        parts = Store(store).read_manifest(f"cg-{m}", 1)["training"]["parts"]
+        print(direct_estimate(store, f"cg-{m}", data, 20_000, parts["train"]), flush=True)
     sk = sklearn_nystroem(data, store, f"cg-{m}", m, x_test, y_test)
     if sk is None:
         fit_rows = sklearn_rows(m)
