@@ -113,6 +113,13 @@ def load_line(before: tuple[float, ...]) -> str:
     return f"load {before[0]:.1f} → {os.getloadavg()[0]:.1f}"
 
 
+def sklearn_rows(m: int) -> int:
+    """The most rows whose n × m float64 feature matrix fits in a quarter of the memory, and
+    at most 50,000 (Ridge copies it and forms an m × m product beside it)."""
+    memory = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    return min(50_000, int(memory / 4 / (m * 8)))
+
+
 def sklearn_nystroem(data: Path, store: Path, name: str, m: int, x: np.ndarray,
                      y: np.ndarray) -> dict | None:
     """scikit-learn's Nystroem (m random components) + Ridge with the kernel and ridge our
@@ -125,7 +132,7 @@ def sklearn_nystroem(data: Path, store: Path, name: str, m: int, x: np.ndarray,
     model = load_model(store, name, 1)
     man = model.manifest
     table = pcsv.read_csv(data).to_pandas().to_numpy()  # every row of the file
-    if table.shape[0] * m * 8 > os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 4:
+    if table.shape[0] > sklearn_rows(m):
         return None
     from sklearn.kernel_approximation import Nystroem
     from sklearn.linear_model import Ridge
@@ -162,8 +169,40 @@ def ny_default(results: list) -> dict:
     return results[0][2]
 
 
+def direct_estimate(store: Path, name: str, data: Path, rows: int, train_rows: int) -> str:
+    """The direct solve's pass 2 at the CG model's m, timed on a slice of ``rows`` rows of
+    the file with the model's landmarks and kernel, and scaled to ``train_rows`` (its cost is
+    n·m² multiply-adds: linear in the rows); an estimate, said so."""
+    import pyarrow.csv as pcsv
+
+    from service.kernels import KernelSpec
+    from service.store import Store
+    from trainer.nystrom.numerics import accumulate
+
+    st = Store(store)
+    man = st.read_manifest(name, 1)
+    lm = st.load_arrays(name, 1, man)["x_train"]  # the landmarks, standardized
+    mean, scale = (np.array(man["standardization"][k]) for k in ("mean", "scale"))
+    table = pcsv.read_csv(data).slice(0, rows).to_pandas().to_numpy()
+    xs, y = (table[:, :8] - mean) / scale, table[:, 8:9]
+    kern = man["kernel"]
+    spec = KernelSpec(kern["name"], **kern["params"])
+    before = os.getloadavg()
+    t0 = time.perf_counter()
+    accumulate(spec, lm, xs, y)
+    seconds = time.perf_counter() - t0
+    m = lm.shape[0]
+    total = seconds * train_rows / rows
+    return (f"direct solve at m = {m}: pass 2 over {rows:,} rows took {seconds:.1f} s "
+            f"({seconds / (rows * m * m) * 1e9:.3f} ns per row and m² element, "
+            f"{load_line(before)}); for {train_rows:,} training rows an ESTIMATE of "
+            f"{total:.0f} s ({total / 3600:.1f} h), not run, before its m × m "
+            "eigendecompositions")
+
+
 def cg_runs(args, data: Path, store: Path, x_test: np.ndarray, y_test: np.ndarray) -> list:
-    """CG at --cg-landmarks, the direct solve at the same m (--direct-too), scikit-learn."""
+    """CG at --cg-landmarks, the direct solve at the same m (--direct-too, else its time
+    estimated from a slice), scikit-learn where its feature matrix fits."""
     m = args.cg_landmarks
     out = []
     for solver in ("cg", "direct") if args.direct_too else ("cg",):
@@ -180,10 +219,28 @@ def cg_runs(args, data: Path, store: Path, x_test: np.ndarray, y_test: np.ndarra
                           "stopped_by", "column_iterations")}
         print(f"nystrom {solver} with {m} landmarks: {res['wall_seconds']:.0f} s "
               f"({res['load']}); fit {train_rec['fit_seconds']:.0f} s {solve}", flush=True)
+    if not args.direct_too:
+        from service.store import Store
+
+        parts = Store(store).read_manifest(f"cg-{m}", 1)["training"]["parts"]
+        print(direct_estimate(store, f"cg-{m}", data, 20_000, parts["train"]), flush=True)
     sk = sklearn_nystroem(data, store, f"cg-{m}", m, x_test, y_test)
     if sk is None:
-        print(f"scikit-learn Nystroem + Ridge skipped: its {args.rows} × {m} feature matrix "
-              f"({args.rows * m * 8 / 1e9:.0f} GB) exceeds a quarter of the memory")
+        fit_rows = sklearn_rows(m)
+        print(f"scikit-learn Nystroem + Ridge on all rows skipped: its {args.rows} × {m} "
+              f"feature matrix ({args.rows * m * 8 / 1e9:.0f} GB) exceeds a quarter of the "
+              f"memory; fitted instead on the file's first {fit_rows:,} rows, beside kridge's "
+              "CG on the same rows", flush=True)
+        sub = data.with_name(f"first_{fit_rows}.csv")
+        import pyarrow.csv as pcsv
+
+        pcsv.write_csv(pcsv.read_csv(data).slice(0, fit_rows), sub)
+        res = train(sub, store, f"cg-{m}-first", "--method", "nystrom", "--landmarks", str(m),
+                    "--solver", "cg")
+        res["fresh_rmse"], res["f_rmse"] = fresh_rmse(store, f"cg-{m}-first", x_test, y_test)
+        out.append((f"nystrom cg, m = {m}", fit_rows, res))
+        sk = sklearn_nystroem(sub, store, f"cg-{m}-first", m, x_test, y_test)
+        out.append((f"sklearn Nystroem+Ridge, m = {m}", fit_rows, sk))
     else:
         out.append((f"sklearn Nystroem+Ridge, m = {m}", args.rows, sk))
     return out

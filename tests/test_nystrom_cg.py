@@ -382,3 +382,24 @@ def test_rank_guard_prefers_a_width_that_keeps_the_landmark_rank_and_says_so():
     assert rank.landmark_rank(kept.spec, lm, np.random.default_rng(0))[0] >= 30
     # a width that keeps the rank is left alone
     assert rank.rank_guard(fine, [wide, fine], lm, 0, None, 2.0) == (fine, None)
+
+
+def test_cg_max_iter_caps_the_solve_warns_and_is_checked(tmp_path, capsys):
+    from trainer.cli_nystrom import SHOWN_CG_CAP
+
+    assert SHOWN_CG_CAP == cg.CG_MAX_ITER  # the help states the cap the solver applies
+    path = _csv(tmp_path, 3000, seed=19)
+    store = tmp_path / "st"
+    assert _train(store, path, "--method", "nystrom", "--landmarks", "200", "--gamma", "0.3",
+                  "--ridge", "1e-6", "--solver", "cg", "--cg-stop", "residual",
+                  "--cg-max-iter", "3", name="capped") == 0
+    solve = Store(store).read_manifest("capped", 1)["training"]["solve"]
+    assert solve["iterations"] == 3 and solve["max_iterations"] == 3
+    assert solve["stopped_by"] == ["cap"]
+    err = capsys.readouterr().err
+    assert "cap of 3 iterations" in err and "--cg-max-iter" in err
+    assert _train(store, path, "--method", "nystrom", "--cg-max-iter", "0", name="bad") == 2
+    assert "--cg-max-iter must be at least 1" in capsys.readouterr().err
+    with pytest.raises(SystemExit):
+        main(["train", "--help"])
+    assert f"(default {SHOWN_CG_CAP})" in " ".join(capsys.readouterr().out.split())

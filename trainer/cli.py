@@ -19,6 +19,7 @@ from service.settings import DEFAULT_STORE
 from service.store import Store, StoreError, check_version
 from service.text_safety import visible
 from trainer import compare_cli, shadow_cmd
+from trainer.cli_nystrom import nystrom_options
 from trainer.errors import UserError
 
 EXIT_USER = 2
@@ -49,7 +50,7 @@ def cmd_train(args) -> int:
         sep=args.sep, decimal=args.decimal, method=args.method, landmarks=args.landmarks,
         landmark_scheme=args.landmark_scheme, cluster=args.cluster, solver=args.solver,
         target_range=args.target_range, shared_kernel=args.shared_kernel,
-        cg_stop=args.cg_stop, group=args.group)
+        cg_stop=args.cg_stop, cg_max_iter=args.cg_max_iter, group=args.group)
 
     def log(*a, **k):
         if not args.quiet:
@@ -265,18 +266,7 @@ def _train_arguments(t: argparse.ArgumentParser) -> None:
     t.add_argument("--decimal", choices=(".", ","), help="CSV decimal mark (default: detected)")
     t.add_argument("--method", choices=("exact", "nystrom", "auto"), default="auto",
                    help="exact KRR, Nyström on landmark rows, or auto by row count (default)")
-    t.add_argument("--landmarks", type=int, metavar="M",
-                   help="Nyström landmark rows (default: from the row count and memory)")
-    t.add_argument("--landmark-scheme", choices=("uniform", "kmeans++"),
-                   help="how Nyström landmarks are chosen (default: uniform)")
-    t.add_argument("--solver", choices=("direct", "cg", "auto"), default="auto",
-                   help="Nyström solve: direct (m × m sums, every ridge at once), cg "
-                        "(preconditioned conjugate gradient), or auto by landmark count")
-    t.add_argument("--cg-stop", choices=("validation", "residual"), default="validation",
-                   help="what stops CG: validation error levelling off, or the residual "
-                        "(validation, default); the residual alone (residual)")
-    t.add_argument("--cluster", metavar="ADDRESS",
-                   help="Dask scheduler address: run the Nyström accumulation there")
+    nystrom_options(t)
     t.add_argument("--quiet", action="store_true")
     t.add_argument("--json", action="store_true", help="print the summary as JSON")
 

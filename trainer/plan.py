@@ -58,6 +58,7 @@ class TrainOptions:
     target_range: str | None = None  # "LO:HI[,LO:HI…]", one per target (service.target_bounds)
     shared_kernel: bool = False  # several targets: one kernel and ridge for all, not each its own
     cg_stop: str = "validation"  # CG: validation (and residual) rule, or residual alone
+    cg_max_iter: int | None = None  # CG's iteration cap (None: trainer.nystrom.cg.CG_MAX_ITER)
     group: str | None = None  # rows sharing this column's value stay on one side of a split
 
 
@@ -84,6 +85,7 @@ class Method:
     cluster: str | None = None
     solver: str = "auto"
     cg_stop: str = "validation"
+    cg_max_iter: int | None = None
 
 
 @dataclass(frozen=True)
@@ -169,6 +171,8 @@ def check_options(opts: TrainOptions) -> Store:
         raise UserError(f"--solver must be direct, cg or auto, not {opts.solver!r}")
     if opts.cg_stop not in ("validation", "residual"):
         raise UserError(f"--cg-stop must be validation or residual, not {opts.cg_stop!r}")
+    if opts.cg_max_iter is not None and opts.cg_max_iter < 1:
+        raise UserError(f"--cg-max-iter must be at least 1, not {opts.cg_max_iter}")
     if opts.method == "exact" and opts.solver == "cg":
         raise UserError("--solver cg solves the Nyström system; use --method nystrom")
     if opts.method not in METHODS:
@@ -240,7 +244,7 @@ def resolve(opts: TrainOptions) -> tuple[Plan, Store]:
         columns=Columns(tuple(features), tuple(opts.targets), opts.time,
                         opts.drop_incomplete, text, opts.group),
         method=Method(method, reason, opts.landmarks, opts.landmark_scheme, opts.cluster,
-                      opts.solver, opts.cg_stop),
+                      opts.solver, opts.cg_stop, opts.cg_max_iter),
         splits=Splits(opts.holdout, opts.seed),
         parameters=Parameters(opts.kernel, opts.gamma, opts.degree, opts.coef0, opts.ridge,
                               opts.shared_kernel),

@@ -50,6 +50,7 @@ import numpy as np
 import scipy.linalg as sla
 
 from service.kernels import KernelBlocks, KernelSpec, finish_tile, kernel_matrix
+from trainer.nystrom.cg_precond import NoPreconditioner, Preconditioner
 from trainer.nystrom.cg_stop import ValidationStop, rule_text
 
 #: Kernel values per tile (1 MB of float32): one tile stays in a core's L2 cache between its
@@ -63,8 +64,6 @@ TILE_VALUES = 1 << 18
 TILE_DTYPE = np.float64
 #: Default stopping rule: relative residual in the preconditioned norm, and an iteration cap.
 CG_TOL, CG_MAX_ITER = 1e-6, 100
-#: First jitter on K_mm's diagonal (times m·max diag), grown ×100 until the factor exists.
-JITTER_START, JITTER_MAX = 1e-10, 1e-4
 
 
 def tiles_text(dtype) -> str:
@@ -162,111 +161,6 @@ def cross_block(kern: KernelBlocks, x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return cross_sums(kern, x, y)
 
 
-def landmark_factor(make_kmm: Callable[[], np.ndarray]) -> tuple[np.ndarray, float]:
-    """(T upper, jitter): K_mm + jitter·I = TᵀT by Cholesky, jitter the smallest of
-    m·max diag·{1e-10, 1e-8, …} that lets the factor exist (one of order m·eps,
-    as FALKON adds, left CG stalling on a singular K_mm: tests/test_nystrom_cg.py).
-
-    ``make_kmm()`` gives K_mm as a new array that the factor overwrites (one m × m array
-    in memory, not two); it is called again for each larger jitter.
-    """
-    rel = JITTER_START
-    while True:
-        a = np.asfortranarray(make_kmm())
-        m = a.shape[0]
-        base = m * max(float(np.max(np.diag(a))), 1e-300)
-        a[np.diag_indices(m)] += rel * base
-        t, info = sla.lapack.dpotrf(a, lower=0, overwrite_a=1, clean=1)
-        if info == 0:
-            return t, rel * base
-        if rel >= JITTER_MAX:
-            raise np.linalg.LinAlgError("K_mm has no Cholesky factor even with jitter "
-                                        f"{rel * base:.3g}")
-        del a, t
-        rel *= 100.0
-
-
-@dataclass
-class Preconditioner:
-    """FALKON's B = T⁻¹A_λ⁻¹ for one or more ridge values (module notes).
-
-    Column j of a right-hand side with t targets belongs to ridge ``j // t``.
-    """
-
-    t: np.ndarray  # (m, m) upper, K_mm + jitter·I = TᵀT
-    a: list[np.ndarray]  # (m, m) upper, (n/m) T Tᵀ + λ_i I = A_iᵀA_i
-    targets: int
-    jitter: float
-
-    @classmethod
-    def build(cls, kmm: np.ndarray | Callable[[], np.ndarray], n: int, ridges: list[float],
-              targets: int) -> Preconditioner:
-        """T once, T Tᵀ once (LAPACK dlauum, m³/3), one Cholesky per ridge, the last one in
-        T Tᵀ's place: at most 2 + len(ridges) − 1 m × m arrays at a time.
-
-        ``kmm``: K_mm, or a function giving it anew (then factored in place).
-        """
-        make = kmm if callable(kmm) else (lambda: np.array(kmm, order="F"))
-        t, jitter = landmark_factor(make)
-        m = t.shape[0]
-        ttt, info = sla.lapack.dlauum(t, lower=0)  # T Tᵀ, upper triangle
-        if info:
-            raise np.linalg.LinAlgError(f"dlauum failed ({info})")
-        ttt *= n / m
-        factors = []
-        for i, lam in enumerate(ridges):
-            last = i == len(ridges) - 1
-            a = ttt if last else ttt.copy(order="F")
-            a[np.diag_indices(m)] += lam
-            f, info = sla.lapack.dpotrf(a, lower=0, overwrite_a=1, clean=1)
-            if info:
-                raise np.linalg.LinAlgError(f"(n/m)TTᵀ + {lam:g}·I has no Cholesky factor")
-            factors.append(f)
-        return cls(t, factors, targets, jitter)
-
-    def kmm_times(self, v: np.ndarray) -> np.ndarray:
-        """K_mm v = Tᵀ(T v) − jitter·v (K_mm itself is not kept)."""
-        return self.t.T @ (self.t @ v) - self.jitter * v
-
-    def _groups(self, c: int):
-        for i, a in enumerate(self.a):
-            cols = slice(i * self.targets, min((i + 1) * self.targets, c))
-            yield a, cols
-
-    def apply(self, v: np.ndarray) -> np.ndarray:
-        """B v = T⁻¹(A⁻¹ v), column groups by ridge."""
-        out = np.empty_like(v)
-        for a, cols in self._groups(v.shape[1]):
-            out[:, cols] = sla.solve_triangular(a, v[:, cols], lower=False,
-                                                check_finite=False)
-        return sla.solve_triangular(self.t, out, lower=False, check_finite=False)
-
-    def apply_t(self, v: np.ndarray) -> np.ndarray:
-        """Bᵀ v = A⁻ᵀ(T⁻ᵀ v)."""
-        w = sla.solve_triangular(self.t, v, trans="T", lower=False, check_finite=False)
-        for a, cols in self._groups(v.shape[1]):
-            w[:, cols] = sla.solve_triangular(a, w[:, cols], trans="T", lower=False,
-                                              check_finite=False)
-        return w
-
-
-class NoPreconditioner:
-    """B = I: plain CG on H β = b (for comparison only)."""
-
-    jitter = 0.0
-
-    def __init__(self, kmm: np.ndarray):
-        self.kmm = kmm
-
-    def kmm_times(self, v: np.ndarray) -> np.ndarray:
-        return self.kmm @ v
-
-    def apply(self, v: np.ndarray) -> np.ndarray:
-        return v
-
-    apply_t = apply
-
-
 @dataclass
 class CgRun:
     """What a CG solve did, for the manifest."""
@@ -294,14 +188,15 @@ class CgRun:
 _STOP_WORDS = {1: "residual", 2: "validation", 3: "cap"}
 
 
-def conjugate_gradient(h_times: Callable[[np.ndarray], np.ndarray], b: np.ndarray,
+def conjugate_gradient(h_times: Callable[[np.ndarray, np.ndarray], np.ndarray], b: np.ndarray,
                        precond, tol: float = CG_TOL, max_iter: int = CG_MAX_ITER,
                        monitor: ValidationStop | None = None) -> CgRun:
     """Solve H β = b column by column by CG on Bᵀ H B w = Bᵀ b, β = B w.
 
     Parameters
     ----------
-    h_times : v ↦ H v for an (m, c) matrix (one pass over the rows serves every column).
+    h_times : (v, cols) ↦ H v for an (m, k) matrix v holding the solve's columns ``cols``
+        (one pass over the rows serves every column given).
     b : (m, c) right-hand sides.
     precond : :class:`Preconditioner` or :class:`NoPreconditioner`.
     monitor : the validation rule (:mod:`trainer.nystrom.cg_stop`), or None for the
@@ -326,7 +221,11 @@ def conjugate_gradient(h_times: Callable[[np.ndarray], np.ndarray], b: np.ndarra
     it = 0
     while it < max_iter and (stop == 0).any():
         active = stop == 0
-        q = precond.apply_t(h_times(precond.apply(p)))
+        # only the running columns pass over the rows: a stopped one no longer costs
+        # its share of the products with the tiles
+        cols = np.flatnonzero(active)
+        q = np.zeros_like(p)
+        q[:, cols] = precond.apply_t(h_times(precond.apply(p[:, cols], cols), cols), cols)
         pq = np.einsum("ij,ij->j", p, q)
         alpha = np.where(active & (pq > 0), rs / np.where(pq > 0, pq, 1.0), 0.0)
         w += p * alpha
@@ -390,8 +289,8 @@ def solve_nystrom_cg(spec: KernelSpec, landmarks: np.ndarray, row_sum: RowSum,
     monitor = None if check is None else ValidationStop(spec, landmarks, check[0], check[1],
                                                         mean, rhs.shape[1])
 
-    def h_times(v: np.ndarray) -> np.ndarray:
-        return row_sum(gram_block, v) + precond.kmm_times(v) * lam
+    def h_times(v: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        return row_sum(gram_block, v) + precond.kmm_times(v) * lam[cols]
 
     run = conjugate_gradient(h_times, rhs, precond, tol, max_iter, monitor)
     betas = [run.beta[:, i * t:(i + 1) * t] for i in range(len(ridges))]

@@ -121,14 +121,15 @@ def fit_cg(plan: BlockPlan, blocks: list, cluster: str | None, progress, ridges_
     warnings = [] if not capped else [
         f"CG stopped at its cap of {max_iter} iterations with relative residual "
         f"{fit.run.residuals.max():.2g} > {tol:g} before either stopping rule: β is CG's "
-        "last iterate, not the solution of the Nyström system (a larger ridge or --solver "
-        "direct converge)"]
+        "last iterate, not the solution of the Nyström system (a larger --cg-max-iter, a "
+        "larger ridge or --solver direct converge)"]
     return FinalFit(fit.betas[best], fit.intercept, float(ridges[best]), fit.count, held,
                     record, None, warnings)
 
 
 def solve_with_cg(block_plan: BlockPlan, blocks: list, cluster: str | None, progress,
-                  tuned, reason: str, stop: str = "validation") -> FinalFit:
+                  tuned, reason: str, stop: str = "validation",
+                  max_iter: int | None = None) -> FinalFit:
     """The Nyström solver's solve by CG: the sample's ridge and, when it was tuned, two
     scaled ones; the tuning account gains the final-ridge step."""
     problem, account = tuned.problem, tuned.account
@@ -139,7 +140,8 @@ def solve_with_cg(block_plan: BlockPlan, blocks: list, cluster: str | None, prog
         return ridge_candidates(tuned.ridge, grow, tuned_ridge)
 
     fit = fit_cg(block_plan, blocks, cluster, progress, ridges_for,
-                 problem.inv_var if tuned_ridge else None, stop=stop)
+                 problem.inv_var if tuned_ridge else None, stop=stop,
+                 max_iter=max_iter or cg.CG_MAX_ITER)
     fit.record["reason"] = reason
     if tuned_ridge and "validation_scores" in fit.record:
         val_rows = int(fit.held["validate"].x.shape[0])

@@ -233,7 +233,8 @@ class NystromSolver:
         self.per_target = None  # each target's (kernel, ridge) when the ridges are their own
         if solver == "cg":
             fit = solve_with_cg(block_plan, rows.scan.blocks, plan.method.cluster,
-                                _progress(plan.output.quiet), tuned, why, plan.method.cg_stop)
+                                _progress(plan.output.quiet), tuned, why, plan.method.cg_stop,
+                                plan.method.cg_max_iter)
             self.solve_record, self.warnings = fit.record, fit.warnings
             return (fit.beta, fit.intercept, fit.ridge, fit.account, None, fit.count,
                     fit.held)
