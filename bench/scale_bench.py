@@ -50,6 +50,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from bench.machine import header, machine  # noqa: E402
+from service.store import Store  # noqa: E402
 
 KRIDGE = str(Path(sys.executable).with_name("kridge"))
 NOISE = 0.1
@@ -120,22 +121,15 @@ def sklearn_rows(m: int) -> int:
     return min(50_000, int(memory / 4 / (m * 8)))
 
 
-def sklearn_nystroem(data: Path, store: Path, name: str, m: int, x: np.ndarray,
-                     y: np.ndarray) -> dict | None:
+def sklearn_nystroem(table: np.ndarray, store: Path, name: str, m: int, x: np.ndarray,
+                     y: np.ndarray) -> dict:
     """scikit-learn's Nystroem (m random components) + Ridge with the kernel and ridge our
-    model ``name`` chose, on the same standardized rows; None when n × m does not fit in a
-    quarter of the memory."""
-    import pyarrow.csv as pcsv
-
-    from service import load_model
-
-    model = load_model(store, name, 1)
-    man = model.manifest
-    table = pcsv.read_csv(data).to_pandas().to_numpy()  # every row of the file
-    if table.shape[0] > sklearn_rows(m):
-        return None
+    model ``name`` chose, on the same standardized rows (``table``: the file's columns, the
+    8 inputs then y; at most :func:`sklearn_rows` of them)."""
     from sklearn.kernel_approximation import Nystroem
     from sklearn.linear_model import Ridge
+
+    man = Store(store).read_manifest(name, 1)
 
     mean, scale = (np.array(man["standardization"][k]) for k in ("mean", "scale"))
     kern = man["kernel"]
@@ -169,21 +163,18 @@ def ny_default(results: list) -> dict:
     return results[0][2]
 
 
-def direct_estimate(store: Path, name: str, data: Path, rows: int, train_rows: int) -> str:
-    """The direct solve's pass 2 at the CG model's m, timed on a slice of ``rows`` rows of
-    the file with the model's landmarks and kernel, and scaled to ``train_rows`` (its cost is
+def direct_estimate(store: Path, name: str, table: np.ndarray, train_rows: int) -> str:
+    """The direct solve's pass 2 at the CG model's m, timed on the rows ``table`` (the file's
+    columns) with the model's landmarks and kernel, and scaled to ``train_rows`` (its cost is
     n·m² multiply-adds: linear in the rows); an estimate, said so."""
-    import pyarrow.csv as pcsv
-
     from service.kernels import KernelSpec
-    from service.store import Store
     from trainer.nystrom.numerics import accumulate
 
     st = Store(store)
     man = st.read_manifest(name, 1)
     lm = st.load_arrays(name, 1, man)["x_train"]  # the landmarks, standardized
     mean, scale = (np.array(man["standardization"][k]) for k in ("mean", "scale"))
-    table = pcsv.read_csv(data).slice(0, rows).to_pandas().to_numpy()
+    rows = table.shape[0]
     xs, y = (table[:, :8] - mean) / scale, table[:, 8:9]
     kern = man["kernel"]
     spec = KernelSpec(kern["name"], **kern["params"])
@@ -211,38 +202,37 @@ def cg_runs(args, data: Path, store: Path, x_test: np.ndarray, y_test: np.ndarra
                     "--solver", solver)
         res["fresh_rmse"], res["f_rmse"] = fresh_rmse(store, name, x_test, y_test)
         out.append((f"nystrom {solver}, m = {m}", args.rows, res))
-        from service.store import Store
-
         train_rec = Store(store).read_manifest(name, 1)["training"]
         solve = {k: v for k, v in (train_rec.get("solve") or {}).items()
                  if k in ("iterations", "final_residual", "converged", "seconds",
                           "stopped_by", "column_iterations")}
         print(f"nystrom {solver} with {m} landmarks: {res['wall_seconds']:.0f} s "
               f"({res['load']}); fit {train_rec['fit_seconds']:.0f} s {solve}", flush=True)
+    import pyarrow.csv as pcsv
+
+    file = pcsv.read_csv(data)  # read once: the slices below and scikit-learn's rows
     if not args.direct_too:
-        from service.store import Store
-
         parts = Store(store).read_manifest(f"cg-{m}", 1)["training"]["parts"]
-        print(direct_estimate(store, f"cg-{m}", data, 20_000, parts["train"]), flush=True)
-    sk = sklearn_nystroem(data, store, f"cg-{m}", m, x_test, y_test)
-    if sk is None:
-        fit_rows = sklearn_rows(m)
-        print(f"scikit-learn Nystroem + Ridge on all rows skipped: its {args.rows} × {m} "
-              f"feature matrix ({args.rows * m * 8 / 1e9:.0f} GB) exceeds a quarter of the "
-              f"memory; fitted instead on the file's first {fit_rows:,} rows, beside kridge's "
-              "CG on the same rows", flush=True)
-        sub = data.with_name(f"first_{fit_rows}.csv")
-        import pyarrow.csv as pcsv
-
-        pcsv.write_csv(pcsv.read_csv(data).slice(0, fit_rows), sub)
-        res = train(sub, store, f"cg-{m}-first", "--method", "nystrom", "--landmarks", str(m),
-                    "--solver", "cg")
-        res["fresh_rmse"], res["f_rmse"] = fresh_rmse(store, f"cg-{m}-first", x_test, y_test)
-        out.append((f"nystrom cg, m = {m}", fit_rows, res))
-        sk = sklearn_nystroem(sub, store, f"cg-{m}-first", m, x_test, y_test)
-        out.append((f"sklearn Nystroem+Ridge, m = {m}", fit_rows, sk))
-    else:
-        out.append((f"sklearn Nystroem+Ridge, m = {m}", args.rows, sk))
+        print(direct_estimate(store, f"cg-{m}", file.slice(0, 20_000).to_pandas().to_numpy(),
+                              parts["train"]), flush=True)
+    fit_rows = sklearn_rows(m)
+    if args.rows <= fit_rows:
+        out.append((f"sklearn Nystroem+Ridge, m = {m}", args.rows, sklearn_nystroem(
+            file.to_pandas().to_numpy(), store, f"cg-{m}", m, x_test, y_test)))
+        return out
+    print(f"scikit-learn Nystroem + Ridge on all rows skipped: its {args.rows} × {m} "
+          f"feature matrix ({args.rows * m * 8 / 1e9:.0f} GB) exceeds a quarter of the "
+          f"memory; fitted instead on the file's first {fit_rows:,} rows, beside kridge's "
+          "CG on the same rows", flush=True)
+    first = file.slice(0, fit_rows)
+    sub = data.with_name(f"first_{fit_rows}.csv")
+    pcsv.write_csv(first, sub)
+    res = train(sub, store, f"cg-{m}-first", "--method", "nystrom", "--landmarks", str(m),
+                "--solver", "cg")
+    res["fresh_rmse"], res["f_rmse"] = fresh_rmse(store, f"cg-{m}-first", x_test, y_test)
+    out.append((f"nystrom cg, m = {m}", fit_rows, res))
+    out.append((f"sklearn Nystroem+Ridge, m = {m}", fit_rows, sklearn_nystroem(
+        first.to_pandas().to_numpy(), store, f"cg-{m}-first", m, x_test, y_test)))
     return out
 
 

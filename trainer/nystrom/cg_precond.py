@@ -84,9 +84,10 @@ class Preconditioner:
         """K_mm v = Tᵀ(T v) − jitter·v (K_mm itself is not kept)."""
         return self.t.T @ (self.t @ v) - self.jitter * v
 
-    def _groups(self, cols: np.ndarray):
-        """(A_i, positions in v) for the ridges of v's columns ``cols`` of the whole solve."""
-        ridge = cols // self.targets
+    def _groups(self, cols: np.ndarray | None, c: int):
+        """(A_i, positions in v) for the ridges of v's c columns, which are the solve's
+        columns ``cols`` (all of them if None)."""
+        ridge = (np.arange(c) if cols is None else cols) // self.targets
         for i, a in enumerate(self.a):
             at = np.flatnonzero(ridge == i)
             if at.size:
@@ -95,17 +96,15 @@ class Preconditioner:
     def apply(self, v: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
         """B v = T⁻¹(A⁻¹ v), column groups by ridge; ``cols``: which of the solve's columns
         v holds (all if None)."""
-        cols = np.arange(v.shape[1]) if cols is None else cols
         out = np.empty_like(v)
-        for a, at in self._groups(cols):
+        for a, at in self._groups(cols, v.shape[1]):
             out[:, at] = sla.solve_triangular(a, v[:, at], lower=False, check_finite=False)
         return sla.solve_triangular(self.t, out, lower=False, check_finite=False)
 
     def apply_t(self, v: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
         """Bᵀ v = A⁻ᵀ(T⁻ᵀ v)."""
-        cols = np.arange(v.shape[1]) if cols is None else cols
         w = sla.solve_triangular(self.t, v, trans="T", lower=False, check_finite=False)
-        for a, at in self._groups(cols):
+        for a, at in self._groups(cols, v.shape[1]):
             w[:, at] = sla.solve_triangular(a, w[:, at], trans="T", lower=False,
                                             check_finite=False)
         return w
