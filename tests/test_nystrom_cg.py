@@ -219,8 +219,9 @@ def test_dask_cluster_cg_fit_equals_the_local_cg_fit(tmp_path, capsys, monkeypat
     monkeypatch.setenv("KRIDGE_BLOCK_BYTES", str(64 << 10))  # several blocks
     path = _csv(tmp_path, 8000, seed=11)
     store = tmp_path / "st"
-    common = ["--method", "nystrom", "--solver", "cg", "--landmarks", "120", "--gamma", "0.4",
-              "--ridge", "0.1"]
+    # the ridge is tuned, so both fits start from the sample's fit (summed on the workers
+    # in the right-hand side's pass)
+    common = ["--method", "nystrom", "--solver", "cg", "--landmarks", "120", "--gamma", "0.4"]
     with dask_cluster(tmp_path) as address:
         assert _train(store, path, *common, name="local") == 0
         assert _train(store, path, *common, "--cluster", address, name="remote") == 0
@@ -233,6 +234,42 @@ def test_dask_cluster_cg_fit_equals_the_local_cg_fit(tmp_path, capsys, monkeypat
                                atol=1e-9 * np.abs(a["dual"]).max())
     man = st.read_manifest("remote", 1)["training"]
     assert man["cluster"] is True and man["solve"]["solver"] == "cg"
+    assert man["solve"]["start"] == st.read_manifest("local", 1)["training"]["solve"]["start"]
+    assert man["solve"]["start"]["from"] == "sample fit"
+
+
+def test_warm_start_reaches_the_same_solution_and_is_scored_as_iteration_zero():
+    from trainer.nystrom.cg_start import sample_start
+    from trainer.nystrom.tune import SampleProblem
+
+    xs, y = _standardized(6000, seed=23)
+    spec, ridges = KernelSpec("rbf", gamma=0.3), [1e-3, 0.1]
+    lm = _landmarks(xs[:5000], 300)
+    tr, ytr, val = xs[:5000], y[:5000], (xs[5000:], y[5000:])
+    sample = SampleProblem(tr[:1500], ytr[:1500], tr[1500:2000], ytr[1500:2000], lm,
+                           np.ones(2), None)
+    beta0, info = sample_start(spec, lm, sample, ridges[0], seed=3)
+    assert info["rows"] == 1500 and info["landmarks"] == 300 and beta0.shape == (300, 2)
+    cold = _cg(spec, lm, tr, ytr, ridges, tol=1e-11, max_iter=600)
+    warm = _cg(spec, lm, tr, ytr, ridges, tol=1e-11, max_iter=600, start=beta0)
+    assert cold.run.converged and warm.run.converged
+    for a, b in zip(cold.betas, warm.betas, strict=True):
+        np.testing.assert_allclose(b, a, rtol=0, atol=1e-6 * np.abs(a).max())
+    # the start is nearer the solution than zero is: its residual is below ‖Bᵀb‖
+    assert warm.run.history[0] < 0.5 and warm.run.iterations <= cold.run.iterations
+    # the direct solution as start: nothing left to do
+    path = ridge_path(spec, lm, accumulate(spec, lm, tr, ytr))
+    exact = _cg(spec, lm, tr, ytr, [ridges[0]], tol=1e-6, start=path.dual(ridges[0]))
+    assert exact.run.iterations == 0
+    np.testing.assert_allclose(exact.betas[0], path.dual(ridges[0]), rtol=0,
+                               atol=1e-9 * np.abs(path.dual(ridges[0])).max())
+    # the validation rule scores the start as iteration 0 and keeps the best of all
+    fit = _cg(spec, lm, tr, ytr, ridges, tol=1e-11, max_iter=600, check=val, start=beta0)
+    mon = fit.run.monitor
+    kv = kernel_matrix(spec, val[0], lm)
+    start_rmse = np.sqrt(np.mean((kv @ beta0 + fit.intercept - val[1]) ** 2, axis=0))
+    np.testing.assert_allclose(mon.start_rmse[:2], start_rmse, rtol=1e-9)
+    assert (np.asarray(mon.record()["best_rmse"]) <= np.tile(start_rmse, 2) + 1e-15).all()
 
 
 def test_width_steps_use_a_bounded_landmark_subset_above_the_cap(monkeypatch):

@@ -17,10 +17,14 @@ Cholesky factor K_mm = TᵀT, and with (n/m) T Tᵀ + λ I = AᵀA,
 
 whose matrix is close to the identity: CG converges in tens of iterations whatever λ is.
 
-Stopping rules: per column of the right-hand side, the relative residual of the
-preconditioned system ‖Bᵀ(b − Hβ_k)‖ / ‖Bᵀb‖ falls to ``tol``, the validation rule of
-:mod:`trainer.nystrom.cg_stop` stops it, or ``max_iter`` iterations ran (the record says
-which, per column).
+Stopping rules (the loop: :mod:`trainer.nystrom.cg_loop`): per column of the right-hand
+side, the relative residual of the preconditioned system ‖Bᵀ(b − Hβ_k)‖ / ‖Bᵀb‖ falls to
+``tol``, the validation rule of :mod:`trainer.nystrom.cg_stop` stops it, or ``max_iter``
+iterations ran (the record says which, per column).
+
+Start: β₀ = 0, or a warm start (the tuning sample's own Nyström fit,
+:mod:`trainer.nystrom.cg_start`): w₀ = B⁻¹β₀ = A T β₀, and H β₀ is summed in the pass that
+forms b, so the start costs no pass of its own.
 
 Precision: the kernel values may be float32 (:data:`TILE_DTYPE`, float64 by default); the
 products with v stay float64. With kridge's tiny tuned ridges v = Bp has large components
@@ -42,16 +46,16 @@ preconditioner changes the iterations, never the solution.
 
 from __future__ import annotations
 
-import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import scipy.linalg as sla
 
 from service.kernels import KernelBlocks, KernelSpec, finish_tile, kernel_matrix
+from trainer.nystrom.cg_loop import CG_MAX_ITER, CG_TOL, CgRun, conjugate_gradient
 from trainer.nystrom.cg_precond import NoPreconditioner, Preconditioner
-from trainer.nystrom.cg_stop import ValidationStop, rule_text
+from trainer.nystrom.cg_stop import ValidationStop
 
 #: Kernel values per tile (1 MB of float32): one tile stays in a core's L2 cache between its
 #: passes (product, kernel function, the two products with v), which memory-sized blocks
@@ -62,8 +66,6 @@ TILE_VALUES = 1 << 18
 #: float64 because float32 values bought no time once widened for the products, and moved
 #: the iterates (README, "The CG solver": measured with bench/cg_bench.py).
 TILE_DTYPE = np.float64
-#: Default stopping rule: relative residual in the preconditioned norm, and an iteration cap.
-CG_TOL, CG_MAX_ITER = 1e-6, 100
 
 
 def tiles_text(dtype) -> str:
@@ -113,15 +115,22 @@ def gram_times(kern: KernelBlocks, x: np.ndarray, v: np.ndarray) -> np.ndarray:
     return out
 
 
-def cross_sums(kern: KernelBlocks, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+def cross_sums(kern: KernelBlocks, x: np.ndarray, y: np.ndarray,
+               v: np.ndarray | None = None) -> np.ndarray:
     """K_xmᵀ[1, y], (m, 1 + t): the kernel's column sums and its products with the targets
-    (float64 for the exact right-hand side, whatever the tiles' dtype)."""
-    ones_y = np.empty((x.shape[0], 1 + y.shape[1]))
+    (float64 for the exact right-hand side, whatever the tiles' dtype); with an (m, c) v
+    also K_xmᵀ(K_xm v) in the same tiles, (m, 1 + t + c) (a warm start's H v beside b)."""
+    t = y.shape[1]
+    ones_y = np.empty((x.shape[0], 1 + t))
     ones_y[:, 0] = 1.0
     ones_y[:, 1:] = y
-    out = np.zeros((kern.n, ones_y.shape[1]))
+    out = np.zeros((kern.n, 1 + t + (0 if v is None else v.shape[1])))
     for i, k in _tiles(kern, x):
-        out += k.T.astype(np.float64, copy=False) @ ones_y[i:i + k.shape[0]]
+        k = k.astype(np.float64, copy=False)
+        right = ones_y[i:i + k.shape[0]]
+        if v is not None:
+            right = np.hstack([right, k @ v])
+        out += k.T @ right
     return out
 
 
@@ -157,98 +166,9 @@ def gram_block(kern: KernelBlocks, x: np.ndarray, _y: np.ndarray, v: np.ndarray)
     return gram_times(kern, x, v)
 
 
-def cross_block(kern: KernelBlocks, x: np.ndarray, y: np.ndarray) -> np.ndarray:
-    return cross_sums(kern, x, y)
-
-
-@dataclass
-class CgRun:
-    """What a CG solve did, for the manifest."""
-
-    beta: np.ndarray  # (m, c)
-    iterations: int
-    residuals: np.ndarray  # (c,) final relative residuals, preconditioned norm
-    converged: bool
-    seconds: float
-    history: list[float] = field(default_factory=list)  # worst column's residual per step
-    stopped_by: list[str] = field(default_factory=list)  # per column: residual|validation|cap
-    column_iterations: list[int] = field(default_factory=list)
-    monitor: ValidationStop | None = None
-
-    def record(self, tol: float, max_iter: int) -> dict:
-        return {"iterations": self.iterations, "max_iterations": max_iter, "tolerance": tol,
-                "final_residual": float(self.residuals.max()),
-                "converged": bool(self.converged), "seconds": round(self.seconds, 3),
-                "stopping_rule": rule_text(self.monitor), "stopped_by": self.stopped_by,
-                "column_iterations": self.column_iterations,
-                "validation_check": None if self.monitor is None else self.monitor.record()}
-
-
-#: Why a column stopped, by code (0: still running).
-_STOP_WORDS = {1: "residual", 2: "validation", 3: "cap"}
-
-
-def conjugate_gradient(h_times: Callable[[np.ndarray, np.ndarray], np.ndarray], b: np.ndarray,
-                       precond, tol: float = CG_TOL, max_iter: int = CG_MAX_ITER,
-                       monitor: ValidationStop | None = None) -> CgRun:
-    """Solve H β = b column by column by CG on Bᵀ H B w = Bᵀ b, β = B w.
-
-    Parameters
-    ----------
-    h_times : (v, cols) ↦ H v for an (m, k) matrix v holding the solve's columns ``cols``
-        (one pass over the rows serves every column given).
-    b : (m, c) right-hand sides.
-    precond : :class:`Preconditioner` or :class:`NoPreconditioner`.
-    monitor : the validation rule (:mod:`trainer.nystrom.cg_stop`), or None for the
-        residual rule alone.
-
-    Notes
-    -----
-    Hestenes & Stiefel's CG (J. Res. NBS 1952) on the preconditioned system, each column
-    with its own step sizes; a column that met a stopping rule keeps its iterate (the
-    validation rule: its best-scored one) while the others go on.
-    """
-    t0 = time.perf_counter()
-    w = np.zeros_like(b)
-    r = precond.apply_t(b)
-    p = r.copy()
-    rs = np.einsum("ij,ij->j", r, r)
-    rs0 = np.where(rs > 0, rs, 1.0)
-    rel = np.sqrt(rs / rs0)
-    history = [float(rel.max())]
-    stop = np.where(rel <= tol, 1, 0)
-    at = np.zeros(b.shape[1], dtype=int)
-    it = 0
-    while it < max_iter and (stop == 0).any():
-        active = stop == 0
-        # only the running columns pass over the rows: a stopped one no longer costs
-        # its share of the products with the tiles
-        cols = np.flatnonzero(active)
-        q = np.zeros_like(p)
-        q[:, cols] = precond.apply_t(h_times(precond.apply(p[:, cols], cols), cols), cols)
-        pq = np.einsum("ij,ij->j", p, q)
-        alpha = np.where(active & (pq > 0), rs / np.where(pq > 0, pq, 1.0), 0.0)
-        w += p * alpha
-        r -= q * alpha
-        rs_new = np.einsum("ij,ij->j", r, r)
-        beta = np.where(active, rs_new / np.where(rs > 0, rs, 1.0), 0.0)
-        p = r + p * beta
-        rs = np.where(active, rs_new, rs)
-        rel = np.sqrt(rs / rs0)
-        it += 1
-        history.append(float(rel.max()))
-        stop[active & (rel <= tol)] = 1
-        if monitor is not None:
-            stalled = monitor.update(it, precond.apply(w))
-            stop[(stop == 0) & stalled] = 2
-        at[active] = it
-    stop[stop == 0] = 3
-    beta_out = precond.apply(w)
-    if monitor is not None:
-        by_val = stop == 2
-        beta_out[:, by_val] = monitor.best_beta[:, by_val]
-    return CgRun(beta_out, it, rel, bool((rel <= tol).all()), time.perf_counter() - t0,
-                 history, [_STOP_WORDS[int(c)] for c in stop], [int(i) for i in at], monitor)
+def cross_block(kern: KernelBlocks, x: np.ndarray, y: np.ndarray,
+                v: np.ndarray | None = None) -> np.ndarray:
+    return cross_sums(kern, x, y, v)
 
 
 @dataclass
@@ -266,20 +186,24 @@ class CgFit:
 def solve_nystrom_cg(spec: KernelSpec, landmarks: np.ndarray, row_sum: RowSum,
                      mean: np.ndarray, count: int, ridges: list[float], tol: float = CG_TOL,
                      max_iter: int = CG_MAX_ITER, precondition: bool = True,
-                     check: tuple[np.ndarray, np.ndarray] | None = None) -> CgFit:
+                     check: tuple[np.ndarray, np.ndarray] | None = None,
+                     start: np.ndarray | None = None) -> CgFit:
     """(K_nmᵀK_nm + λ K_mm) β = K_nmᵀ(y − ȳ) for each λ in ``ridges`` by preconditioned CG.
 
     ``row_sum(fn, *args)`` sums ``fn(kern, x_block, y_block, *args)`` over the training
     blocks in block order (here in threads, or on Dask workers); ``mean`` is ȳ of their
     ``count`` rows. ``check``: validation rows (x, y) for the validation stopping rule
-    (:mod:`trainer.nystrom.cg_stop`); without them the residual rule alone.
+    (:mod:`trainer.nystrom.cg_stop`); without them the residual rule alone. ``start``:
+    an (m, t) β₀ for every ridge (:mod:`trainer.nystrom.cg_start`), whose H β₀ is summed in
+    the right-hand side's pass.
     Run to the residual rule with float64 tiles, the same β as
     :func:`trainer.nystrom.numerics.ridge_path` to the tolerance wherever K_mm has full
     rank (else the same predictions).
     """
-    cross = row_sum(cross_block)
-    t = cross.shape[1] - 1
-    b = cross[:, 1:] - np.outer(cross[:, 0], mean)
+    t = mean.size
+    beta0 = None if start is None else np.tile(start, (1, len(ridges)))
+    cross = row_sum(cross_block) if start is None else row_sum(cross_block, beta0)
+    b = cross[:, 1:1 + t] - np.outer(cross[:, 0], mean)
     if precondition:
         precond = Preconditioner.build(lambda: kernel_matrix(spec, landmarks), count, ridges, t)
     else:
@@ -292,7 +216,9 @@ def solve_nystrom_cg(spec: KernelSpec, landmarks: np.ndarray, row_sum: RowSum,
     def h_times(v: np.ndarray, cols: np.ndarray) -> np.ndarray:
         return row_sum(gram_block, v) + precond.kmm_times(v) * lam[cols]
 
-    run = conjugate_gradient(h_times, rhs, precond, tol, max_iter, monitor)
+    warm = None if start is None else (
+        beta0, cross[:, 1 + t:] + precond.kmm_times(beta0) * lam)
+    run = conjugate_gradient(h_times, rhs, precond, tol, max_iter, monitor, warm)
     betas = [run.beta[:, i * t:(i + 1) * t] for i in range(len(ridges))]
     tiles = getattr(row_sum, "tiles", "")
     return CgFit(betas, mean, run, precond.jitter, count, tiles)

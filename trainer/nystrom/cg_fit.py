@@ -17,6 +17,7 @@ import numpy as np
 from trainer.errors import UserError
 from trainer.nystrom import cg, cg_stop
 from trainer.nystrom.cg_rows import LocalRows
+from trainer.nystrom.cg_start import sample_start
 from trainer.nystrom.parts import BlockPlan, HeldRows
 from trainer.nystrom.pass2 import run_pass2
 from trainer.nystrom.scores import predictor
@@ -80,11 +81,12 @@ def _check_rows(val: HeldRows, seed: int, stop: str) -> tuple[np.ndarray, np.nda
 
 def fit_cg(plan: BlockPlan, blocks: list, cluster: str | None, progress, ridges_for,
            inv_var: np.ndarray | None, tol: float = cg.CG_TOL,
-           max_iter: int = cg.CG_MAX_ITER, stop: str = "validation") -> FinalFit:
+           max_iter: int = cg.CG_MAX_ITER, stop: str = "validation",
+           start: tuple[np.ndarray, dict] | None = None) -> FinalFit:
     """Pass 2 keeping the training rows, then CG for every candidate ridge
     (``ridges_for(training rows)``), stopped by ``stop``'s rule; the ridge with the lowest
     validation score is kept (the first when the validation part is empty or there is no
-    criterion)."""
+    criterion). ``start``: (β₀, its account) of :mod:`trainer.nystrom.cg_start`, or zero."""
     plan = replace(plan, keep_train=True)
     if cluster:
         from trainer.nystrom.cluster import ClusterRows  # Dask only with --cluster
@@ -105,12 +107,14 @@ def fit_cg(plan: BlockPlan, blocks: list, cluster: str | None, progress, ridges_
         if inv_var is None or val.x.shape[0] < 2:
             ridges = ridges[:1]
         fit = cg.solve_nystrom_cg(plan.spec, plan.landmarks, rows, rows.mean, rows.count,
-                                  ridges, tol, max_iter, check=_check_rows(val, plan.seed, stop))
+                                  ridges, tol, max_iter, check=_check_rows(val, plan.seed, stop),
+                                  start=None if start is None else start[0])
     finally:
         if cluster:
             rows.close()
     record = {"solver": "cg", **fit.run.record(tol, max_iter), "jitter": fit.jitter,
-              "kernel_tiles": fit.tiles, "ridges_solved": [float(r) for r in ridges]}
+              "kernel_tiles": fit.tiles, "ridges_solved": [float(r) for r in ridges],
+              "start": {"from": "zero"} if start is None else start[1]}
     best = 0
     if len(ridges) > 1:
         scores = _validation_scores(plan.spec, plan.landmarks, fit, val, inv_var)
@@ -139,9 +143,11 @@ def solve_with_cg(block_plan: BlockPlan, blocks: list, cluster: str | None, prog
         grow = count / max(problem.x_s.shape[0], 1) if problem is not None else 1.0
         return ridge_candidates(tuned.ridge, grow, tuned_ridge)
 
+    start = None if problem is None else sample_start(
+        tuned.spec, tuned.landmarks, problem, tuned.ridge, block_plan.seed)
     fit = fit_cg(block_plan, blocks, cluster, progress, ridges_for,
                  problem.inv_var if tuned_ridge else None, stop=stop,
-                 max_iter=max_iter or cg.CG_MAX_ITER)
+                 max_iter=max_iter or cg.CG_MAX_ITER, start=start)
     fit.record["reason"] = reason
     if tuned_ridge and "validation_scores" in fit.record:
         val_rows = int(fit.held["validate"].x.shape[0])

@@ -101,6 +101,14 @@ class Preconditioner:
             out[:, at] = sla.solve_triangular(a, v[:, at], lower=False, check_finite=False)
         return sla.solve_triangular(self.t, out, lower=False, check_finite=False)
 
+    def inverse(self, v: np.ndarray) -> np.ndarray:
+        """B⁻¹ v = A(T v): the preconditioned coordinates w of a β (a warm start's)."""
+        tv = self.t @ v
+        out = np.empty_like(tv)
+        for a, at in self._groups(None, v.shape[1]):
+            out[:, at] = a @ tv[:, at]
+        return out
+
     def apply_t(self, v: np.ndarray, cols: np.ndarray | None = None) -> np.ndarray:
         """Bᵀ v = A⁻ᵀ(T⁻ᵀ v)."""
         w = sla.solve_triangular(self.t, v, trans="T", lower=False, check_finite=False)
@@ -125,3 +133,6 @@ class NoPreconditioner:
         return v
 
     apply_t = apply
+
+    def inverse(self, v: np.ndarray) -> np.ndarray:
+        return v

@@ -67,11 +67,24 @@ class ValidationStop:
         self._ref = np.full(columns, np.inf)
         self._gain_at = np.zeros(columns, dtype=int)
         self.history: list[list[float]] = []  # validation RMSE per iteration, per column
+        self.start_rmse: list[float] | None = None  # a warm start's, iteration 0
+
+    def _mse(self, beta: np.ndarray) -> np.ndarray:
+        mse = np.mean((self.k_val @ beta - self.y) ** 2, axis=0)
+        mse[~np.isfinite(mse)] = np.inf
+        return mse
+
+    def begin(self, beta: np.ndarray) -> None:
+        """Score a warm start β₀ as iteration 0: the iterate kept if CG never beats it, and
+        the level the first gain is measured from."""
+        mse = self._mse(beta)
+        self.start_rmse = [float(v) for v in np.sqrt(mse)]
+        self.best_mse, self._ref = mse.copy(), mse.copy()
+        self.best_beta = beta.copy()
 
     def update(self, iteration: int, beta: np.ndarray) -> np.ndarray:
         """Score the iterate β_k (m, c); True where a column has stalled (module notes)."""
-        mse = np.mean((self.k_val @ beta - self.y) ** 2, axis=0)
-        mse[~np.isfinite(mse)] = np.inf
+        mse = self._mse(beta)
         self.history.append([float(v) for v in np.sqrt(mse)])
         if self.best_beta is None:
             self.best_beta = np.zeros_like(beta)
@@ -89,6 +102,7 @@ class ValidationStop:
         return {"rows": self.rows, "min_gain": MIN_GAIN, "patience": PATIENCE,
                 "best_iteration": [int(i) for i in self.best_iteration],
                 "best_rmse": [float(v) for v in np.sqrt(self.best_mse)],
+                "start_rmse": self.start_rmse,
                 "rmse_by_iteration": [[round(v, 6) for v in row] for row in self.history]}
 
 
